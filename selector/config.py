@@ -1,0 +1,367 @@
+"""Typed, validated configuration read from TOML.
+
+Every key is declared here once, with its type, allowed values and a one-line description;
+``configs/default.toml`` documents the same keys for users (a test keeps the two in step). The whole
+file is validated before any work starts: an unknown key is refused with the nearest valid key, a
+wrong type or out-of-range value names the key, the value and what is allowed.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import re
+import tomllib
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Optional
+
+import astropy.units as u
+
+from . import schema
+from ._validate import build, convert, setting, suggest, to_plain
+from .errors import ConfigError
+
+_BAND_NAME = re.compile(r"^[a-z][a-z0-9]{0,15}$")
+FORMATS = ("auto", "parquet", "fits", "csv", "ecsv", "votable")
+# Flux-density inputs are accepted for magnitudes and turned into AB magnitudes.
+_FLUX = u.Jy
+
+
+@dataclass(frozen=True)
+class ColumnSpec:
+    """Where a role lives in the user's file, and in what unit."""
+
+    column: str = setting(doc="the column name in the input file")
+    unit: Optional[str] = setting(None, doc="astropy unit string; default: the file's own unit, else the role's canonical unit")
+
+    @classmethod
+    def _from_config(cls, value, where):
+        if isinstance(value, str):
+            value = {"column": value}
+        if not isinstance(value, dict):
+            raise ConfigError(f"{where} must be a column name or a table {{column = \"...\", unit = \"...\"}}, got {value!r}")
+        return build(cls, value, where)
+
+
+@dataclass(frozen=True)
+class MagnitudeSpec:
+    """One photometric band of a catalogue."""
+
+    band: str = setting(doc="band label: 3.4, 4.6, 12 or 22 (micron) for infrared; a short lower-case name for optical bands")
+    column: str = setting(doc="column of the magnitude (or flux density)")
+    error_column: Optional[str] = setting(None, doc="column of its uncertainty")
+    unit: str = setting("mag", doc="'mag' or a flux-density unit such as 'mJy' (converted to AB magnitudes)")
+    system: str = setting("vega", choices=("vega", "ab"), doc="magnitude system of the column")
+    vega_to_ab_mag: Optional[float] = setting(None, doc="AB − Vega offset of an optical band given in Vega (required then)")
+
+    def _check(self, where):
+        _parse_unit(self.unit, f"{where}.unit")
+        unit = u.Unit(self.unit)
+        if unit != u.mag and not unit.is_equivalent(_FLUX):
+            raise ConfigError(f"{where}.unit = {self.unit!r} is neither 'mag' nor a flux density (e.g. 'Jy', 'mJy', 'uJy')")
+
+
+@dataclass(frozen=True)
+class CatalogueConfig:
+    """An input catalogue: files, format, epoch and the mapping of roles onto columns."""
+
+    files: list[str] = setting(doc="files, folders or glob patterns, relative to the config file")
+    columns: dict[str, ColumnSpec] = setting(doc="role = column name, or role = {column, unit}")
+    format: str = setting("auto", choices=FORMATS, doc="input format; auto guesses from the file ending")
+    epoch_jyear: Optional[float] = setting(None, min=1900.0, max=2200.0, doc="reference epoch of the positions, Julian years")
+    magnitudes: list[MagnitudeSpec] = setting(default_factory=tuple, doc="photometric bands")
+    chunk_rows: int = setting(1_000_000, min=1_000, max=100_000_000, doc="rows read at a time from chunkable formats")
+
+    @classmethod
+    def _from_config(cls, value, where):
+        if isinstance(value, dict) and isinstance(value.get("files"), str):
+            value = {**value, "files": [value["files"]]}
+        if not isinstance(value, dict):
+            raise ConfigError(f"[{where}] must be a table")
+        return build(cls, value, where)
+
+
+def _parse_unit(text, where):
+    try:
+        return u.Unit(text)
+    except (ValueError, TypeError) as exc:
+        raise ConfigError(f"{where} = {text!r} is not a unit astropy understands ({exc})") from None
+
+
+def check_catalogue(cat: CatalogueConfig, kind: str) -> None:
+    """Check a catalogue's mapping against the roles of its kind (astrometric, infrared, known)."""
+    roles = {r.role: r for r in schema.ROLES[kind]}
+    for name, spec in cat.columns.items():
+        if name not in roles:
+            raise ConfigError(f"unknown role '{kind}.columns.{name}'{suggest(name, roles)}")
+        r = roles[name]
+        if spec.unit is not None:
+            unit = _parse_unit(spec.unit, f"{kind}.columns.{name}.unit")
+            target = u.Unit(r.unit) if r.unit else u.dimensionless_unscaled
+            if r.kind in ("id", "text"):
+                raise ConfigError(f"{kind}.columns.{name} is {r.doc}; it takes no unit (got {spec.unit!r})")
+            if not unit.is_equivalent(target):
+                raise ConfigError(
+                    f"{kind}.columns.{name}.unit = {spec.unit!r} cannot be converted to {r.unit or 'a plain number'}"
+                )
+    missing = [r.role for r in schema.ROLES[kind] if r.required and r.role not in cat.columns]
+    if missing:
+        raise ConfigError(f"[{kind}.columns] is missing the required role '{missing[0]}' ({roles[missing[0]].doc})")
+    if kind in ("astrometric", "infrared") and cat.epoch_jyear is None:
+        raise ConfigError(f"[{kind}] needs epoch_jyear, the reference epoch of its positions in Julian years")
+    seen = set()
+    for i, m in enumerate(cat.magnitudes):
+        where = f"{kind}.magnitudes[{i}]"
+        if m.band in seen:
+            raise ConfigError(f"{where}.band = {m.band!r} is given twice")
+        seen.add(m.band)
+        if kind == "infrared":
+            if m.band not in schema.INFRARED_BANDS:
+                raise ConfigError(f"{where}.band = {m.band!r} is not an infrared band; choose one of "
+                                  f"{', '.join(schema.INFRARED_BANDS)}{suggest(m.band, schema.INFRARED_BANDS)}")
+        elif kind == "astrometric":
+            if not _BAND_NAME.match(m.band):
+                raise ConfigError(f"{where}.band = {m.band!r} must be a short lower-case name (letters and digits)")
+            if m.system == "vega" and m.vega_to_ab_mag is None and u.Unit(m.unit) == u.mag:
+                raise ConfigError(f"{where} is in the Vega system: give vega_to_ab_mag, the band's AB − Vega offset")
+        else:
+            raise ConfigError(f"[{kind}] takes no magnitudes")
+    if kind == "infrared" and not cat.magnitudes:
+        raise ConfigError("[infrared] needs at least one entry in [[infrared.magnitudes]]")
+
+
+@dataclass(frozen=True)
+class ProjectConfig:
+    output_dir: str = setting("selector-output", doc="where tiles, runs and lists are written, relative to the config file")
+    seed: int = setting(20261201, min=0, doc="seed for everything random (training folds, sampling)")
+
+
+@dataclass(frozen=True)
+class TilingConfig:
+    order: int = setting(5, min=0, max=12, doc="HEALPix order of the tiles (Nside = 2**order), nested scheme")
+
+
+@dataclass(frozen=True)
+class MatchConfig:
+    radius_arcsec: float = setting(2.0, min=0.0, min_exclusive=True, max=600.0, doc="match radius")
+    max_proper_motion_mas_yr: float = setting(
+        10_000.0, min=0.0, doc="largest proper motion the tile margins must allow for")
+
+
+@dataclass(frozen=True)
+class MotionConfig:
+    parallax_zero_point_mas: float = setting(-0.017, min=-1.0, max=1.0, doc="parallax zero-point subtracted before testing")
+    parallax_snr_max: float = setting(3.0, min=0.0, min_exclusive=True, doc="keep |parallax − zero-point| / error ≤ this")
+    pm_pvalue_min: float = setting(0.001, min=0.0, max=1.0, doc="keep sources whose zero-proper-motion chi² p-value ≥ this")
+    error_inflation: float = setting(1.0, min=0.0, min_exclusive=True, max=100.0, doc="factor applied to all astrometric errors")
+    require_solution: bool = setting(True, doc="remove sources without a parallax and proper motion (true) or let them pass (false)")
+    fit_quality_max: Optional[float] = setting(None, min=0.0, doc="keep fit_quality ≤ this (needs the fit_quality role)")
+
+
+@dataclass(frozen=True)
+class LinearCutSpec:
+    name: str = setting(doc="a label for the cut-flow")
+    y: list[str] = setting(doc="[band] for a magnitude or [band_a, band_b] for the colour a − b")
+    x: list[str] = setting(doc="the same, for the horizontal axis")
+    slope: float = setting(doc="slope of the boundary line y = slope·x + intercept")
+    intercept: float = setting(doc="intercept of the boundary line")
+    side: str = setting("above", choices=("above", "below"), doc="keep points above (y ≥ line) or below it")
+
+
+@dataclass(frozen=True)
+class OpticalInfraredCut:
+    optical_band: str = setting(doc="an optical band label from [[astrometric.magnitudes]]")
+    infrared_band: str = setting(doc="an infrared band label, e.g. 3.4")
+    min_mag: Optional[float] = setting(None, doc="keep optical − infrared (both AB) ≥ this")
+    max_mag: Optional[float] = setting(None, doc="keep optical − infrared (both AB) ≤ this")
+
+
+@dataclass(frozen=True)
+class ColourConfig:
+    criteria: list[str] = setting(default_factory=lambda: ("stern2012",), doc="published infrared criteria by name")
+    combine: str = setting("any", choices=("any", "all"), doc="a source passes when any (or all) criteria pass")
+    linear_cuts: list[LinearCutSpec] = setting(default_factory=tuple, doc="user cuts, all of which must pass")
+    optical_infrared: Optional[OpticalInfraredCut] = setting(None, doc="optional optical − infrared colour cut")
+    galactic_latitude_min_deg: Optional[float] = setting(None, min=0.0, max=90.0, doc="keep |b| ≥ this")
+
+
+@dataclass(frozen=True)
+class RankingConfig:
+    brightness_band: str = setting("4.6", doc="infrared band whose brightness raises the score")
+    brightness_pivot_mag: float = setting(15.0, doc="magnitude at which the brightness term is zero")
+    brightness_weight: float = setting(0.1, min=0.0, doc="score per magnitude brighter than the pivot")
+
+
+@dataclass(frozen=True)
+class ClassifierConfig:
+    model: Optional[str] = setting(None, doc="model file written by `selector train`, relative to the config file")
+    threshold: float = setting(0.5, min=0.0, max=1.0, doc="keep candidates with P(quasar) ≥ this when a model is set")
+
+
+@dataclass(frozen=True)
+class RunConfig:
+    workers: int = setting(0, min=0, max=1024, doc="worker processes; 0 means one per core")
+    executor: str = setting("local", choices=("local", "dask"), doc="local processes or a Dask cluster")
+    scheduler: Optional[str] = setting(None, doc="Dask scheduler address; a local cluster when absent")
+
+
+@dataclass(frozen=True)
+class Config:
+    """The whole validated configuration. Build it with :func:`load_config` or :func:`from_dict`."""
+
+    astrometric: CatalogueConfig = setting(doc="the astrometric catalogue")
+    infrared: CatalogueConfig = setting(doc="the infrared catalogue")
+    known: Optional[CatalogueConfig] = setting(None, doc="the known-objects catalogue")
+    project: ProjectConfig = setting(default_factory=ProjectConfig)
+    tiling: TilingConfig = setting(default_factory=TilingConfig)
+    match: MatchConfig = setting(default_factory=MatchConfig)
+    motion: MotionConfig = setting(default_factory=MotionConfig)
+    colours: ColourConfig = setting(default_factory=ColourConfig)
+    ranking: RankingConfig = setting(default_factory=RankingConfig)
+    classifier: ClassifierConfig = setting(default_factory=ClassifierConfig)
+    run: RunConfig = setting(default_factory=RunConfig)
+    base_dir: str = setting(".", doc="folder relative paths are taken from (set by load_config)")
+
+    def _check(self, where):
+        check_catalogue(self.astrometric, "astrometric")
+        check_catalogue(self.infrared, "infrared")
+        if self.known is not None:
+            check_catalogue(self.known, "known")
+        _check_selection(self)
+        _check_margin(self)
+
+    # --- paths -------------------------------------------------------------------------------
+    def path(self, relative: str) -> Path:
+        """Resolve a path written in the config relative to the config file's folder."""
+        p = Path(relative).expanduser()
+        return p if p.is_absolute() else Path(self.base_dir) / p
+
+    @property
+    def output_dir(self) -> Path:
+        return self.path(self.project.output_dir)
+
+    @property
+    def tiles_dir(self) -> Path:
+        return self.output_dir / "tiles"
+
+    @property
+    def run_dir(self) -> Path:
+        return self.output_dir / "run"
+
+    @property
+    def epoch_difference_yr(self) -> float:
+        """Infrared epoch minus astrometric epoch, in Julian years."""
+        return float(self.infrared.epoch_jyear - self.astrometric.epoch_jyear)
+
+    def optical_bands(self) -> list[str]:
+        return [m.band for m in self.astrometric.magnitudes]
+
+    def infrared_bands(self) -> list[str]:
+        return [m.band for m in self.infrared.magnitudes]
+
+
+def _quantity_names(cfg: Config) -> set[str]:
+    return set(cfg.infrared_bands()) | {f"opt_{b}" for b in cfg.optical_bands()}
+
+
+def _check_selection(cfg: Config) -> None:
+    from .photometry import CRITERIA
+
+    for i, name in enumerate(cfg.colours.criteria):
+        if name not in CRITERIA:
+            raise ConfigError(f"colours.criteria[{i}] = {name!r} is not a known criterion; choose from "
+                              f"{', '.join(sorted(CRITERIA))}{suggest(name, CRITERIA)}")
+    known = _quantity_names(cfg)
+    for i, cut in enumerate(cfg.colours.linear_cuts):
+        for axis in ("x", "y"):
+            names = getattr(cut, axis)
+            where = f"colours.linear_cuts[{i}].{axis}"
+            if len(names) not in (1, 2):
+                raise ConfigError(f"{where} must name one band (a magnitude) or two (a colour), got {list(names)}")
+            for n in names:
+                if n not in known:
+                    raise ConfigError(f"{where} names {n!r}, which is not a band of this configuration; "
+                                      f"choose from {', '.join(sorted(known))}{suggest(n, known)}")
+    oi = cfg.colours.optical_infrared
+    if oi is not None:
+        if oi.optical_band not in cfg.optical_bands():
+            raise ConfigError(f"colours.optical_infrared.optical_band = {oi.optical_band!r} is not in "
+                              f"[[astrometric.magnitudes]]{suggest(oi.optical_band, cfg.optical_bands())}")
+        if oi.infrared_band not in cfg.infrared_bands():
+            raise ConfigError(f"colours.optical_infrared.infrared_band = {oi.infrared_band!r} is not in "
+                              f"[[infrared.magnitudes]]{suggest(oi.infrared_band, cfg.infrared_bands())}")
+        if oi.min_mag is None and oi.max_mag is None:
+            raise ConfigError("colours.optical_infrared needs min_mag, max_mag or both")
+    if cfg.ranking.brightness_band not in cfg.infrared_bands():
+        raise ConfigError(f"ranking.brightness_band = {cfg.ranking.brightness_band!r} is not in "
+                          f"[[infrared.magnitudes]]{suggest(cfg.ranking.brightness_band, cfg.infrared_bands())}")
+    if cfg.motion.fit_quality_max is not None and "fit_quality" not in cfg.astrometric.columns:
+        raise ConfigError("motion.fit_quality_max is set but astrometric.columns has no fit_quality role")
+
+
+def _check_margin(cfg: Config) -> None:
+    from .tiles import max_margin_arcsec
+
+    shift = cfg.match.max_proper_motion_mas_yr * abs(cfg.epoch_difference_yr) / 1000.0
+    need = cfg.match.radius_arcsec + shift
+    allowed = max_margin_arcsec(cfg.tiling.order)
+    if need > allowed:
+        raise ConfigError(
+            f"match.radius_arcsec = {cfg.match.radius_arcsec} plus the largest epoch shift ({shift:.1f} arcsec for "
+            f"match.max_proper_motion_mas_yr over {abs(cfg.epoch_difference_yr):.2f} yr) needs a tile margin of "
+            f"{need:.1f} arcsec, more than tiling.order = {cfg.tiling.order} allows ({allowed:.1f} arcsec); "
+            "lower tiling.order or the radius"
+        )
+
+
+def from_dict(data: dict, base_dir: str | Path = ".") -> Config:
+    """Validate a configuration given as plain data (as read from TOML)."""
+    data = dict(data)
+    data.pop("base_dir", None)
+    data["base_dir"] = str(base_dir)
+    return convert(data, Config, "")
+
+
+def load_config(path: str | Path) -> Config:
+    """Read and validate a TOML configuration file."""
+    path = Path(path)
+    try:
+        text = path.read_text(encoding="utf-8")
+    except FileNotFoundError:
+        raise ConfigError(f"{path}: no such configuration file") from None
+    except OSError as exc:
+        raise ConfigError(f"{path}: cannot read ({exc.strerror})") from None
+    try:
+        data = tomllib.loads(text)
+    except tomllib.TOMLDecodeError as exc:
+        raise ConfigError(f"{path}: not valid TOML ({exc})") from None
+    try:
+        return from_dict(data, base_dir=path.resolve().parent)
+    except ConfigError as exc:
+        raise ConfigError(f"{path}: {exc}") from None
+
+
+def plain(cfg: Config) -> dict:
+    """The configuration as plain data, without the machine-dependent base folder."""
+    data = to_plain(cfg)
+    data.pop("base_dir")
+    return data
+
+
+def config_hash(cfg: Config, sections: tuple[str, ...] | None = None) -> str:
+    """SHA-256 of the canonical JSON form of the configuration (or of some of its sections).
+
+    Paths are hashed as written, so the same config file gives the same hash on any machine.
+    """
+    data = plain(cfg)
+    if sections is not None:
+        data = {k: data[k] for k in sections}
+    text = json.dumps(data, sort_keys=True, separators=(",", ":"), ensure_ascii=True)
+    return hashlib.sha256(text.encode()).hexdigest()
+
+
+#: Sections whose change alters the cross-match and so the feature cache.
+MATCH_SECTIONS = ("astrometric", "infrared", "tiling", "match")
+#: Sections that only select and rank from the feature cache.
+SELECTION_SECTIONS = ("motion", "colours", "ranking", "classifier")

@@ -1,0 +1,517 @@
+"""Ingest: map the user's columns onto roles, convert units, validate every row, split into tiles.
+
+The input is streamed chunk by chunk, so its size is bounded by disk, not memory:
+
+1. each chunk is mapped onto the canonical columns (:func:`map_chunk`), invalid rows go to the
+   rejects table with a reason code, and accepted rows are buffered per tile and spilled to a spool
+   folder; identifiers are spilled separately, hashed into buckets;
+2. each identifier bucket is checked for duplicates (the first occurrence in input order is kept);
+3. each tile's spooled parts are joined, duplicates dropped, rows sorted by a fine HEALPix index
+   and written as one Parquet file.
+
+Every row that enters is accounted for: ``rows_in == accepted + rejected`` is checked before the
+summary is written, and a mismatch is an internal error, never silently passed.
+"""
+
+from __future__ import annotations
+
+import json
+import shutil
+from collections import Counter, defaultdict
+from dataclasses import dataclass
+from pathlib import Path
+
+import astropy.units as u
+import numpy as np
+import pandas as pd
+import pyarrow as pa
+import pyarrow.compute as pc
+import pyarrow.parquet as pq
+
+from . import __version__, schema, tiles
+from .config import CatalogueConfig, Config, config_hash
+from .errors import InputError, SelectorError
+from .io import expand_files, fingerprint, iter_chunks, read_parquet, write_json, write_parquet
+from .photometry import VEGA_TO_AB_MAG
+
+#: Reason codes, in the order they are tested; a row is rejected for the first that applies.
+REASONS = (
+    "missing_id",
+    "unparsable_value",
+    "non_finite_position",
+    "dec_out_of_range",
+    "negative_error",
+    "correlation_out_of_range",
+    "non_finite_value",
+    "duplicate_id",
+)
+
+_AB_ZERO_POINT_JY = 3631.0  # Oke & Gunn 1983, ApJ 266, 713: the AB system's flux-density zero point
+_N_BUCKETS = 64
+_SPOOL_ROWS = 2_000_000
+
+
+@dataclass(frozen=True)
+class _Field:
+    """One output column: where it comes from and how it is converted and checked."""
+
+    canonical: str
+    source: str
+    kind: str                  # id, lon, lat, value, error, corr, text, magnitude, magnitude_error
+    scale: float | None = None  # multiply to get the canonical unit (None: decided per file)
+    unit: str | None = None     # canonical unit, also written to the Parquet field metadata
+    given_unit: str | None = None
+    band: str | None = None
+    offset_mag: float = 0.0    # added to an AB/Vega magnitude to reach the canonical system
+    flux: bool = False
+
+
+def plan_fields(cat: CatalogueConfig, kind: str) -> list[_Field]:
+    """The list of output columns of a catalogue, from its role mapping and magnitudes."""
+    out = []
+    for r in schema.ROLES[kind]:
+        spec = cat.columns.get(r.role)
+        if spec is None:
+            continue
+        out.append(_Field(r.canonical, spec.column, r.kind, unit=r.unit, given_unit=spec.unit))
+    for m in cat.magnitudes:
+        if kind == "infrared":
+            mag_col, err_col = schema.infrared_mag_column(m.band), schema.infrared_error_column(m.band)
+            # canonical infrared system is Vega: an AB column (or a flux) loses the band's AB offset
+            to_canonical = -VEGA_TO_AB_MAG[schema.INFRARED_BANDS[m.band]] if (m.system == "ab" or u.Unit(m.unit) != u.mag) else 0.0
+        else:
+            mag_col, err_col = schema.optical_mag_column(m.band), schema.optical_error_column(m.band)
+            to_canonical = float(m.vega_to_ab_mag) if (m.system == "vega" and u.Unit(m.unit) == u.mag) else 0.0
+        flux = u.Unit(m.unit) != u.mag
+        out.append(_Field(mag_col, m.column, "magnitude", unit="mag", given_unit=m.unit, band=m.band,
+                          offset_mag=to_canonical, flux=flux))
+        if m.error_column:
+            out.append(_Field(err_col, m.error_column, "magnitude_error", unit="mag", given_unit=m.unit,
+                              band=m.band, flux=flux))
+    return out
+
+
+def _source_columns(fields: list[_Field]) -> list[str]:
+    cols = []
+    for f in fields:
+        if f.source not in cols:
+            cols.append(f.source)
+    return cols
+
+
+def _scale(field: _Field, file_units: dict[str, str], path: Path) -> float:
+    """Factor from the column's unit (config, else the file's, else canonical) to the canonical unit."""
+    if field.unit is None or field.kind in ("magnitude", "magnitude_error"):
+        return 1.0
+    text = field.given_unit or file_units.get(field.source) or field.unit
+    try:
+        return float(u.Unit(text).to(u.Unit(field.unit)))
+    except (ValueError, u.UnitsError) as exc:
+        raise InputError(f"{path}: column '{field.source}' has unit {text!r}, which cannot be converted to "
+                         f"{field.unit} ({exc}); set its unit in the config") from None
+
+
+def _as_float(arr: pa.ChunkedArray | pa.Array) -> tuple[np.ndarray, np.ndarray]:
+    """float64 values (NaN for null) and a mask of values present but not parsable as numbers."""
+    if isinstance(arr, pa.ChunkedArray):
+        arr = arr.combine_chunks()
+    if pa.types.is_string(arr.type) or pa.types.is_large_string(arr.type):
+        try:
+            values = pc.cast(pc.utf8_trim_whitespace(arr), pa.float64())
+            return values.to_numpy(zero_copy_only=False).astype(float), np.zeros(len(arr), bool)
+        except pa.ArrowInvalid:
+            text = pd.Series(arr.to_pandas(), dtype=object)
+            values = pd.to_numeric(text.str.strip(), errors="coerce").to_numpy(float)
+            bad = text.notna().to_numpy() & np.isnan(values) & ~text.str.strip().str.lower().isin(["nan", ""]).to_numpy()
+            return values, bad
+    if pa.types.is_boolean(arr.type) or not (pa.types.is_integer(arr.type) or pa.types.is_floating(arr.type)
+                                            or pa.types.is_decimal(arr.type)):
+        raise TypeError(f"holds {arr.type} values, not numbers")
+    return pc.cast(arr, pa.float64()).to_numpy(zero_copy_only=False).astype(float), np.zeros(len(arr), bool)
+
+
+class _IdKind:
+    """Remembers whether a catalogue's ids are integers or text, fixed by the first chunk."""
+
+    def __init__(self):
+        self.kind = None
+
+    def convert(self, arr) -> tuple[pa.Array, np.ndarray, np.ndarray]:
+        """(ids, missing mask, unparsable mask)."""
+        if isinstance(arr, pa.ChunkedArray):
+            arr = arr.combine_chunks()
+        if self.kind is None:
+            self.kind = "int" if (pa.types.is_integer(arr.type) or pa.types.is_floating(arr.type)) else "text"
+        n = len(arr)
+        if self.kind == "int":
+            values, bad = _as_float(arr)
+            missing = np.isnan(values) & ~bad
+            integral = np.isfinite(values) & (values == np.round(values)) & (np.abs(values) < 2**63)
+            bad = bad | (~missing & ~integral)
+            if pa.types.is_integer(arr.type):
+                ids = pc.cast(arr, pa.int64()).fill_null(0)
+            else:
+                ids = pa.array(np.where(integral, values, 0).astype(np.int64))
+            return ids, missing, bad
+        text = pc.utf8_trim_whitespace(pc.cast(arr, pa.string()))
+        missing = pc.fill_null(pc.equal(text, ""), True).to_numpy(zero_copy_only=False)
+        return text.fill_null(""), missing, np.zeros(n, bool)
+
+
+def map_chunk(chunk, fields: list[_Field], id_kind: _IdKind):
+    """Map one input chunk onto canonical columns and validate it.
+
+    Returns
+    -------
+    table : pyarrow.Table
+        Canonical columns of every row of the chunk (rejected rows included, see ``reason``).
+    reason : numpy.ndarray of int8
+        Index into :data:`REASONS` of the first failing check, or −1 for an accepted row.
+    column : numpy.ndarray of object
+        The source column that failed, or None.
+    """
+    n = chunk.table.num_rows
+    reason = np.full(n, -1, np.int8)
+    column = np.full(n, None, object)
+
+    def flag(mask, code, source):
+        hit = mask & (reason < 0)
+        reason[hit] = REASONS.index(code)
+        column[hit] = source
+
+    arrays, names = [], []
+    checks = []  # deferred so that the reason order holds across columns
+    for f in fields:
+        raw = chunk.table.column(f.source)
+        if f.kind == "id":
+            ids, missing, bad = id_kind.convert(raw)
+            checks.append(("missing_id", missing, f.source))
+            checks.append(("unparsable_value", bad, f.source))
+            arrays.append(ids)
+            names.append(f.canonical)
+            continue
+        if f.kind == "text":
+            arrays.append(pc.cast(raw, pa.string()).combine_chunks() if isinstance(raw, pa.ChunkedArray)
+                          else pc.cast(raw, pa.string()))
+            names.append(f.canonical)
+            continue
+        try:
+            values, bad = _as_float(raw)
+        except TypeError as exc:
+            raise InputError(f"{chunk.path}: column '{f.source}' {exc}; map a numeric column to "
+                             f"{f.canonical}") from None
+        checks.append(("unparsable_value", bad, f.source))
+        if f.kind in ("magnitude", "magnitude_error"):
+            values = _magnitude(values, f, raw_flux=None) if f.kind == "magnitude" else values
+        else:
+            values = values * _scale(f, chunk.units, chunk.path)
+        if f.kind in ("lon", "lat"):
+            checks.append(("non_finite_position", ~np.isfinite(values), f.source))
+            if f.kind == "lat":
+                checks.append(("dec_out_of_range", np.abs(values) > 90.0, f.source))
+            else:
+                values = np.mod(values, 360.0)
+                values[values >= 360.0] = 0.0  # mod of a tiny negative number rounds up to 360
+        elif f.kind in ("error",):
+            checks.append(("negative_error", values < 0, f.source))
+            checks.append(("non_finite_value", np.isinf(values), f.source))
+        elif f.kind == "corr":
+            checks.append(("correlation_out_of_range", np.abs(values) > 1.0, f.source))
+        else:
+            checks.append(("non_finite_value", np.isinf(values), f.source))
+        arrays.append(pa.array(values, pa.float64()))
+        names.append(f.canonical)
+    # flux-density errors need the flux itself; done here once the magnitudes are known
+    arrays = _flux_errors(chunk, fields, names, arrays, checks)
+    for code in REASONS:
+        for c, mask, source in checks:
+            if c == code:
+                flag(mask, code, source)
+    return pa.table(arrays, names=names), reason, column
+
+
+def _magnitude(values: np.ndarray, f: _Field, raw_flux=None) -> np.ndarray:
+    if f.flux:
+        jy = values * float(u.Unit(f.given_unit).to(u.Jy))
+        with np.errstate(divide="ignore", invalid="ignore"):
+            # a non-positive flux is a non-detection: missing, not an error
+            mag = np.where(jy > 0, -2.5 * np.log10(jy / _AB_ZERO_POINT_JY), np.nan)
+        return mag + f.offset_mag
+    return values + f.offset_mag
+
+
+def _flux_errors(chunk, fields, names, arrays, checks):
+    for f in fields:
+        if f.kind != "magnitude_error":
+            continue
+        i = names.index(f.canonical)
+        err = arrays[i].to_numpy(zero_copy_only=False)
+        checks.append(("negative_error", err < 0, f.source))
+        checks.append(("non_finite_value", np.isinf(err), f.source))
+        if f.flux:
+            mag_field = next(g for g in fields if g.kind == "magnitude" and g.band == f.band)
+            flux, _ = _as_float(chunk.table.column(mag_field.source))
+            with np.errstate(divide="ignore", invalid="ignore"):
+                # first-order propagation of a flux error into magnitudes: 2.5/ln(10) · σ_f / f
+                err = np.where(flux > 0, 2.5 / np.log(10.0) * err / flux, np.nan)
+            arrays[i] = pa.array(err, pa.float64())
+    return arrays
+
+
+def _raw_rows(chunk, rows: np.ndarray, sources: list[str]) -> list[str]:
+    """JSON of the original values of some rows, so a rejected row can be found and mended."""
+    sub = chunk.table.select(sources).take(pa.array(rows, pa.int64())).to_pylist()
+    return [json.dumps({k: (None if v is None else str(v)) for k, v in r.items()}, sort_keys=True) for r in sub]
+
+
+REJECT_SCHEMA = pa.schema([
+    ("input_file", pa.string()), ("input_row", pa.int64()), ("reason", pa.string()),
+    ("column", pa.string()), ("values", pa.string()),
+])
+
+
+@dataclass
+class IngestSummary:
+    catalogue: str
+    rows_in: int
+    accepted: int
+    rejected: dict[str, int]
+    rows_per_tile: dict[int, int]
+    files: dict[str, str]
+
+    def as_dict(self):
+        return {
+            "catalogue": self.catalogue, "rows_in": self.rows_in, "accepted": self.accepted,
+            "rejected": dict(sorted(self.rejected.items())), "rejected_total": sum(self.rejected.values()),
+            "rows_per_tile": {str(k): v for k, v in sorted(self.rows_per_tile.items())},
+            "input_fingerprints": dict(sorted(self.files.items())),
+        }
+
+
+def catalogue_dir(cfg: Config, kind: str) -> Path:
+    return cfg.tiles_dir / kind
+
+
+def ingest_catalogue(cfg: Config, kind: str, log=print) -> IngestSummary:
+    """Ingest one catalogue (``astrometric``, ``infrared`` or ``known``) into tiles."""
+    cat: CatalogueConfig = getattr(cfg, kind)
+    fields = plan_fields(cat, kind)
+    sources = _source_columns(fields)
+    paths = expand_files(cat.files, cfg.path("."))
+    order = cfg.tiling.order
+    out_dir = catalogue_dir(cfg, kind)
+    spool = out_dir / ".spool"
+    if spool.exists():
+        shutil.rmtree(spool)
+    spool.mkdir(parents=True)
+    tiled = kind != "known"
+    id_col = schema.ID_COLUMN[kind]
+
+    rows_in = 0
+    rejected: Counter = Counter()
+    reject_parts: list[pa.Table] = []
+    file_starts: list[int] = []
+    buffers: dict[int, list[pa.Table]] = defaultdict(list)
+    id_buffers: list[pa.Table] = []
+    buffered = 0
+    flushes = 0
+    id_kind = _IdKind()
+
+    def flush():
+        nonlocal buffered, flushes
+        for tile, parts in buffers.items():
+            pq.write_table(pa.concat_tables(parts), spool / f"t{tile}-{flushes:05d}.parquet", compression="lz4")
+        if id_buffers:
+            ids = pa.concat_tables(id_buffers)
+            bucket = ids.column("_bucket").to_numpy()
+            orderb = np.argsort(bucket, kind="stable")
+            ids = ids.take(orderb)
+            bucket = bucket[orderb]
+            edges = np.searchsorted(bucket, np.arange(_N_BUCKETS + 1))
+            for b in range(_N_BUCKETS):
+                if edges[b + 1] > edges[b]:
+                    pq.write_table(ids.slice(edges[b], edges[b + 1] - edges[b]).drop(["_bucket"]),
+                                   spool / f"id{b:03d}-{flushes:05d}.parquet", compression="lz4")
+        buffers.clear()
+        id_buffers.clear()
+        buffered = 0
+        flushes += 1
+
+    last_path = None
+    for chunk in iter_chunks(paths, cat.format, sources, cat.chunk_rows):
+        if chunk.path != last_path:
+            file_starts.append(rows_in)
+            last_path = chunk.path
+        n = chunk.table.num_rows
+        table, reason, column = map_chunk(chunk, fields, id_kind)
+        bad = np.flatnonzero(reason >= 0)
+        if bad.size:
+            rejected.update(REASONS[i] for i in reason[bad])
+            reject_parts.append(pa.table({
+                "input_file": pa.array([str(chunk.path)] * bad.size, pa.string()),
+                "input_row": pa.array(chunk.first_row + bad, pa.int64()),
+                "reason": pa.array([REASONS[i] for i in reason[bad]], pa.string()),
+                "column": pa.array(list(column[bad]), pa.string()),
+                "values": pa.array(_raw_rows(chunk, bad, sources), pa.string()),
+            }, schema=REJECT_SCHEMA))
+        good = np.flatnonzero(reason < 0)
+        table = table.take(pa.array(good, pa.int64()))
+        global_row = rows_in + good
+        ra = table.column("ra_deg").to_numpy()
+        dec = table.column("dec_deg").to_numpy()
+        fine = tiles.fine_index(ra, dec)
+        tile = tiles.parent(fine, order) if tiled else np.zeros(len(fine), np.int64)
+        table = table.append_column("_fine", pa.array(fine)).append_column("_row", pa.array(global_row, pa.int64()))
+        ids = table.column(id_col)
+        bucket = (pd.util.hash_array(ids.to_numpy(zero_copy_only=False)) % _N_BUCKETS).astype(np.int16)
+        id_buffers.append(pa.table({"_id": ids, "_row": pa.array(global_row, pa.int64()), "_bucket": bucket}))
+        if len(tile):
+            order_t = np.argsort(tile, kind="stable")
+            table = table.take(pa.array(order_t))
+            tile = tile[order_t]
+            starts = np.flatnonzero(np.r_[True, tile[1:] != tile[:-1]])
+            ends = np.r_[starts[1:], len(tile)]
+            for s, e in zip(starts, ends):
+                buffers[int(tile[s])].append(table.slice(s, e - s))
+        rows_in += n
+        buffered += n
+        if buffered >= _SPOOL_ROWS:
+            flush()
+    if flushes:
+        flush()
+        tile_parts, id_parts = defaultdict(list), defaultdict(list)
+        for p in sorted(spool.glob("t*.parquet")):
+            tile_parts[int(p.name[1:].split("-")[0])].append(p)
+        for p in sorted(spool.glob("id*.parquet")):
+            id_parts[p.name[2:5]].append(p)
+    else:
+        # everything fitted in memory: no need for a round trip through the spool
+        tile_parts = {t: [pa.concat_tables(parts)] for t, parts in buffers.items()}
+        id_parts = {0: id_buffers}
+
+    duplicates = _find_duplicates(id_parts)
+    file_list = [str(p) for p in paths]
+    if duplicates.size:
+        rejected["duplicate_id"] += int(duplicates.size)
+    rows_per_tile = _write_tiles(cfg, kind, tile_parts, out_dir, order, duplicates, id_col, fields, tiled, reject_parts,
+                                 file_list, np.asarray(file_starts))
+    accepted = sum(rows_per_tile.values())
+    shutil.rmtree(spool)
+
+    rejects = pa.concat_tables(reject_parts) if reject_parts else REJECT_SCHEMA.empty_table()
+    rejects = rejects.sort_by([("input_file", "ascending"), ("input_row", "ascending")])
+    write_parquet(rejects, out_dir / "rejects.parquet")
+    summary = IngestSummary(kind, rows_in, accepted, dict(rejected), rows_per_tile,
+                            {str(p): fingerprint(p) for p in paths})
+    if rows_in != accepted + sum(rejected.values()) or len(rejects) != sum(rejected.values()):
+        raise SelectorError(f"internal error: {kind} ingest lost rows ({rows_in} in, {accepted} accepted, "
+                            f"{sum(rejected.values())} rejected); nothing was trusted, please report this")
+    info = summary.as_dict()
+    info.update({"order": order, "epoch_jyear": cat.epoch_jyear, "version": __version__,
+                 "config_hash": config_hash(cfg, (kind, "tiling"))})
+    write_json(info, out_dir / "summary.json")
+    return summary
+
+
+def _load(part) -> pa.Table:
+    return part if isinstance(part, pa.Table) else pq.read_table(part)
+
+
+def _find_duplicates(buckets: dict) -> np.ndarray:
+    """Global row numbers of every repeat of an id (all but its first occurrence in input order).
+
+    ``buckets`` maps a hash bucket to its parts (tables or spooled files); equal ids share a bucket,
+    so each bucket is checked on its own and memory is bounded by the largest bucket.
+    """
+    out = []
+    for b in sorted(buckets):
+        if not buckets[b]:
+            continue
+        t = pa.concat_tables([_load(p) for p in buckets[b]])
+        if "_bucket" in t.column_names:
+            t = t.drop(["_bucket"])
+        t = t.sort_by([("_id", "ascending"), ("_row", "ascending")])
+        ids = t.column("_id").to_numpy(zero_copy_only=False)
+        rows = t.column("_row").to_numpy()
+        if len(ids) > 1:
+            repeat = np.r_[False, ids[1:] == ids[:-1]]
+            out.append(rows[repeat])
+    return np.sort(np.concatenate(out)) if out else np.zeros(0, np.int64)
+
+
+def _write_tiles(cfg, kind, parts, out_dir, order, duplicates, id_col, fields, tiled, reject_parts, file_list,
+                 file_starts):
+    units = {f.canonical: f.unit for f in fields if f.unit}
+    meta = {"catalogue": kind, "order": str(order), "epoch_jyear": json.dumps(getattr(cfg, kind).epoch_jyear),
+            "version": __version__}
+    rows_per_tile = {}
+    written = set()
+    for tile in sorted(parts):
+        t = pa.concat_tables([_load(p) for p in parts[tile]])
+        rows = t.column("_row").to_numpy()
+        dup = np.isin(rows, duplicates) if duplicates.size else np.zeros(len(rows), bool)
+        if dup.any():
+            d = t.filter(pa.array(dup))
+            drow = d.column("_row").to_numpy()
+            fidx = np.searchsorted(file_starts, drow, side="right") - 1
+            reject_parts.append(pa.table({
+                "input_file": pa.array([file_list[i] for i in fidx], pa.string()),
+                "input_row": pa.array(drow - file_starts[fidx], pa.int64()),
+                "reason": pa.array(["duplicate_id"] * len(drow), pa.string()),
+                "column": pa.array([getattr(cfg, kind).columns["id" if kind != "known" else "name"].column] * len(drow),
+                                   pa.string()),
+                "values": pa.array([json.dumps({k: (None if v is None else str(v)) for k, v in r.items()},
+                                               sort_keys=True) for r in d.drop(["_fine", "_row"]).to_pylist()],
+                                   pa.string()),
+            }, schema=REJECT_SCHEMA))
+            t = t.filter(pa.array(~dup))
+        t = t.sort_by([("_fine", "ascending"), (id_col, "ascending")]).drop(["_fine", "_row"])
+        t = _with_units(t, units)
+        if tiled:
+            path = tiles.tile_file(out_dir.parent, kind, order, tile)
+            write_parquet(t, path, {**meta, "tile": str(tile)})
+            written.add(path.name)
+        else:
+            write_parquet(t, out_dir / "objects.parquet", meta)
+        rows_per_tile[tile] = t.num_rows
+    if tiled:
+        folder = tiles.tile_file(out_dir.parent, kind, order, 0).parent
+        # tiles left from an earlier ingest of other data would otherwise be read as current
+        for stale in folder.glob("tile*.parquet") if folder.exists() else []:
+            if stale.name not in written:
+                stale.unlink()
+    elif not parts:
+        empty = pa.table({f.canonical: pa.array([], pa.float64()) for f in fields})
+        write_parquet(empty, out_dir / "objects.parquet", meta)
+    return rows_per_tile
+
+
+def _with_units(table: pa.Table, units: dict[str, str]) -> pa.Table:
+    fields = [f.with_metadata({"unit": units[f.name]}) if f.name in units else f for f in table.schema]
+    return table.cast(pa.schema(fields, metadata=table.schema.metadata))
+
+
+def ingest(cfg: Config, log=print) -> dict[str, IngestSummary]:
+    """Ingest every configured catalogue; returns the summaries by catalogue."""
+    out = {}
+    for kind in ("astrometric", "infrared", "known"):
+        if getattr(cfg, kind) is None:
+            continue
+        s = ingest_catalogue(cfg, kind, log)
+        log(f"{kind}: {s.rows_in} rows in, {s.accepted} accepted, {sum(s.rejected.values())} rejected"
+            + (f" ({', '.join(f'{k}: {v}' for k, v in sorted(s.rejected.items()))})" if s.rejected else "")
+            + (f", {len(s.rows_per_tile)} tiles" if kind != "known" else ""))
+        out[kind] = s
+    return out
+
+
+def load_summary(cfg: Config, kind: str) -> dict:
+    path = catalogue_dir(cfg, kind) / "summary.json"
+    if not path.exists():
+        raise SelectorError(f"{path}: not found; run `selector ingest --config ...` first")
+    return json.loads(path.read_text())
+
+
+def read_tile(cfg: Config, kind: str, tile: int) -> pa.Table:
+    """One tile of an ingested catalogue."""
+    return read_parquet(tiles.tile_file(cfg.tiles_dir, kind, cfg.tiling.order, tile))

@@ -1,0 +1,286 @@
+"""Readers for the input formats and atomic writers for every output.
+
+Readers yield :class:`Chunk` objects: a pyarrow table holding only the requested columns, with the
+file it came from, the row number of its first row in that file, and the units the file declares.
+Parquet and CSV are streamed in chunks, so an input larger than memory can be ingested; FITS, ECSV
+and VOTable are read through astropy (FITS memory-mapped) and handed out in chunks of the same size.
+"""
+
+from __future__ import annotations
+
+import glob
+import hashlib
+import json
+import os
+import tempfile
+from contextlib import contextmanager
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Iterator, Sequence
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.csv as pacsv
+import pyarrow.parquet as pq
+
+from .errors import InputError
+
+_ENDINGS = {
+    ".parquet": "parquet", ".pq": "parquet", ".fits": "fits", ".fit": "fits", ".fits.gz": "fits",
+    ".csv": "csv", ".csv.gz": "csv", ".ecsv": "ecsv", ".vot": "votable", ".votable": "votable", ".xml": "votable",
+}
+
+
+@dataclass
+class Chunk:
+    """A slice of one input file."""
+
+    path: Path
+    first_row: int
+    table: pa.Table
+    units: dict[str, str] = field(default_factory=dict)
+
+
+def expand_files(patterns: Sequence[str], base: Path) -> list[Path]:
+    """Resolve files, folders (every file below, sorted) and glob patterns, in a stable order."""
+    found: list[Path] = []
+    for pattern in patterns:
+        p = Path(pattern).expanduser()
+        p = p if p.is_absolute() else Path(base) / p
+        if p.is_dir():
+            members = sorted(q for q in p.rglob("*") if q.is_file() and not q.name.startswith((".", "_")))
+            if not members:
+                raise InputError(f"{p}: folder holds no files")
+            found.extend(members)
+        elif any(ch in str(pattern) for ch in "*?["):
+            members = sorted(Path(m) for m in glob.glob(str(p), recursive=True) if Path(m).is_file())
+            if not members:
+                raise InputError(f"{pattern}: no file matches this pattern (looked in {base})")
+            found.extend(members)
+        elif p.is_file():
+            found.append(p)
+        else:
+            raise InputError(f"{p}: no such file")
+    seen, unique = set(), []
+    for p in found:
+        if p not in seen:
+            seen.add(p)
+            unique.append(p)
+    return unique
+
+
+def guess_format(path: Path) -> str:
+    name = path.name.lower()
+    for ending in sorted(_ENDINGS, key=len, reverse=True):
+        if name.endswith(ending):
+            return _ENDINGS[ending]
+    raise InputError(f"{path}: cannot tell the format from the file name; set format = parquet, fits, csv, ecsv or votable")
+
+
+def iter_chunks(paths: Sequence[Path], fmt: str, columns: Sequence[str], chunk_rows: int) -> Iterator[Chunk]:
+    """Yield the requested columns of every file in chunks of at most ``chunk_rows`` rows."""
+    for path in paths:
+        kind = guess_format(path) if fmt == "auto" else fmt
+        reader = {"parquet": _parquet, "csv": _csv}.get(kind, _astropy)
+        try:
+            yield from reader(path, kind, list(columns), chunk_rows)
+        except InputError:
+            raise
+        except (OSError, ValueError, pa.ArrowException, TypeError) as exc:
+            raise InputError(f"{path}: cannot read as {kind} ({_first_line(exc)})") from None
+
+
+def _first_line(exc) -> str:
+    text = str(exc).strip().splitlines()
+    return text[0] if text else type(exc).__name__
+
+
+def _missing(path: Path, have: Sequence[str], want: Sequence[str]):
+    import difflib
+
+    gone = [c for c in want if c not in have]
+    if gone:
+        hint = difflib.get_close_matches(gone[0], list(have), n=1)
+        extra = f" (did you mean '{hint[0]}'?)" if hint else ""
+        raise InputError(f"{path}: column '{gone[0]}' named in the config is not in the file{extra}")
+
+
+def _parquet(path, kind, columns, chunk_rows):
+    pf = pq.ParquetFile(path)
+    _missing(path, pf.schema_arrow.names, columns)
+    units = _arrow_units(pf.schema_arrow)
+    first = 0
+    for batch in pf.iter_batches(batch_size=chunk_rows, columns=columns):
+        table = pa.Table.from_batches([batch])
+        yield Chunk(path, first, table, units)
+        first += table.num_rows
+
+
+def _arrow_units(schema: pa.Schema) -> dict[str, str]:
+    """Units stored in Parquet field metadata under ``unit`` (as our writers do)."""
+    units = {}
+    for f in schema:
+        if f.metadata and b"unit" in f.metadata:
+            units[f.name] = f.metadata[b"unit"].decode()
+    return units
+
+
+def _csv(path, kind, columns, chunk_rows):
+    # Every column is read as text so that an unparsable value rejects its own row, not the file.
+    with open(path, "rb") as fh:
+        header = fh.readline().decode("utf-8", "replace").strip().split(",")
+    header = [h.strip().strip('"') for h in header]
+    _missing(path, header, columns)
+    convert = pacsv.ConvertOptions(include_columns=columns, column_types={c: pa.string() for c in columns},
+                                   strings_can_be_null=True, quoted_strings_can_be_null=True)
+    read = pacsv.ReadOptions(block_size=max(1 << 20, chunk_rows * 64))
+    reader = pacsv.open_csv(path, read_options=read, convert_options=convert)
+    first = 0
+    pending: list[pa.RecordBatch] = []
+    rows = 0
+    for batch in reader:
+        pending.append(batch)
+        rows += batch.num_rows
+        while rows >= chunk_rows:
+            table = pa.Table.from_batches(pending).combine_chunks()
+            yield Chunk(path, first, table.slice(0, chunk_rows))
+            first += chunk_rows
+            rest = table.slice(chunk_rows)
+            pending, rows = rest.to_batches(), rest.num_rows
+    if rows:
+        yield Chunk(path, first, pa.Table.from_batches(pending, schema=reader.schema))
+
+
+def _astropy(path, kind, columns, chunk_rows):
+    from astropy.table import Table
+
+    fmt = {"fits": "fits", "ecsv": "ascii.ecsv", "votable": "votable"}[kind]
+    kwargs = {"memmap": True} if kind == "fits" else {}
+    try:
+        tab = Table.read(path, format=fmt, **kwargs)
+    except Exception as exc:  # astropy raises many types for unreadable files
+        raise InputError(f"{path}: cannot read as {kind} ({_first_line(exc)})") from None
+    _missing(path, tab.colnames, columns)
+    units = {c: str(tab[c].unit) for c in columns if tab[c].unit is not None}
+    for first in range(0, max(len(tab), 1), chunk_rows):
+        part = tab[first:first + chunk_rows]
+        if len(tab) == 0:
+            part = tab
+        arrays = [_astropy_column_to_arrow(part[c]) for c in columns]
+        yield Chunk(path, first, pa.table(arrays, names=list(columns)), units)
+        if len(tab) == 0:
+            break
+
+
+def _astropy_column_to_arrow(col) -> pa.Array:
+    data = np.asarray(col)
+    mask = np.asarray(getattr(col, "mask", np.zeros(len(col), bool)), bool)
+    if data.ndim > 1:
+        raise InputError(f"column '{col.name}' holds arrays, not one value per row")
+    if data.dtype.kind == "S":
+        data = np.char.decode(data, "utf-8", "replace")
+    if data.dtype.kind in "U":
+        data = np.char.strip(data)
+        return pa.array(data.astype(object), type=pa.string(), mask=mask | (data == ""))
+    if data.dtype.byteorder not in ("=", "|"):
+        data = data.astype(data.dtype.newbyteorder("="))
+    if mask.shape != data.shape:
+        mask = np.zeros(data.shape, bool)
+    return pa.array(data, mask=mask if mask.any() else None)
+
+
+# --- fingerprints -------------------------------------------------------------------------------
+
+def fingerprint(path: Path, sample_bytes: int = 1 << 20) -> str:
+    """A content fingerprint: size plus SHA-256 of the first, middle and last MiB.
+
+    Reading whole billion-row files just to notice a change would cost as much as ingesting them;
+    sampled blocks and the size catch rewritten, truncated and appended files.
+    """
+    path = Path(path)
+    size = path.stat().st_size
+    h = hashlib.sha256(str(size).encode())
+    with open(path, "rb") as fh:
+        for offset in sorted({0, max(0, size // 2 - sample_bytes // 2), max(0, size - sample_bytes)}):
+            fh.seek(offset)
+            h.update(fh.read(sample_bytes))
+    return f"{size}:{h.hexdigest()[:32]}"
+
+
+def file_sha256(path: Path) -> str:
+    """Full SHA-256 of a (small) file."""
+    h = hashlib.sha256()
+    with open(path, "rb") as fh:
+        for block in iter(lambda: fh.read(1 << 20), b""):
+            h.update(block)
+    return h.hexdigest()
+
+
+# --- atomic writers -----------------------------------------------------------------------------
+
+@contextmanager
+def atomic_path(path: Path):
+    """Yield a temporary path beside ``path``; on success fsync it and rename it into place."""
+    path = Path(path)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
+    os.close(fd)
+    try:
+        yield Path(tmp)
+        with open(tmp, "rb") as fh:
+            os.fsync(fh.fileno())
+        os.replace(tmp, path)
+    except BaseException:
+        Path(tmp).unlink(missing_ok=True)
+        raise
+
+
+def write_parquet(table: pa.Table, path: Path, metadata: dict | None = None) -> Path:
+    """Write a Parquet file atomically with fixed options, so equal tables give equal bytes."""
+    if metadata:
+        meta = dict(table.schema.metadata or {})
+        meta.update({k.encode(): (v if isinstance(v, str) else json.dumps(v, sort_keys=True)).encode()
+                     for k, v in metadata.items()})
+        table = table.replace_schema_metadata(meta)
+    with atomic_path(path) as tmp:
+        pq.write_table(table, tmp, compression="zstd", row_group_size=1 << 20, write_statistics=True)
+    return Path(path)
+
+
+def write_json(data, path: Path) -> Path:
+    """Write JSON atomically with sorted keys (deterministic bytes)."""
+    with atomic_path(path) as tmp:
+        tmp.write_text(json.dumps(data, indent=2, sort_keys=True, default=_json_default) + "\n", encoding="utf-8")
+    return Path(path)
+
+
+def write_text(text: str, path: Path) -> Path:
+    with atomic_path(path) as tmp:
+        tmp.write_text(text, encoding="utf-8")
+    return Path(path)
+
+
+def write_table(table, path: Path, fmt: str) -> Path:
+    """Write an astropy Table atomically in ``ecsv``, ``csv``, ``votable`` or ``fits``."""
+    astropy_fmt = {"ecsv": "ascii.ecsv", "csv": "ascii.csv", "votable": "votable", "fits": "fits"}[fmt]
+    with atomic_path(path) as tmp:
+        table.write(tmp, format=astropy_fmt, overwrite=True)
+    return Path(path)
+
+
+def _json_default(obj):
+    if isinstance(obj, np.integer):
+        return int(obj)
+    if isinstance(obj, np.floating):
+        return float(obj)
+    if isinstance(obj, (Path,)):
+        return str(obj)
+    raise TypeError(type(obj))
+
+
+def read_parquet(path: Path, columns: Sequence[str] | None = None) -> pa.Table:
+    """Read one of our own Parquet outputs, with a one-line error when it is damaged."""
+    try:
+        return pq.read_table(path, columns=columns)
+    except (OSError, pa.ArrowException) as exc:
+        raise InputError(f"{path}: cannot read ({_first_line(exc)})") from None

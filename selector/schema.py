@@ -1,0 +1,136 @@
+"""Column roles: what each catalogue must provide, the canonical internal names and units.
+
+A user's catalogue may call its columns anything and give them in any unit astropy understands; the
+configuration maps each *role* below onto one of the user's columns. Ingest converts every role to
+the canonical column name and unit listed here, so every later stage sees one vocabulary.
+
+Canonical units (units live in the names): positions in ICRS degrees, astrometric position errors in
+mas, parallaxes in mas, proper motions in mas/yr (``pmra`` includes the cos δ factor), infrared
+positional errors in arcsec, infrared magnitudes in the Vega system, optical magnitudes in the AB
+system.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+#: Infrared bands by wavelength: config label → canonical suffix, wavelength in micron.
+INFRARED_BANDS = {"3.4": "3p4", "4.6": "4p6", "12": "12", "22": "22"}
+
+
+@dataclass(frozen=True)
+class Role:
+    """One thing a catalogue provides.
+
+    Attributes
+    ----------
+    role : str
+        The key used in the configuration's ``columns`` table.
+    canonical : str
+        The internal column name written to tiles.
+    kind : str
+        ``id`` (integer or string identifier), ``lon``/``lat`` (a position, wrapped or range-checked),
+        ``value`` (a finite-or-missing quantity), ``error`` (non-negative), ``corr`` (in [−1, 1]),
+        ``text`` (kept as a string), ``magnitude`` and ``magnitude_error``.
+    unit : str or None
+        Canonical astropy unit the input is converted to; None for dimensionless or text roles.
+    required : bool
+        Whether the configuration must map this role.
+    doc : str
+        What the role means, for error messages and the documented default configuration.
+    """
+
+    role: str
+    canonical: str
+    kind: str
+    unit: str | None
+    required: bool
+    doc: str
+
+
+_CORRELATION_PAIRS = [
+    ("ra", "dec"), ("ra", "parallax"), ("ra", "pmra"), ("ra", "pmdec"), ("dec", "parallax"),
+    ("dec", "pmra"), ("dec", "pmdec"), ("parallax", "pmra"), ("parallax", "pmdec"),
+]
+
+ASTROMETRIC_ROLES = (
+    Role("id", "astro_id", "id", None, True, "unique source identifier (integer or text)"),
+    Role("ra", "ra_deg", "lon", "deg", True, "right ascension (ICRS) at the catalogue epoch"),
+    Role("dec", "dec_deg", "lat", "deg", True, "declination (ICRS) at the catalogue epoch"),
+    Role("ra_error", "ra_error_mas", "error", "mas", False, "uncertainty of RA, including cos(dec)"),
+    Role("dec_error", "dec_error_mas", "error", "mas", False, "uncertainty of declination"),
+    Role("parallax", "parallax_mas", "value", "mas", True, "parallax"),
+    Role("parallax_error", "parallax_error_mas", "error", "mas", True, "parallax uncertainty"),
+    Role("pmra", "pmra_mas_yr", "value", "mas / yr", True, "proper motion in RA, including cos(dec)"),
+    Role("pmdec", "pmdec_mas_yr", "value", "mas / yr", True, "proper motion in declination"),
+    Role("pmra_error", "pmra_error_mas_yr", "error", "mas / yr", True, "uncertainty of pmra"),
+    Role("pmdec_error", "pmdec_error_mas_yr", "error", "mas / yr", True, "uncertainty of pmdec"),
+    Role("pmra_pmdec_corr", "pmra_pmdec_corr", "corr", None, False, "correlation of pmra and pmdec"),
+    *(
+        Role(f"{a}_{b}_corr", f"{a}_{b}_corr", "corr", None, False, f"correlation of {a} and {b}")
+        for a, b in _CORRELATION_PAIRS
+    ),
+    Role("fit_quality", "fit_quality", "value", None, False,
+         "astrometric fit-quality indicator (larger = worse fit, e.g. a normalised error of unit weight)"),
+)
+
+INFRARED_ROLES = (
+    Role("id", "ir_id", "id", None, True, "unique source identifier (integer or text)"),
+    Role("ra", "ra_deg", "lon", "deg", True, "right ascension (ICRS) at the catalogue epoch"),
+    Role("dec", "dec_deg", "lat", "deg", True, "declination (ICRS) at the catalogue epoch"),
+    Role("position_error", "pos_error_arcsec", "error", "arcsec", False, "positional uncertainty (1 sigma, per axis)"),
+    Role("flags", "ir_flags", "text", None, False, "quality flags, kept as text"),
+)
+
+KNOWN_ROLES = (
+    Role("name", "known_name", "text", None, True, "name of the known object"),
+    Role("ra", "ra_deg", "lon", "deg", True, "right ascension (ICRS)"),
+    Role("dec", "dec_deg", "lat", "deg", True, "declination (ICRS)"),
+    Role("class", "known_class", "text", None, True, "class, e.g. quasar, star, galaxy"),
+    Role("redshift", "redshift", "value", None, False, "redshift"),
+)
+
+ROLES = {"astrometric": ASTROMETRIC_ROLES, "infrared": INFRARED_ROLES, "known": KNOWN_ROLES}
+
+#: Canonical name of the identifier column of each catalogue.
+ID_COLUMN = {"astrometric": "astro_id", "infrared": "ir_id", "known": "known_name"}
+
+
+def optical_mag_column(band: str) -> str:
+    """Canonical column of an optical band (AB magnitudes), e.g. ``opt_broad_abmag``."""
+    return f"opt_{band}_abmag"
+
+
+def optical_error_column(band: str) -> str:
+    """Canonical column of an optical band's magnitude uncertainty, in mag."""
+    return f"opt_{band}_mag_error"
+
+
+def infrared_mag_column(band: str) -> str:
+    """Canonical column of an infrared band (Vega magnitudes); ``band`` is a label such as ``"3.4"``."""
+    return f"ir_{INFRARED_BANDS[band]}_vegamag"
+
+
+def infrared_error_column(band: str) -> str:
+    """Canonical column of an infrared band's magnitude uncertainty, in mag."""
+    return f"ir_{INFRARED_BANDS[band]}_mag_error"
+
+
+def role(catalogue: str, name: str) -> Role:
+    """Look a role up by catalogue and role name."""
+    for r in ROLES[catalogue]:
+        if r.role == name:
+            return r
+    raise KeyError(name)
+
+
+_UNIT_SUFFIXES = (("_mas_yr", "mas / yr"), ("_mas", "mas"), ("_arcsec", "arcsec"), ("_deg", "deg"),
+                  ("_vegamag", "mag"), ("_abmag", "mag"), ("_mag_error", "mag"), ("_mag", "mag"), ("_jyear", "yr"))
+
+
+def unit_of(column: str) -> str | None:
+    """The unit a canonical column name carries in its suffix (``ra_deg`` → ``deg``), or None."""
+    for suffix, unit in _UNIT_SUFFIXES:
+        if column.endswith(suffix):
+            return unit
+    return None

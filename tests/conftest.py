@@ -1,0 +1,85 @@
+"""Shared helpers: small synthetic catalogues written in any format, and configs that describe them."""
+
+from __future__ import annotations
+
+import copy
+import os
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+os.environ.setdefault("MPLBACKEND", "Agg")
+
+from selector.config import from_dict  # noqa: E402
+
+#: A minimal valid configuration as plain data; tests copy and edit it.
+BASE = {
+    "project": {"output_dir": "out"},
+    "tiling": {"order": 2},
+    "astrometric": {
+        "files": ["astro.parquet"],
+        "epoch_jyear": 2016.0,
+        "columns": {
+            "id": "sid", "ra": "ra", "dec": "dec", "parallax": "plx", "parallax_error": "eplx",
+            "pmra": "pmra", "pmdec": "pmdec", "pmra_error": "epmra", "pmdec_error": "epmdec",
+        },
+        "magnitudes": [{"band": "broad", "column": "g", "error_column": "eg", "system": "ab"}],
+    },
+    "infrared": {
+        "files": ["ir.parquet"],
+        "epoch_jyear": 2010.0,
+        "columns": {"id": "wid", "ra": "ra", "dec": "dec"},
+        "magnitudes": [
+            {"band": "3.4", "column": "w1", "error_column": "ew1"},
+            {"band": "4.6", "column": "w2", "error_column": "ew2"},
+        ],
+    },
+}
+
+
+def base_config() -> dict:
+    return copy.deepcopy(BASE)
+
+
+def build(data: dict, base_dir: Path = Path(".")):
+    return from_dict(data, base_dir=base_dir)
+
+
+def random_astro(n: int, rng: np.random.Generator, ra=None, dec=None):
+    """Astrometric rows with the column names of :data:`BASE` (zero true motion)."""
+    if ra is None:
+        ra = rng.uniform(0, 360, n)
+        dec = np.degrees(np.arcsin(rng.uniform(-1, 1, n)))
+    return {
+        "sid": np.arange(1, n + 1, dtype=np.int64), "ra": ra, "dec": dec,
+        "plx": rng.normal(0, 0.1, n), "eplx": np.full(n, 0.1),
+        "pmra": rng.normal(0, 0.1, n), "pmdec": rng.normal(0, 0.1, n),
+        "epmra": np.full(n, 0.1), "epmdec": np.full(n, 0.1),
+        "g": rng.uniform(16, 20, n), "eg": np.full(n, 0.01),
+    }
+
+
+def random_ir(n: int, rng: np.random.Generator, ra=None, dec=None):
+    if ra is None:
+        ra = rng.uniform(0, 360, n)
+        dec = np.degrees(np.arcsin(rng.uniform(-1, 1, n)))
+    w2 = rng.uniform(12, 16, n)
+    return {
+        "wid": np.array([f"IR{i:07d}" for i in range(n)]), "ra": ra, "dec": dec,
+        "w1": w2 + rng.uniform(-0.2, 1.5, n), "ew1": np.full(n, 0.03),
+        "w2": w2, "ew2": np.full(n, 0.05),
+    }
+
+
+def write_parquet(columns: dict, path: Path):
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    pq.write_table(pa.table(columns), path)
+    return path
+
+
+@pytest.fixture
+def rng():
+    return np.random.default_rng(12345)
