@@ -1,0 +1,1263 @@
+"""The invented mock sky used by the demo and the tests.
+
+Everything here is fictional: two made-up surveys observed a handful of sky patches at made-up
+epochs.  The *astrometric* catalogue measures optical positions, parallaxes and proper motions at
+:data:`ASTROMETRIC_EPOCH_JYEAR`; the *infrared* catalogue measures positions and Vega magnitudes at
+3.4, 4.6, 12 and 22 µm at :data:`INFRARED_EPOCH_JYEAR`, about six years earlier.  A third, small
+*known-objects* catalogue lists spectroscopically "confirmed" quasars, stars and galaxies, and a
+*truth* table labels every row of the first two catalogues.
+
+The physical ingredients are simple but chosen at the level of real data, so that the selection
+pipeline meets realistic numbers:
+
+* a Galactic star model (thin disc, thick disc and halo; Jurić et al. 2008, ApJ 673, 864, parameters
+  from memory), with a toy luminosity function, a colour–magnitude relation, a dust layer, and
+  disc kinematics (flat rotation curve, velocity dispersions, solar motion of Schönrich, Binney &
+  Dehnen 2010, MNRAS 403, 1829, from memory), so stellar density rises toward the Galactic plane
+  and proper motions follow from the 4.74 km/s factor;
+* nearby brown dwarfs with large parallaxes and proper motions and red 3.4−4.6 µm colours;
+* compact galaxies, at rest, with intermediate infrared colours and a poor astrometric fit;
+* quasars, at rest, with a smooth invented 3.4−4.6 µm colour–redshift relation, plus a handful of
+  very bright ones and some optically obscured ones that appear only in the infrared;
+* astrometric errors that grow with magnitude as in modern space astrometry, correlated
+  proper-motion noise, infrared photometric noise from a flux-limited detection model, blends of two
+  optical sources inside one infrared beam, and true motion applied between the two epochs by
+  3-D unit-vector propagation.
+
+Only :func:`make_mock_sky`, :func:`write_mock_sky`, :class:`MockSky` and the module constants are
+public; everything prefixed with ``_`` may change.
+
+Notes
+-----
+Column names of the raw tables are deliberately unlike the roles used by the rest of the package,
+so that the column mapping of the ingest stage is exercised.  The truth table carries, beyond the
+required label columns, the true astrometric parameters and a few true magnitudes
+(``true_*`` columns), the name of the sky patch, and ``above_completeness``.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import functools
+import math
+import pathlib
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.csv as pacsv
+import pyarrow.parquet as pq
+
+__all__ = [
+    "ASTROMETRIC_EPOCH_JYEAR",
+    "INFRARED_EPOCH_JYEAR",
+    "COMPLETENESS",
+    "MockSky",
+    "make_mock_sky",
+    "write_mock_sky",
+]
+
+#: Reference epoch of the positions in the (fictional) astrometric catalogue, Julian years.
+ASTROMETRIC_EPOCH_JYEAR = 2019.5
+#: Mean observing epoch of the (fictional) infrared catalogue, Julian years.
+INFRARED_EPOCH_JYEAR = 2013.5
+
+#: Quasars whose *true* optical broad-band AB magnitude and *true* 4.6 µm Vega magnitude are
+#: both brighter than these limits are "above the completeness limit": they are always present in
+#: both catalogues with good signal-to-noise (4.6 µm S/N of about 10 or more), so a sound
+#: selection should recover nearly all of those that pass its colour cut.  The 4.6 µm value
+#: matches the magnitude limit of the Stern et al. 2012 (ApJ 753, 30) criterion.  The truth
+#: table's ``above_completeness`` column applies these limits; at ``scale=1`` about 1650–1700
+#: quasars (3.4 per deg^2) are above them, of which about 97 % have 3.4−4.6 µm colours of 0.8 or
+#: redder.
+COMPLETENESS = {"opt_broad_abmag_max": 20.0, "ir_4p6_vegamag_max": 15.0}
+
+# --------------------------------------------------------------------------------------------
+# Invented survey characteristics
+# --------------------------------------------------------------------------------------------
+
+#: Faint limit of the astrometric catalogue in the broad optical band (AB); real space astrometry
+#: reaches about 20.7–21 (common practice).
+_OPT_LIMIT_ABMAG = 21.0
+#: Bright limit: brighter stars are left out (they would saturate and add nothing to the demo).
+_OPT_BRIGHT_ABMAG = 12.0
+#: The blue band loses faint red sources; beyond this the blue magnitude is missing (NaN).
+_BLUE_LIMIT_ABMAG = 23.0
+
+#: Infrared bands, their 5-sigma point-source limits (Vega) and systematic error floors (mag).
+#: Limits are those of a deep all-sky mid-infrared coadd, from memory.
+_IR_BANDS = ("m34", "m46", "m120", "m220")
+_IR_LIMIT5_VEGAMAG = np.array([16.9, 16.0, 11.5, 8.0])
+_IR_FLOOR_MAG = np.array([0.015, 0.020, 0.030, 0.050])
+#: A source enters the infrared catalogue if it has S/N >= 5 at 3.4 or 4.6 µm; each band is then
+#: reported where its S/N >= 3 and is NaN otherwise.
+_IR_SNR_SOURCE = 5.0
+_IR_SNR_BAND = 3.0
+#: Infrared positional error (per axis) = floor (+) beam / S/N; a 6 arcsec beam gives roughly
+#: 0.1 arcsec for bright sources and 0.5–1 arcsec at the detection limit (common practice).
+_IR_POS_FLOOR_ARCSEC = 0.08
+_IR_POS_BEAM_ARCSEC = 3.0
+
+#: Extinction A_band / A_V for the optical bands and the four infrared bands (approximate, from
+#: memory of a standard diffuse-medium law).
+_EXT_PER_AV = {
+    "broad": 0.84, "blue": 1.08, "red": 0.63,
+    "m34": 0.065, "m46": 0.052, "m120": 0.060, "m220": 0.030,
+}
+#: A thin dust layer: V-band extinction per kpc in the mid-plane and its scale height (common
+#: practice, roughly 1 mag/kpc and about 100–130 pc).
+_DUST_AV_PER_PC = 1.0e-3
+_DUST_SCALE_HEIGHT_PC = 120.0
+
+# --------------------------------------------------------------------------------------------
+# Populations and their surface densities (per deg^2 at scale 1)
+# --------------------------------------------------------------------------------------------
+
+_POPULATIONS = ("star", "brown_dwarf", "galaxy", "quasar", "bright_quasar")
+_STAR, _BROWN_DWARF, _GALAXY, _QUASAR, _BRIGHT_QUASAR = range(5)
+
+#: Stars with 12 < broad < 21 toward the Galactic pole.  About ten times sparser than the real
+#: sky, so the demo stays small; the latitude dependence comes from the disc model.
+_STAR_DENSITY_AT_POLE_PER_DEG2 = 120.0
+#: Unobscured quasars with 16 < broad < 21.5 (before extinction); the real sky has a few tens per
+#: deg^2 to 21 (common practice).
+_QUASAR_DENSITY_PER_DEG2 = 36.0
+_OBSCURED_QUASAR_DENSITY_PER_DEG2 = 4.0
+_GALAXY_DENSITY_PER_DEG2 = 70.0
+#: Only a fraction of compact galaxies make it into a point-source astrometric catalogue.
+_GALAXY_OPTICAL_FRACTION = 0.35
+_BROWN_DWARF_DENSITY_PER_DEG2 = 0.06
+_BRIGHT_QUASARS_AT_SCALE_1 = 7
+#: Fraction of well-detected optical+infrared sources that get a second optical source in the beam.
+_BLEND_FRACTION = 0.015
+_BLEND_SEPARATION_ARCSEC = (0.8, 2.0)
+#: Fraction of stars that are unresolved binaries with a poor astrometric fit.
+_BINARY_FRACTION = 0.06
+#: Known-objects catalogue: fraction of quasars, number of stars and galaxies at scale 1.
+_KNOWN_QUASAR_FRACTION = 0.30
+_KNOWN_STARS_AT_SCALE_1 = 300
+_KNOWN_GALAXIES_AT_SCALE_1 = 40
+
+_MAS_TO_RAD = math.pi / (180.0 * 3600.0e3)
+_ARCSEC_TO_RAD = math.pi / (180.0 * 3600.0)
+#: km/s per (AU/yr): v_tan [km/s] = 4.74047 * mu [mas/yr] / parallax [mas].
+_KMS_PER_AU_YR = 4.74047
+
+
+# --------------------------------------------------------------------------------------------
+# Sky patches
+# --------------------------------------------------------------------------------------------
+
+
+@dataclasses.dataclass(frozen=True)
+class _Patch:
+    """A circular sky patch; the centre is given in ICRS or Galactic coordinates (deg)."""
+
+    name: str
+    frame: str
+    lon_deg: float
+    lat_deg: float
+    radius_deg: float
+    #: Mean pmra–pmdec error correlation of the invented scanning pattern in this patch.
+    mu_corr_mean: float
+
+
+_PATCHES = (
+    # Galactic latitude of the north celestial pole is about +27 deg: intermediate.
+    _Patch("north_pole", "icrs", 0.0, 90.0, 5.0, 0.25),
+    # Straddles RA = 0/360 close to the south Galactic pole (b about -78 deg): high latitude.
+    _Patch("ra_wrap", "icrs", 0.0, -30.0, 6.0, -0.15),
+    _Patch("high_north", "galactic", 60.0, 72.0, 6.0, 0.05),
+    _Patch("mid_south", "galactic", 200.0, -38.0, 5.0, 0.30),
+    _Patch("low_north", "galactic", 100.0, 12.0, 4.0, -0.30),
+    _Patch("low_south", "galactic", 250.0, -20.0, 4.5, 0.10),
+)
+
+
+@functools.lru_cache(maxsize=1)
+def _icrs_to_galactic_matrix():
+    """Rotation matrix taking ICRS unit vectors to Galactic unit vectors, from astropy's frames."""
+    from astropy.coordinates import CartesianRepresentation, SkyCoord
+
+    basis = SkyCoord(CartesianRepresentation(np.eye(3)), frame="icrs").galactic
+    xyz = basis.cartesian.xyz.value  # column j = Galactic vector of ICRS axis j
+    matrix = np.array(xyz, dtype=float)
+    matrix.setflags(write=False)
+    return matrix
+
+
+@functools.lru_cache(maxsize=1)
+def _patch_geometry():
+    """ICRS unit vectors (n, 3), radii (deg) and areas (deg^2) of the patches."""
+    to_gal = _icrs_to_galactic_matrix()
+    centres = []
+    for patch in _PATCHES:
+        vec = _lonlat_to_xyz(np.array([patch.lon_deg]), np.array([patch.lat_deg]))[0]
+        if patch.frame == "galactic":
+            vec = to_gal.T @ vec
+        centres.append(vec / np.linalg.norm(vec))
+    centres = np.array(centres)
+    radii_deg = np.array([p.radius_deg for p in _PATCHES])
+    areas_deg2 = 2.0 * np.pi * (1.0 - np.cos(np.radians(radii_deg))) * (180.0 / np.pi) ** 2
+    for arr in (centres, radii_deg, areas_deg2):
+        arr.setflags(write=False)
+    return centres, radii_deg, areas_deg2
+
+
+# --------------------------------------------------------------------------------------------
+# Geometry on the sphere
+# --------------------------------------------------------------------------------------------
+
+
+def _lonlat_to_xyz(lon_deg, lat_deg):
+    """Unit vectors (n, 3) from longitude and latitude in degrees."""
+    lon = np.radians(np.asarray(lon_deg, dtype=float))
+    lat = np.radians(np.asarray(lat_deg, dtype=float))
+    cos_lat = np.cos(lat)
+    return np.stack([cos_lat * np.cos(lon), cos_lat * np.sin(lon), np.sin(lat)], axis=-1)
+
+
+def _xyz_to_lonlat(xyz):
+    """Longitude in [0, 360) and latitude in [-90, 90], degrees, from vectors (n, 3)."""
+    x, y, z = xyz[:, 0], xyz[:, 1], xyz[:, 2]
+    lon_deg = np.degrees(np.arctan2(y, x)) % 360.0
+    # A tiny negative angle modulo 360 rounds to exactly 360.0.
+    lon_deg = np.where(lon_deg >= 360.0, 0.0, lon_deg)
+    lat_deg = np.degrees(np.arctan2(z, np.hypot(x, y)))
+    return lon_deg, lat_deg
+
+
+def _tangent_basis(xyz):
+    """Local east and north unit vectors (n, 3) at each position.
+
+    At the pole itself the longitude from ``arctan2(0, 0)`` is 0, which still gives a valid
+    orthonormal pair, so no position is special.
+    """
+    lon = np.arctan2(xyz[:, 1], xyz[:, 0])
+    lat = np.arctan2(xyz[:, 2], np.hypot(xyz[:, 0], xyz[:, 1]))
+    sin_lon, cos_lon = np.sin(lon), np.cos(lon)
+    sin_lat, cos_lat = np.sin(lat), np.cos(lat)
+    east = np.stack([-sin_lon, cos_lon, np.zeros_like(lon)], axis=-1)
+    north = np.stack([-sin_lat * cos_lon, -sin_lat * sin_lon, cos_lat], axis=-1)
+    return east, north
+
+
+def _offset(xyz, east_rad, north_rad):
+    """Move positions by tangent-plane offsets (radians) and renormalise (gnomonic inverse)."""
+    east, north = _tangent_basis(xyz)
+    moved = xyz + east * np.asarray(east_rad)[:, None] + north * np.asarray(north_rad)[:, None]
+    return moved / np.linalg.norm(moved, axis=1)[:, None]
+
+
+def _propagate(xyz, pmra_mas_yr, pmdec_mas_yr, dt_yr):
+    """Propagate positions by ``dt_yr`` years of proper motion on 3-D unit vectors.
+
+    The position moves along the tangent vector ``mu * dt`` and is renormalised, which is exact
+    straight-line space motion for zero radial velocity (as astropy's ``apply_space_motion``) and
+    has no trouble at the poles.
+    """
+    return _offset(
+        xyz,
+        np.asarray(pmra_mas_yr) * dt_yr * _MAS_TO_RAD,
+        np.asarray(pmdec_mas_yr) * dt_yr * _MAS_TO_RAD,
+    )
+
+
+def _sample_caps(rng, patch_index):
+    """Uniform random unit vectors inside the patches given per point by ``patch_index``."""
+    centres, radii_deg, _ = _patch_geometry()
+    n = len(patch_index)
+    cos_r = np.cos(np.radians(radii_deg[patch_index]))
+    cos_t = 1.0 - rng.random(n) * (1.0 - cos_r)
+    sin_t = np.sqrt(np.clip(1.0 - cos_t**2, 0.0, None))
+    phi = rng.random(n) * 2.0 * np.pi
+    centre = centres[patch_index]
+    east, north = _tangent_basis(centre)
+    return (
+        centre * cos_t[:, None]
+        + east * (sin_t * np.cos(phi))[:, None]
+        + north * (sin_t * np.sin(phi))[:, None]
+    )
+
+
+def _galactic_lb(xyz):
+    """Galactic longitude and latitude (deg) of ICRS unit vectors."""
+    return _xyz_to_lonlat(xyz @ _icrs_to_galactic_matrix().T)
+
+
+def _random_patches(rng, n):
+    """Patch indices for ``n`` objects spread over the patches in proportion to area."""
+    _, _, areas = _patch_geometry()
+    return rng.choice(len(_PATCHES), size=n, p=areas / areas.sum())
+
+
+def _per_patch_counts(rng, density_per_deg2, scale):
+    """Poisson counts per patch for a uniform surface density."""
+    _, _, areas = _patch_geometry()
+    return rng.poisson(density_per_deg2 * scale * areas)
+
+
+# --------------------------------------------------------------------------------------------
+# Galactic star model
+# --------------------------------------------------------------------------------------------
+
+_R_SUN_PC = 8200.0  # from memory
+_Z_SUN_PC = 20.0  # from memory
+# (scale length pc, scale height pc, local normalisation) of thin and thick disc; halo local
+# normalisation, axis ratio and power law (Jurić et al. 2008, ApJ 673, 864; from memory).
+_THIN = (2600.0, 300.0, 1.0)
+_THICK = (3600.0, 900.0, 0.12)
+_HALO = (0.005, 0.64, 2.77)
+#: Circular velocity and solar peculiar motion (U, V, W) in km/s (Schönrich et al. 2010; from
+#: memory).
+_V_CIRC_KMS = 232.0
+_SUN_UVW_KMS = np.array([11.1, 12.24, 7.25])
+#: Velocity dispersions (R, phi, Z) and asymmetric drift in km/s per component (common practice).
+_KINEMATICS = {
+    0: ((35.0, 25.0, 18.0), 15.0),
+    1: ((60.0, 45.0, 40.0), 50.0),
+    2: ((140.0, 100.0, 95.0), _V_CIRC_KMS),  # the halo does not rotate
+}
+
+#: Heliocentric distance grid for the line-of-sight integrals: parallaxes 0.07–33 mas.
+_LN_D_GRID = np.linspace(np.log(30.0), np.log(15000.0), 240)
+_D_GRID_PC = np.exp(_LN_D_GRID)
+_DLN_D = _LN_D_GRID[1] - _LN_D_GRID[0]
+#: Cell size (deg) over which the line-of-sight distance distribution is treated as constant.
+_CELL_DEG = 0.5
+
+# Toy luminosity function in absolute broad-band magnitude: a main sequence rising to M ~ 10.5 and
+# falling after, tapered at the bright end, plus a red-clump/giant bump (invented, realistic in
+# spirit).
+_M_GRID = np.arange(-1.5, 16.0001, 0.05)
+
+
+def _lf_components():
+    m = _M_GRID
+    main = np.where(m < 10.5, 10 ** (0.13 * (m - 4.0)), 10 ** (0.13 * 6.5 - 0.35 * (m - 10.5)))
+    main = main / (1.0 + np.exp(-(m - 1.5) / 0.3))
+    giants = 0.03 * np.exp(-0.5 * ((m - 0.6) / 0.5) ** 2)
+    return main + 1e-9, giants
+
+
+_LF_MAIN, _LF_GIANT = _lf_components()
+_LF_CDF = np.concatenate([[0.0], np.cumsum(0.5 * (_LF_MAIN + _LF_GIANT)[1:]
+                                           + 0.5 * (_LF_MAIN + _LF_GIANT)[:-1])])
+_LF_CDF = _LF_CDF / _LF_CDF[-1]
+# Main-sequence colour (blue - red, AB) against absolute broad-band magnitude (invented table).
+_MS_ABSMAG = np.array([1.0, 2.0, 3.0, 4.0, 4.7, 6.0, 7.0, 8.0, 9.0, 10.0, 11.0, 12.0, 13.0, 14.0,
+                       15.5])
+_MS_COLOUR = np.array([0.20, 0.45, 0.62, 0.75, 0.82, 1.05, 1.35, 1.70, 2.05, 2.40, 2.70, 3.00,
+                       3.40, 3.80, 4.30])
+
+
+def _disc_densities(l_rad, b_rad, d_pc):
+    """Relative number densities of thin disc, thick disc and halo (broadcasting arrays)."""
+    cos_b = np.cos(b_rad)
+    x_pc = d_pc * cos_b * np.cos(l_rad) - _R_SUN_PC
+    y_pc = d_pc * cos_b * np.sin(l_rad)
+    z_pc = d_pc * np.sin(b_rad) + _Z_SUN_PC
+    r_pc = np.hypot(x_pc, y_pc)
+    thin = _THIN[2] * np.exp(-(r_pc - _R_SUN_PC) / _THIN[0] - np.abs(z_pc) / _THIN[1])
+    thick = _THICK[2] * np.exp(-(r_pc - _R_SUN_PC) / _THICK[0] - np.abs(z_pc) / _THICK[1])
+    r_halo = np.maximum(np.sqrt(r_pc**2 + (z_pc / _HALO[1]) ** 2), 1000.0)
+    halo = _HALO[0] * (_R_SUN_PC / r_halo) ** _HALO[2]
+    return thin, thick, halo
+
+
+def _extinction_av(b_rad, d_pc):
+    """V-band extinction (mag) to distance ``d_pc`` through the exponential dust layer."""
+    sin_b = np.maximum(np.abs(np.sin(b_rad)), 1e-3)
+    return (_DUST_AV_PER_PC * _DUST_SCALE_HEIGHT_PC / sin_b
+            * (1.0 - np.exp(-d_pc * sin_b / _DUST_SCALE_HEIGHT_PC)))
+
+
+def _visible_fraction(b_rad, d_pc):
+    """Fraction of the luminosity function inside the optical magnitude window at ``d_pc``."""
+    shift = 5.0 * np.log10(d_pc / 10.0) + _EXT_PER_AV["broad"] * _extinction_av(b_rad, d_pc)
+    hi = np.interp(_OPT_LIMIT_ABMAG - shift, _M_GRID, _LF_CDF)
+    lo = np.interp(_OPT_BRIGHT_ABMAG - shift, _M_GRID, _LF_CDF)
+    return hi - lo
+
+
+def _cell_weights(xyz):
+    """Line-of-sight weights for the cells containing ``xyz``.
+
+    Returns
+    -------
+    cell_of_point : ndarray of int, shape (n,)
+        Index of each point's cell.
+    weights : ndarray, shape (n_cells, n_grid)
+        Number of visible stars per steradian in each distance bin (arbitrary units).
+    """
+    l_deg, b_deg = _galactic_lb(xyz)
+    key = (np.floor(l_deg / _CELL_DEG).astype(np.int64) * 1000
+           + np.floor((b_deg + 90.0) / _CELL_DEG).astype(np.int64))
+    cells, cell_of_point = np.unique(key, return_inverse=True)
+    l_rad = np.radians((cells // 1000 + 0.5) * _CELL_DEG)[:, None]
+    b_rad = np.radians((cells % 1000 + 0.5) * _CELL_DEG - 90.0)[:, None]
+    d = _D_GRID_PC[None, :]
+    density = sum(_disc_densities(l_rad, b_rad, d))
+    weights = density * d**3 * _DLN_D * _visible_fraction(b_rad, d)
+    return cell_of_point.ravel(), weights
+
+
+@functools.lru_cache(maxsize=1)
+def _column_at_galactic_pole():
+    """Visible-star column toward the north Galactic pole, used to normalise densities."""
+    # Just off the exact pole, so the latitude cell is an ordinary one.
+    near_pole_gal = _lonlat_to_xyz(np.array([0.0]), np.array([89.75]))
+    _, weights = _cell_weights(near_pole_gal @ _icrs_to_galactic_matrix())
+    return float(weights.sum())
+
+
+def _sample_star_positions(rng, patch_id, scale):
+    """Star positions in one patch, with a count and a distribution following the disc model."""
+    _, _, areas_deg2 = _patch_geometry()
+    probe = _sample_caps(rng, np.full(3000, patch_id))
+    cell, weights = _cell_weights(probe)
+    column = weights.sum(axis=1)[cell]
+    expected = (_STAR_DENSITY_AT_POLE_PER_DEG2 * scale * areas_deg2[patch_id]
+                * column.mean() / _column_at_galactic_pole())
+    n_wanted = int(rng.poisson(expected))
+    column_max = 1.2 * column.max()
+    accepted = []
+    n_have = 0
+    # Rejection sampling in batches (not per row) until enough positions are accepted.
+    while n_have < n_wanted:
+        n_try = int(1.5 * (n_wanted - n_have) * column_max / column.mean()) + 64
+        trial = _sample_caps(rng, np.full(n_try, patch_id))
+        cell_t, weights_t = _cell_weights(trial)
+        keep = rng.random(n_try) * column_max < weights_t.sum(axis=1)[cell_t]
+        accepted.append(trial[keep])
+        n_have += int(keep.sum())
+    if not accepted:
+        return np.empty((0, 3))
+    return np.concatenate(accepted)[:n_wanted]
+
+
+def _draw_from_cells(rng, cell_of_point, weights):
+    """Draw one distance bin per point from its cell's weights (vectorised inverse CDF)."""
+    cdf = np.cumsum(weights, axis=1)
+    cdf = cdf / cdf[:, -1:]
+    n_cells, n_grid = cdf.shape
+    # Offsetting row k by k makes the flattened CDF monotonic, so one searchsorted serves all.
+    flat = (cdf + np.arange(n_cells)[:, None]).ravel()
+    target = rng.random(len(cell_of_point)) + cell_of_point
+    index = np.searchsorted(flat, target, side="right")
+    index = np.minimum(index, n_cells * n_grid - 1) - cell_of_point * n_grid
+    return np.clip(index, 0, n_grid - 1)
+
+
+def _star_properties(rng, xyz, patch):
+    """True properties of Galactic stars at the given positions (astrometric epoch)."""
+    n = len(xyz)
+    cell, weights = _cell_weights(xyz)
+    k = _draw_from_cells(rng, cell, weights)
+    d_pc = np.exp(_LN_D_GRID[k] + (rng.random(n) - 0.5) * _DLN_D)
+    l_deg, b_deg = _galactic_lb(xyz)
+    l_rad, b_rad = np.radians(l_deg), np.radians(b_deg)
+
+    # Absolute magnitude from the luminosity function truncated to the visible window.
+    av = _extinction_av(b_rad, d_pc)
+    shift = 5.0 * np.log10(d_pc / 10.0) + _EXT_PER_AV["broad"] * av
+    cdf_lo = np.interp(_OPT_BRIGHT_ABMAG - shift, _M_GRID, _LF_CDF)
+    cdf_hi = np.interp(_OPT_LIMIT_ABMAG - shift, _M_GRID, _LF_CDF)
+    absmag = np.interp(cdf_lo + rng.random(n) * (cdf_hi - cdf_lo), _LF_CDF, _M_GRID)
+    broad = np.clip(absmag + shift, _OPT_BRIGHT_ABMAG, _OPT_LIMIT_ABMAG)
+    lf_main = np.interp(absmag, _M_GRID, _LF_MAIN)
+    lf_giant = np.interp(absmag, _M_GRID, _LF_GIANT)
+    giant = rng.random(n) < lf_giant / (lf_main + lf_giant)
+    colour = np.where(giant, 1.15 + 0.12 * rng.standard_normal(n),
+                      np.interp(absmag, _MS_ABSMAG, _MS_COLOUR) + 0.04 * rng.standard_normal(n))
+
+    # Optical-minus-infrared colour grows with optical colour: about 1.5 for a solar-type star,
+    # about 5 for a mid-M dwarf (AB optical minus Vega infrared; invented fit, realistic in spirit).
+    intrinsic = broad - _EXT_PER_AV["broad"] * av
+    m34 = intrinsic - (0.25 + 1.55 * colour + 0.05 * rng.standard_normal(n))
+    m46 = m34 - 0.04 * rng.standard_normal(n)
+    m120 = m46 - (0.03 + 0.06 * rng.standard_normal(n))
+    m220 = m120 - (0.02 + 0.10 * rng.standard_normal(n))
+
+    # Kinematics: pick the component from the local density mix at the drawn distance.
+    thin, thick, halo = _disc_densities(l_rad, b_rad, d_pc)
+    u = rng.random(n) * (thin + thick + halo)
+    component = np.where(u < thin, 0, np.where(u < thin + thick, 1, 2))
+    sigma = np.array([_KINEMATICS[c][0] for c in range(3)])[component]
+    drift = np.array([_KINEMATICS[c][1] for c in range(3)])[component]
+    cos_b = np.cos(b_rad)
+    x_pc = d_pc * cos_b * np.cos(l_rad) - _R_SUN_PC
+    y_pc = d_pc * cos_b * np.sin(l_rad)
+    r_pc = np.hypot(x_pc, y_pc)
+    radial = np.stack([x_pc / r_pc, y_pc / r_pc, np.zeros(n)], axis=-1)
+    # Rotation sense: at the Sun's position (-R_sun, 0, 0) the disc moves toward l = 90 deg.
+    rotation = np.stack([y_pc / r_pc, -x_pc / r_pc, np.zeros(n)], axis=-1)
+    v_r = sigma[:, 0] * rng.standard_normal(n)
+    v_phi = _V_CIRC_KMS - drift + sigma[:, 1] * rng.standard_normal(n)
+    v_z = sigma[:, 2] * rng.standard_normal(n)
+    v_gal = radial * v_r[:, None] + rotation * v_phi[:, None]
+    v_gal[:, 2] += v_z
+    v_sun = np.array([_SUN_UVW_KMS[0], _V_CIRC_KMS + _SUN_UVW_KMS[1], _SUN_UVW_KMS[2]])
+    v_icrs = (v_gal - v_sun) @ _icrs_to_galactic_matrix()  # rows: v_gal_row @ M == M.T @ v
+    east, north = _tangent_basis(xyz)
+    parallax_mas = 1000.0 / d_pc
+    pmra = np.einsum("ij,ij->i", v_icrs, east) * parallax_mas / _KMS_PER_AU_YR
+    pmdec = np.einsum("ij,ij->i", v_icrs, north) * parallax_mas / _KMS_PER_AU_YR
+
+    binary = rng.random(n) < _BINARY_FRACTION
+    fit_excess = np.where(binary, 10 ** rng.uniform(0.1, 0.5, n), 1.0)
+    return _objects(
+        pop=np.full(n, _STAR), patch=patch, xyz=xyz, parallax=parallax_mas, pmra=pmra,
+        pmdec=pmdec, redshift=np.full(n, np.nan),
+        broad=broad,
+        blue=broad + 0.45 * colour + (_EXT_PER_AV["blue"] - _EXT_PER_AV["broad"]) * av,
+        red=broad - 0.55 * colour + (_EXT_PER_AV["red"] - _EXT_PER_AV["broad"]) * av,
+        ir=np.stack([m34, m46, m120, m220], axis=1)
+        + av[:, None] * np.array([_EXT_PER_AV[b] for b in _IR_BANDS]),
+        fit_excess=fit_excess, optical_prob=np.ones(n),
+    )
+
+
+# --------------------------------------------------------------------------------------------
+# Other populations
+# --------------------------------------------------------------------------------------------
+
+_OBJECT_FIELDS = ("pop", "patch", "xyz", "parallax", "pmra", "pmdec", "redshift", "broad",
+                  "blue", "red", "ir", "fit_excess", "optical_prob")
+
+
+def _objects(**fields):
+    """A population as a dict of equal-length arrays (true values at the astrometric epoch)."""
+    n = len(fields["pop"])
+    out = {}
+    for name in _OBJECT_FIELDS:
+        value = np.asarray(fields[name])
+        if value.ndim == 0:
+            value = np.full(n, value)
+        out[name] = value
+    return out
+
+
+def _concat(parts):
+    return {name: np.concatenate([p[name] for p in parts]) for name in _OBJECT_FIELDS}
+
+
+def _power_law_mags(rng, n, faint, bright, slope):
+    """Magnitudes with cumulative counts N(<m) proportional to 10**(slope*m) in [bright, faint]."""
+    lo = 10 ** (slope * (bright - faint))
+    return faint + np.log10(lo + rng.random(n) * (1.0 - lo)) / slope
+
+
+def _quasar_colour_34_46(z):
+    """Invented mean 3.4−4.6 µm colour (Vega) of quasars against redshift.
+
+    Hot dust keeps the colour red (about 1.1–1.25) over most of the range; host light lowers it at
+    low redshift and the rest-frame near-infrared bump moving through both bands lowers it
+    toward 0.6–0.7 around z ≈ 4.  A smooth made-up function, realistic in spirit.
+    """
+    z = np.asarray(z, dtype=float)
+    return (1.12 + 0.12 * np.exp(-(((z - 1.2) / 0.5) ** 2))
+            - 0.50 * np.exp(-(((z - 4.1) / 0.9) ** 2))
+            - 0.25 * np.exp(-(((z - 0.3) / 0.3) ** 2)))
+
+
+def _extragalactic_av(xyz):
+    """Full-column V-band extinction (mag) toward each position."""
+    _, b_deg = _galactic_lb(xyz)
+    return _extinction_av(np.radians(b_deg), np.inf)
+
+
+def _quasar_like(rng, xyz, patch, pop, broad0, z, opt_minus_34=None):
+    """Quasars at rest, from intrinsic broad-band magnitude (AB) and redshift.
+
+    ``opt_minus_34`` is the intrinsic broad-band (AB) minus 3.4 µm (Vega) colour; by default about
+    2.7 ± 0.4, typical of unobscured quasars (common practice).
+    """
+    n = len(xyz)
+    av = _extragalactic_av(xyz)
+    c_34_46 = _quasar_colour_34_46(z) + 0.12 * rng.standard_normal(n)
+    if opt_minus_34 is None:
+        opt_minus_34 = 2.7 + 0.4 * rng.standard_normal(n)
+    m34 = broad0 - opt_minus_34
+    m46 = m34 - c_34_46
+    m120 = m46 - (2.9 + 0.25 * rng.standard_normal(n))
+    m220 = m120 - (2.4 + 0.30 * rng.standard_normal(n))
+    # Optical colour: blue quasar continuum, reddened strongly once the absorption forest enters
+    # the blue band at high redshift (invented).
+    colour = (0.45 + 0.05 * z + 0.7 / (1.0 + np.exp(-(z - 3.2) / 0.25))
+              + 0.08 * rng.standard_normal(n))
+    # Host galaxies of low-redshift quasars make them look slightly extended.
+    fit_excess = 1.0 + 0.5 * np.exp(-z / 0.2) * rng.random(n)
+    ir = np.stack([m34, m46, m120, m220], axis=1)
+    ir = ir + av[:, None] * np.array([_EXT_PER_AV[b] for b in _IR_BANDS])
+    broad = broad0 + _EXT_PER_AV["broad"] * av
+    return _objects(
+        pop=np.full(n, pop), patch=patch, xyz=xyz, parallax=0.0, pmra=0.0, pmdec=0.0,
+        redshift=z, broad=broad,
+        blue=broad + 0.45 * colour + (_EXT_PER_AV["blue"] - _EXT_PER_AV["broad"]) * av,
+        red=broad - 0.55 * colour + (_EXT_PER_AV["red"] - _EXT_PER_AV["broad"]) * av,
+        ir=ir, fit_excess=fit_excess, optical_prob=1.0,
+    )
+
+
+def _make_quasars(rng, scale):
+    counts = _per_patch_counts(rng, _QUASAR_DENSITY_PER_DEG2, scale)
+    patch = np.repeat(np.arange(len(_PATCHES)), counts)
+    xyz = _sample_caps(rng, patch)
+    n = len(patch)
+    broad0 = _power_law_mags(rng, n, 21.5, 16.0, 0.4)
+    z = 0.3 + 3.7 * rng.beta(2.0, 3.0, n)
+    return _quasar_like(rng, xyz, patch, _QUASAR, broad0, z)
+
+
+def _make_obscured_quasars(rng, scale):
+    """Dust-reddened quasars: red in the infrared, mostly too faint for the optical catalogue."""
+    counts = _per_patch_counts(rng, _OBSCURED_QUASAR_DENSITY_PER_DEG2, scale)
+    patch = np.repeat(np.arange(len(_PATCHES)), counts)
+    xyz = _sample_caps(rng, patch)
+    n = len(patch)
+    m34 = _power_law_mags(rng, n, 17.0, 13.0, 0.45)
+    z = 0.5 + 2.5 * rng.beta(2.0, 3.0, n)
+    opt_minus_34 = 5.5 + 0.8 * rng.standard_normal(n)
+    objs = _quasar_like(rng, xyz, patch, _QUASAR, m34 + opt_minus_34, z, opt_minus_34)
+    objs["ir"][:, 1:] -= 0.25  # extra dust reddening of 3.4−4.6 and beyond
+    return objs
+
+
+def _make_bright_quasars(rng, scale):
+    """A handful of very bright quasars: optical 14–16 AB, 4.6 µm about 10–12 Vega."""
+    n = max(2, int(round(_BRIGHT_QUASARS_AT_SCALE_1 * scale)))
+    patch = _random_patches(rng, n)
+    xyz = _sample_caps(rng, patch)
+    broad0 = rng.uniform(14.0, 16.0, n)
+    z = 0.3 + 3.0 * rng.beta(2.0, 3.0, n)
+    objs = _quasar_like(rng, xyz, patch, _BRIGHT_QUASAR, broad0, z)
+    # Pin the 4.6 µm magnitude into 10–12 while keeping each source's own 3.4−4.6 colour.
+    colour = objs["ir"][:, 0] - objs["ir"][:, 1]
+    m46 = np.clip(broad0 - 3.8 + 0.3 * rng.standard_normal(n), 10.0, 12.0)
+    shift = m46 - objs["ir"][:, 1]
+    objs["ir"] = objs["ir"] + shift[:, None]
+    objs["ir"][:, 0] = m46 + colour
+    return objs
+
+
+def _make_galaxies(rng, scale):
+    """Compact galaxies at rest: intermediate 3.4−4.6 colours, red 4.6−12, poor astrometric fit."""
+    counts = _per_patch_counts(rng, _GALAXY_DENSITY_PER_DEG2, scale)
+    patch = np.repeat(np.arange(len(_PATCHES)), counts)
+    xyz = _sample_caps(rng, patch)
+    n = len(patch)
+    av = _extragalactic_av(xyz)
+    m34 = _power_law_mags(rng, n, 17.5, 12.5, 0.5)
+    z = np.clip(0.02 + 0.12 * (m34 - 12.5) + 0.06 * rng.standard_normal(n), 0.01, 1.2)
+    c_34_46 = 0.1 + 0.5 * rng.beta(1.5, 3.0, n)
+    m46 = m34 - c_34_46
+    m120 = m46 - (3.2 + 0.4 * rng.standard_normal(n))
+    m220 = m120 - (2.3 + 0.3 * rng.standard_normal(n))
+    broad0 = m34 + 3.0 + 2.0 * z + 0.5 * rng.standard_normal(n)
+    colour = 1.0 + 0.6 * rng.random(n)
+    broad = broad0 + _EXT_PER_AV["broad"] * av
+    ir = np.stack([m34, m46, m120, m220], axis=1)
+    ir = ir + av[:, None] * np.array([_EXT_PER_AV[b] for b in _IR_BANDS])
+    return _objects(
+        pop=np.full(n, _GALAXY), patch=patch, xyz=xyz, parallax=0.0, pmra=0.0, pmdec=0.0,
+        redshift=z, broad=broad,
+        blue=broad + 0.45 * colour + (_EXT_PER_AV["blue"] - _EXT_PER_AV["broad"]) * av,
+        red=broad - 0.55 * colour + (_EXT_PER_AV["red"] - _EXT_PER_AV["broad"]) * av,
+        ir=ir, fit_excess=10 ** (0.4 + 0.15 * rng.standard_normal(n)),
+        optical_prob=_GALAXY_OPTICAL_FRACTION,
+    )
+
+
+def _brown_dwarf_batch(rng, n):
+    """Candidate brown dwarfs: parallax 20–200 mas, 3.4−4.6 colour 0.3–2.5 (invented relations)."""
+    parallax_mas = np.exp(rng.uniform(np.log(20.0), np.log(200.0), n))
+    c_34_46 = 0.3 + 2.2 * rng.beta(1.2, 2.5, n)
+    abs_m46 = 10.3 + 1.3 * c_34_46
+    m46 = abs_m46 + 5.0 * np.log10(100.0 / parallax_mas)
+    broad = m46 + 6.0 + 0.9 * c_34_46 + 0.3 * rng.standard_normal(n)
+    return parallax_mas, c_34_46, m46, broad
+
+
+def _make_brown_dwarfs(rng, scale):
+    """Nearby brown dwarfs; those too faint optically stay in the infrared catalogue only."""
+    _, _, areas = _patch_geometry()
+    n_optical = max(2, int(rng.poisson(_BROWN_DWARF_DENSITY_PER_DEG2 * scale * areas.sum())))
+    n_ir_only_max = int(math.ceil(0.3 * n_optical))
+    keep_opt, keep_ir = [], []
+    n_opt = n_ir = 0
+    while n_opt < n_optical:
+        batch = _brown_dwarf_batch(rng, 4 * (n_optical - n_opt) + 8)
+        visible = batch[3] <= _OPT_LIMIT_ABMAG - 0.1
+        ir_only = ~visible & (batch[2] <= 15.5)
+        keep_opt.append([b[visible] for b in batch])
+        keep_ir.append([b[ir_only] for b in batch])
+        n_opt += int(visible.sum())
+        n_ir += int(ir_only.sum())
+    opt = [np.concatenate([k[i] for k in keep_opt])[:n_optical] for i in range(4)]
+    iro = [np.concatenate([k[i] for k in keep_ir])[:n_ir_only_max] for i in range(4)]
+    parallax_mas, c_34_46, m46, broad = (np.concatenate([a, b]) for a, b in zip(opt, iro))
+    n = len(parallax_mas)
+    patch = _random_patches(rng, n)
+    xyz = _sample_caps(rng, patch)
+    # Tangential velocities of tens of km/s; total motion kept within 100–2000 mas/yr.
+    v_tan_kms = np.exp(np.log(30.0) + 0.5 * rng.standard_normal(n))
+    pm_total = np.clip(v_tan_kms * parallax_mas / _KMS_PER_AU_YR, 100.0, 2000.0)
+    angle = rng.random(n) * 2.0 * np.pi
+    m120 = m46 - (0.5 + 0.6 * c_34_46)
+    blue = broad + 2.3 + 0.3 * c_34_46
+    return _objects(
+        pop=np.full(n, _BROWN_DWARF), patch=patch, xyz=xyz, parallax=parallax_mas,
+        pmra=pm_total * np.sin(angle), pmdec=pm_total * np.cos(angle),
+        redshift=np.full(n, np.nan), broad=broad, blue=blue, red=broad - 1.3 - 0.1 * c_34_46,
+        ir=np.stack([m46 + c_34_46, m46, m120, m120 - 0.3], axis=1),
+        fit_excess=1.0, optical_prob=1.0,
+    )
+
+
+# --------------------------------------------------------------------------------------------
+# Observation models
+# --------------------------------------------------------------------------------------------
+
+
+def _parallax_error_mas(broad):
+    """Parallax error (mas) against broad-band magnitude.
+
+    ``sqrt(c0 + c1 x + c2 x^2)`` µas with ``x = 10**(0.4 (max(m, 13) - 15))``, coefficients
+    fitted to 0.02, 0.1, 0.5 and 1.3 mas at 15, 18, 20 and 21 mag (the brief's targets, at the
+    level of modern space astrometry; common practice).
+    """
+    x = 10 ** (0.4 * (np.maximum(broad, 13.0) - 15.0))
+    return 1e-3 * np.sqrt(145.3 + 230.6 * x + 24.25 * x**2)
+
+
+def _ir_snr(mags):
+    """True signal-to-noise ratio of infrared magnitudes (n, 4)."""
+    return _IR_SNR_SOURCE * 10 ** (-0.4 * (mags - _IR_LIMIT5_VEGAMAG))
+
+
+def _combine_mags(a, b):
+    """Magnitude of the summed flux of two sources."""
+    return -2.5 * np.log10(10 ** (-0.4 * a) + 10 ** (-0.4 * b))
+
+
+def _make_blend_companions(rng, objs):
+    """Pick blend primaries and create a companion optical star 0.8–2 arcsec from each."""
+    in_optical = objs["optical"]
+    well_detected = np.max(_ir_snr(objs["ir"])[:, :2], axis=1) >= 2.0 * _IR_SNR_SOURCE
+    primary = np.flatnonzero(in_optical & well_detected & (rng.random(len(in_optical))
+                                                           < _BLEND_FRACTION))
+    n = len(primary)
+    sep_rad = rng.uniform(*_BLEND_SEPARATION_ARCSEC, n) * _ARCSEC_TO_RAD
+    angle = rng.random(n) * 2.0 * np.pi
+    xyz = _offset(objs["xyz"][primary], sep_rad * np.sin(angle), sep_rad * np.cos(angle))
+    companions = _star_properties(rng, xyz, objs["patch"][primary])
+    return primary, companions
+
+
+# --------------------------------------------------------------------------------------------
+# Identifiers
+# --------------------------------------------------------------------------------------------
+
+
+def _designations(prefix, ra_deg, dec_deg):
+    """Sexagesimal designations like ``prefix + 'J123456.78+123456.7'`` (truncated, not rounded).
+
+    Built from digit codes in a byte array, so no per-row formatting happens in Python.
+    Exact duplicates (two sources within a tenth of an arcsecond) get a ``-2``, ``-3`` suffix.
+    """
+    n = len(ra_deg)
+    ra_cs = np.minimum(np.floor(ra_deg / 15.0 * 360000.0).astype(np.int64), 8639999)
+    dec_ds = np.minimum(np.floor(np.abs(dec_deg) * 36000.0).astype(np.int64), 3240000)
+    fields = [
+        (ra_cs // 360000, 2), ((ra_cs // 6000) % 60, 2), ((ra_cs // 100) % 60, 2), None,
+        (ra_cs % 100, 2), "sign", (dec_ds // 36000, 2), ((dec_ds // 600) % 60, 2),
+        ((dec_ds // 10) % 60, 2), None, (dec_ds % 10, 1),
+    ]
+    columns = []
+    for field in fields:
+        if field is None:
+            columns.append(np.full(n, ord(".")))
+        elif field == "sign":
+            columns.append(np.where(dec_deg < 0.0, ord("-"), ord("+")))
+        else:
+            value, width = field
+            for power in range(width - 1, -1, -1):
+                columns.append(ord("0") + (value // 10**power) % 10)
+    body = np.stack(columns, axis=1).astype(np.uint8)
+    head = np.frombuffer((prefix + "J").encode(), dtype=np.uint8)
+    codes = np.concatenate([np.broadcast_to(head, (n, len(head))), body], axis=1)
+    names = np.ascontiguousarray(codes).view(f"S{codes.shape[1]}").ravel().astype(str)
+    order = np.argsort(names, kind="stable")
+    sorted_names = names[order]
+    starts = np.r_[True, sorted_names[1:] != sorted_names[:-1]]
+    group_start = np.maximum.accumulate(np.where(starts, np.arange(n), 0))
+    rank = np.arange(n) - group_start
+    dup = order[rank > 0]
+    if len(dup):
+        names = names.astype(object)
+        names[dup] = np.char.add(names[dup].astype(str),
+                                 np.char.mod("-%d", rank[rank > 0] + 1))
+        names = names.astype(str)
+    return names
+
+
+def _serial_labels(prefix, n):
+    return np.char.add(prefix, np.char.zfill(np.arange(1, n + 1).astype(str), 5))
+
+
+# --------------------------------------------------------------------------------------------
+# Public API
+# --------------------------------------------------------------------------------------------
+
+
+@dataclasses.dataclass(frozen=True)
+class MockSky:
+    """The four tables of one invented sky.
+
+    Attributes
+    ----------
+    astrometric : pyarrow.Table
+        Raw astrometric catalogue: ``srcid`` (int64), ``alpha``, ``delta`` (deg, ICRS, epoch
+        :data:`ASTROMETRIC_EPOCH_JYEAR`), ``alpha_unc``, ``delta_unc`` (mas; ``alpha_unc``
+        includes cos δ), ``plx``, ``plx_unc`` (mas), ``mu_a`` (mas/yr, includes cos δ), ``mu_d``,
+        ``mu_a_unc``, ``mu_d_unc`` (mas/yr), ``mu_corr`` (pmra–pmdec correlation),
+        ``mag_broad``, ``mag_blue``, ``mag_red`` and their ``*_unc`` (AB mag; ``mag_blue`` is NaN
+        for sources too faint in the blue band) and ``fit_excess`` (about 1 for good point sources).
+    infrared : pyarrow.Table
+        Raw infrared catalogue: ``ir_name`` (unique designation), ``ra_ir``, ``dec_ir`` (deg,
+        epoch :data:`INFRARED_EPOCH_JYEAR`), ``pos_unc`` (arcsec, per axis), ``m34``, ``m46``,
+        ``m120``, ``m220`` and their ``*_unc`` (Vega mag at 3.4, 4.6, 12 and 22 µm; NaN where the
+        band has S/N < 3) and ``qual`` (four characters, one per band: ``0`` clean, ``h`` halo of
+        a bright neighbour, ``s`` diffraction spike, ``g`` ghost).
+    known : pyarrow.Table
+        Known objects: ``label``, ``ra_k``, ``dec_k`` (deg, true positions at the astrometric
+        epoch), ``kind`` (``quasar``, ``star`` or ``galaxy``) and ``z`` (NaN for stars).
+    truth : pyarrow.Table
+        One row per row of ``astrometric`` and of ``infrared`` (in that order): ``catalogue``,
+        ``id``, ``population``, ``redshift``, ``counterpart_id`` (empty when none), ``blend``, plus
+        ``patch``, ``true_ra``, ``true_dec`` (deg, astrometric epoch), ``true_parallax`` (mas),
+        ``true_pmra``, ``true_pmdec`` (mas/yr), ``true_mag_broad`` (AB), ``true_m46`` (Vega) and
+        ``above_completeness`` (quasars brighter than both :data:`COMPLETENESS` limits).
+    """
+
+    astrometric: pa.Table
+    infrared: pa.Table
+    known: pa.Table
+    truth: pa.Table
+
+
+def make_mock_sky(seed: int = 1, scale: float = 1.0) -> MockSky:
+    """Generate the invented sky.
+
+    Parameters
+    ----------
+    seed : int, default 1
+        Seed of :func:`numpy.random.default_rng`; the same seed and scale give identical tables.
+    scale : float, default 1.0
+        Multiplies every surface density (the sky patches stay the same).  ``scale=1`` gives about
+        175 000 astrometric and 125 000 infrared rows in about two seconds; tests use 0.02–0.05.
+        A few rare populations keep a minimum count so that every population is present.
+
+    Returns
+    -------
+    MockSky
+        The astrometric, infrared, known-objects and truth tables.
+
+    Raises
+    ------
+    ValueError
+        If ``seed`` is not a non-negative integer or ``scale`` is not a positive finite number.
+    """
+    if isinstance(seed, bool) or not isinstance(seed, (int, np.integer)) or seed < 0:
+        raise ValueError(f"seed must be a non-negative integer, got {seed!r}")
+    if (isinstance(scale, bool) or not isinstance(scale, (int, float, np.floating, np.integer))
+            or not math.isfinite(scale) or scale <= 0):
+        raise ValueError(f"scale must be a positive finite number, got {scale!r}")
+    scale = float(scale)
+    rng = np.random.default_rng(seed)
+
+    objs, partner = _true_sky(rng, scale)
+    ir = _observe_infrared(rng, objs, partner)
+    astro = _observe_astrometric(rng, objs)
+    truth = _truth_columns(objs, partner, ir, astro)
+    known = _known_columns(rng, objs, astro, scale)
+    return MockSky(
+        astrometric=_to_table(astro["columns"], _ASTRO_UNITS, "astrometric"),
+        infrared=_to_table(ir["columns"], _IR_UNITS, "infrared"),
+        known=_to_table(known, _KNOWN_UNITS, "known"),
+        truth=_to_table(truth, _TRUTH_UNITS, "truth"),
+    )
+
+
+def _true_sky(rng, scale):
+    """All objects with their true properties, including blend companions.
+
+    Returns
+    -------
+    objs : dict of ndarray
+        One entry per object (see ``_OBJECT_FIELDS``) plus ``optical`` (bool, in the astrometric
+        catalogue) and ``xyz_ir`` (true unit vector at the infrared epoch).
+    partner : ndarray of int
+        Index of the other object of a blend pair, -1 for unblended objects.
+    """
+    star_parts = []
+    for patch_id in range(len(_PATCHES)):
+        xyz = _sample_star_positions(rng, patch_id, scale)
+        star_parts.append(_star_properties(rng, xyz, np.full(len(xyz), patch_id)))
+    objs = _concat(star_parts + [
+        _make_brown_dwarfs(rng, scale),
+        _make_galaxies(rng, scale),
+        _make_quasars(rng, scale),
+        _make_obscured_quasars(rng, scale),
+        _make_bright_quasars(rng, scale),
+    ])
+    n_single = len(objs["pop"])
+    objs["optical"] = ((objs["broad"] <= _OPT_LIMIT_ABMAG)
+                       & (rng.random(n_single) < objs["optical_prob"]))
+
+    primary, companions = _make_blend_companions(rng, objs)
+    companions["optical"] = np.ones(len(primary), dtype=bool)
+    objs = {k: np.concatenate([objs[k], companions[k]]) for k in objs}
+    companion = n_single + np.arange(len(primary))
+    partner = np.full(len(objs["pop"]), -1)
+    partner[primary] = companion
+    partner[companion] = primary
+    dt_yr = INFRARED_EPOCH_JYEAR - ASTROMETRIC_EPOCH_JYEAR
+    objs["xyz_ir"] = _propagate(objs["xyz"], objs["pmra"], objs["pmdec"], dt_yr)
+    return objs, partner
+
+
+def _observe_infrared(rng, objs, partner):
+    """The infrared catalogue: flux-limited detection, photometric and positional noise.
+
+    Every object except a blend companion owns an infrared source; a blend's source holds the
+    summed flux and the 3.4 µm light-weighted centroid of both objects at the infrared epoch.
+
+    Returns
+    -------
+    dict
+        ``columns`` (raw catalogue columns, sorted by designation), ``obj`` (index of the owning
+        object per row) and ``m46_true`` (true, blended 4.6 µm magnitude per row).
+    """
+    n_obj = len(objs["pop"])
+    is_companion = (partner >= 0) & (partner < np.arange(n_obj))
+    owner = np.flatnonzero(~is_companion)
+    ir_true = objs["ir"][owner].copy()
+    ir_xyz = objs["xyz_ir"][owner].copy()
+    rows = np.flatnonzero(partner[owner] >= 0)
+    comp = partner[owner[rows]]
+    ir_true[rows] = _combine_mags(ir_true[rows], objs["ir"][comp])
+    w_own = 10 ** (-0.4 * objs["ir"][owner[rows], 0])
+    w_comp = 10 ** (-0.4 * objs["ir"][comp, 0])
+    centroid = ir_xyz[rows] * w_own[:, None] + objs["xyz_ir"][comp] * w_comp[:, None]
+    ir_xyz[rows] = centroid / np.linalg.norm(centroid, axis=1)[:, None]
+
+    # Noise in flux units of the 1-sigma background: observed S/N = true S/N + N(0, 1).
+    n_own = len(owner)
+    snr = _ir_snr(ir_true) + rng.standard_normal((n_own, 4))
+    detected = (snr[:, 0] >= _IR_SNR_SOURCE) | (snr[:, 1] >= _IR_SNR_SOURCE)
+    band_ok = snr >= _IR_SNR_BAND
+    safe_snr = np.where(band_ok, snr, 1.0)
+    ir_mag = (_IR_LIMIT5_VEGAMAG - 2.5 * np.log10(safe_snr / _IR_SNR_SOURCE)
+              + _IR_FLOOR_MAG * rng.standard_normal((n_own, 4)))
+    ir_mag = np.where(band_ok, ir_mag, np.nan)
+    ir_unc = np.where(band_ok, np.hypot(_IR_FLOOR_MAG, 1.0857 / safe_snr), np.nan)
+    best_snr = np.maximum(np.maximum(snr[:, 0], snr[:, 1]), 1.0)
+    pos_unc_arcsec = np.hypot(_IR_POS_FLOOR_ARCSEC, _IR_POS_BEAM_ARCSEC / best_snr)
+    noise_rad = rng.standard_normal((n_own, 2)) * pos_unc_arcsec[:, None] * _ARCSEC_TO_RAD
+    obs_xyz = _offset(ir_xyz, noise_rad[:, 0], noise_rad[:, 1])
+    # Quality flags: rare random artefacts, frequent around bright sources (invented codes).
+    flag_prob = 0.01 + 0.3 * (ir_true[:, :1] < 9.0)
+    flagged = rng.random((n_own, 4)) < flag_prob
+    flag_kind = np.array([ord("h"), ord("s"), ord("g")], dtype=np.uint8)[
+        rng.integers(0, 3, (n_own, 4))]
+    flag_codes = np.where(flagged, flag_kind, np.uint8(ord("0"))).astype(np.uint8)
+    qual = np.ascontiguousarray(flag_codes).view("S4").ravel().astype(str)
+
+    keep = np.flatnonzero(detected)
+    ra_ir, dec_ir = _xyz_to_lonlat(obs_xyz[keep])
+    ir_name = _designations("MOCKIR ", ra_ir, dec_ir)
+    order = np.argsort(ir_name, kind="stable")
+    keep, ra_ir, dec_ir, ir_name = keep[order], ra_ir[order], dec_ir[order], ir_name[order]
+    columns = {"ir_name": ir_name, "ra_ir": ra_ir, "dec_ir": dec_ir,
+               "pos_unc": pos_unc_arcsec[keep]}
+    for j, band in enumerate(_IR_BANDS):
+        columns[band] = ir_mag[keep, j]
+        columns[band + "_unc"] = ir_unc[keep, j]
+    columns["qual"] = qual[keep]
+    return {"columns": columns, "obj": owner[keep], "m46_true": ir_true[keep, 1]}
+
+
+def _observe_astrometric(rng, objs):
+    """The astrometric catalogue: magnitude-dependent astrometric and photometric noise.
+
+    Returns
+    -------
+    dict
+        ``columns`` (raw catalogue columns, ordered by declination zone and RA, which is also
+        the order of ``srcid``) and ``obj`` (index of the object per row).
+    """
+    obj = np.flatnonzero(objs["optical"])
+    n = len(obj)
+    broad_true = objs["broad"][obj]
+    # Faint sources scatter more in the fit-quality indicator.
+    fit_excess = objs["fit_excess"][obj] * np.exp(
+        (0.04 + 0.02 * np.clip((broad_true - 17.0) / 4.0, 0.0, 1.0))
+        * np.abs(rng.standard_normal(n)))
+    # A poor fit inflates the formal errors, as a real solution would.
+    plx_unc = (_parallax_error_mas(broad_true) * fit_excess
+               * 10 ** (0.08 * rng.standard_normal(n)))
+    mu_a_unc = 1.10 * plx_unc * 10 ** (0.03 * rng.standard_normal(n))
+    mu_d_unc = 0.95 * plx_unc * 10 ** (0.03 * rng.standard_normal(n))
+    alpha_unc = 0.85 * plx_unc
+    delta_unc = 0.75 * plx_unc
+    corr_mean = np.array([p.mu_corr_mean for p in _PATCHES])[objs["patch"][obj]]
+    mu_corr = np.clip(corr_mean + 0.12 * rng.standard_normal(n), -0.9, 0.9)
+    e = rng.standard_normal((n, 5))
+    plx = objs["parallax"][obj] + plx_unc * e[:, 0]
+    mu_a = objs["pmra"][obj] + mu_a_unc * e[:, 1]
+    mu_d = objs["pmdec"][obj] + mu_d_unc * (mu_corr * e[:, 1] + np.sqrt(1.0 - mu_corr**2) * e[:, 2])
+    obs_xyz = _offset(objs["xyz"][obj], alpha_unc * e[:, 3] * _MAS_TO_RAD,
+                      delta_unc * e[:, 4] * _MAS_TO_RAD)
+    alpha, delta = _xyz_to_lonlat(obs_xyz)
+    columns = {
+        "srcid": None, "alpha": alpha, "delta": delta, "alpha_unc": alpha_unc,
+        "delta_unc": delta_unc, "plx": plx, "plx_unc": plx_unc, "mu_a": mu_a, "mu_d": mu_d,
+        "mu_a_unc": mu_a_unc, "mu_d_unc": mu_d_unc, "mu_corr": mu_corr,
+    }
+    # Photometric errors: about 1 mmag at 19 in the broad band and ten times more in the narrower
+    # blue and red bands (common practice for space photometry).
+    for band, floor, coeff in (("broad", 0.0003, 0.0004), ("blue", 0.001, 0.003),
+                               ("red", 0.001, 0.003)):
+        true = objs[band][obj]
+        unc = np.hypot(floor, coeff * 10 ** (0.4 * (true - 17.0)))
+        obs = true + unc * rng.standard_normal(n)
+        if band == "blue":
+            missing = ~(true <= _BLUE_LIMIT_ABMAG)
+            obs, unc = np.where(missing, np.nan, obs), np.where(missing, np.nan, unc)
+        columns["mag_" + band], columns["mag_" + band + "_unc"] = obs, unc
+    columns["fit_excess"] = fit_excess
+    # Identifiers increase with random gaps along declination zones and RA.
+    order = np.lexsort((alpha, np.floor(delta)))
+    columns["srcid"] = 4_000_000_000_000 + np.cumsum(rng.integers(1, 1000, n, dtype=np.int64))
+    columns = {k: (v if k == "srcid" else v[order]) for k, v in columns.items()}
+    return {"columns": columns, "obj": obj[order]}
+
+
+def _truth_columns(objs, partner, ir, astro):
+    """Truth labels: one row per astrometric row, then one per infrared row."""
+    n_obj = len(objs["pop"])
+    opt_obj, ir_obj = astro["obj"], ir["obj"]
+    ir_name = ir["columns"]["ir_name"]
+    srcid_of_obj = np.full(n_obj, "", dtype=object)
+    srcid_of_obj[opt_obj] = astro["columns"]["srcid"].astype(str)
+    # For a blend, the infrared source is the counterpart of whichever object gives more 4.6 µm
+    # flux; the other optical source has no counterpart of its own.
+    other = partner[ir_obj]
+    blended_ir = other >= 0
+    other_brighter = objs["ir"][np.maximum(other, 0), 1] < objs["ir"][ir_obj, 1]
+    dominant = np.where(blended_ir & other_brighter, other, ir_obj)
+    irname_of_obj = np.full(n_obj, "", dtype=object)
+    irname_of_obj[dominant] = ir_name
+    blend_obj = np.zeros(n_obj, dtype=bool)
+    blend_obj[ir_obj[blended_ir]] = True
+    blend_obj[other[blended_ir]] = True
+
+    above = (np.isin(objs["pop"], [_QUASAR, _BRIGHT_QUASAR])
+             & (objs["broad"] <= COMPLETENESS["opt_broad_abmag_max"])
+             & (objs["ir"][:, 1] <= COMPLETENESS["ir_4p6_vegamag_max"]))
+    true_ra, true_dec = _xyz_to_lonlat(objs["xyz"])
+    obj = np.concatenate([opt_obj, dominant])
+    return {
+        "catalogue": np.repeat(np.array(["astrometric", "infrared"]),
+                               [len(opt_obj), len(ir_obj)]),
+        "id": np.concatenate([srcid_of_obj[opt_obj], ir_name]).astype(str),
+        "population": np.array(_POPULATIONS)[objs["pop"][obj]],
+        "redshift": objs["redshift"][obj],
+        "counterpart_id": np.concatenate([irname_of_obj[opt_obj],
+                                          srcid_of_obj[dominant]]).astype(str),
+        "blend": np.concatenate([blend_obj[opt_obj], blended_ir]),
+        "patch": np.array([p.name for p in _PATCHES])[objs["patch"][obj]],
+        "true_ra": true_ra[obj],
+        "true_dec": true_dec[obj],
+        "true_parallax": objs["parallax"][obj].astype(float),
+        "true_pmra": objs["pmra"][obj].astype(float),
+        "true_pmdec": objs["pmdec"][obj].astype(float),
+        "true_mag_broad": objs["broad"][obj],
+        "true_m46": np.concatenate([objs["ir"][opt_obj, 1], ir["m46_true"]]),
+        "above_completeness": above[obj],
+    }
+
+
+def _known_columns(rng, objs, astro, scale):
+    """Known objects: a random 30 % of the catalogued quasars, some stars and some galaxies."""
+    opt_obj = astro["obj"]
+    opt_pop = objs["pop"][opt_obj]
+    is_qso = np.isin(opt_pop, [_QUASAR, _BRIGHT_QUASAR])
+    known_q = opt_obj[is_qso & (rng.random(len(opt_obj)) < _KNOWN_QUASAR_FRACTION)]
+    star_pool = opt_obj[(opt_pop == _STAR) & (objs["broad"][opt_obj] < 19.0)]
+    n_star = min(len(star_pool), max(3, int(round(_KNOWN_STARS_AT_SCALE_1 * scale))))
+    known_s = np.sort(rng.choice(star_pool, n_star, replace=False))
+    gal_pool = opt_obj[opt_pop == _GALAXY]
+    n_gal = min(len(gal_pool), max(1, int(round(_KNOWN_GALAXIES_AT_SCALE_1 * scale))))
+    known_g = np.sort(rng.choice(gal_pool, n_gal, replace=False))
+    obj = np.concatenate([known_q, known_s, known_g])
+    kind = np.repeat(np.array(["quasar", "star", "galaxy"]), [len(known_q), n_star, n_gal])
+    label = np.concatenate([_serial_labels("KNOWN-Q", len(known_q)),
+                            _serial_labels("KNOWN-S", n_star), _serial_labels("KNOWN-G", n_gal)])
+    ra_deg, dec_deg = _xyz_to_lonlat(objs["xyz"][obj])
+    order = np.lexsort((label, ra_deg))
+    return {"label": label[order], "ra_k": ra_deg[order], "dec_k": dec_deg[order],
+            "kind": kind[order], "z": np.round(objs["redshift"][obj], 4)[order]}
+
+
+_ASTRO_UNITS = {
+    "alpha": "deg", "delta": "deg", "alpha_unc": "mas", "delta_unc": "mas", "plx": "mas",
+    "plx_unc": "mas", "mu_a": "mas/yr", "mu_d": "mas/yr", "mu_a_unc": "mas/yr",
+    "mu_d_unc": "mas/yr", "mag_broad": "mag", "mag_broad_unc": "mag", "mag_blue": "mag",
+    "mag_blue_unc": "mag", "mag_red": "mag", "mag_red_unc": "mag",
+}
+_IR_UNITS = {"ra_ir": "deg", "dec_ir": "deg", "pos_unc": "arcsec",
+             **{b: "mag" for b in _IR_BANDS}, **{b + "_unc": "mag" for b in _IR_BANDS}}
+_KNOWN_UNITS = {"ra_k": "deg", "dec_k": "deg"}
+_TRUTH_UNITS = {"true_ra": "deg", "true_dec": "deg", "true_parallax": "mas",
+                "true_pmra": "mas/yr", "true_pmdec": "mas/yr", "true_mag_broad": "mag",
+                "true_m46": "mag"}
+_TABLE_META = {
+    "astrometric": {"epoch_jyear": str(ASTROMETRIC_EPOCH_JYEAR), "magnitude_system": "AB",
+                    "description": "invented mock astrometric catalogue"},
+    "infrared": {"epoch_jyear": str(INFRARED_EPOCH_JYEAR), "magnitude_system": "Vega",
+                 "description": "invented mock infrared catalogue"},
+    "known": {"description": "invented mock known-objects catalogue"},
+    "truth": {"description": "truth labels of the invented mock sky"},
+}
+
+
+def _to_table(columns, units, role):
+    """A pyarrow Table with a unit in each field's metadata and a description of the role."""
+    fields, arrays = [], []
+    for name, values in columns.items():
+        values = np.asarray(values)
+        if values.dtype.kind in "US":
+            array = pa.array(values.astype(str).tolist(), type=pa.string())
+        elif values.dtype.kind == "b":
+            array = pa.array(values, type=pa.bool_())
+        elif values.dtype.kind in "iu":
+            array = pa.array(values.astype(np.int64), type=pa.int64())
+        else:
+            array = pa.array(values.astype(np.float64), type=pa.float64())
+        meta = {"unit": units[name]} if name in units else None
+        fields.append(pa.field(name, array.type, metadata=meta))
+        arrays.append(array)
+    return pa.Table.from_arrays(arrays, schema=pa.schema(fields, metadata=_TABLE_META[role]))
+
+
+def write_mock_sky(sky: MockSky, out_dir) -> dict[str, pathlib.Path]:
+    """Write the four tables in four different formats.
+
+    Parameters
+    ----------
+    sky : MockSky
+        Output of :func:`make_mock_sky`.
+    out_dir : str or os.PathLike
+        Directory to write into (created if missing; existing files of the same names are
+        replaced).
+
+    Returns
+    -------
+    dict of str to pathlib.Path
+        ``"astrometric"``: a folder holding ``part-0.parquet`` and ``part-1.parquet`` (the rows
+        split in two halves); ``"infrared"``: ``infrared.fits``, a FITS binary table with units;
+        ``"known"``: ``known.csv``; ``"truth"``: ``truth.parquet``.
+
+    Notes
+    -----
+    The Parquet files are byte-identical for identical tables.
+    """
+    from astropy.table import Table
+
+    out = pathlib.Path(out_dir)
+    astro_dir = out / "astrometric"
+    astro_dir.mkdir(parents=True, exist_ok=True)
+    half = sky.astrometric.num_rows // 2
+    pq.write_table(sky.astrometric.slice(0, half), astro_dir / "part-0.parquet")
+    pq.write_table(sky.astrometric.slice(half), astro_dir / "part-1.parquet")
+
+    ir = Table()
+    for field in sky.infrared.schema:
+        values = sky.infrared.column(field.name).to_numpy(zero_copy_only=False)
+        if pa.types.is_string(field.type):
+            values = values.astype(str)
+        unit = (field.metadata or {}).get(b"unit")
+        ir[field.name] = values
+        if unit is not None:
+            ir[field.name].unit = unit.decode()
+    ir.meta["EPOCH"] = INFRARED_EPOCH_JYEAR
+    ir.meta["MAGSYS"] = "VEGA"
+    ir_path = out / "infrared.fits"
+    ir.write(ir_path, format="fits", overwrite=True)
+
+    known_path = out / "known.csv"
+    pacsv.write_csv(sky.known, known_path,
+                    write_options=pacsv.WriteOptions(quoting_style="needed"))
+    truth_path = out / "truth.parquet"
+    pq.write_table(sky.truth, truth_path)
+    return {"astrometric": astro_dir, "infrared": ir_path, "known": known_path,
+            "truth": truth_path}
+
+
+# ----------------------------------------------------------------------------------------------
+# the `selector demo` command: mock sky → ingest → run → comparison with the truth
+# ----------------------------------------------------------------------------------------------
+
+#: Edges of the optical broad-band magnitude bins in which the demo reports quasar recovery.
+RECOVERY_BINS_ABMAG = (14.0, 16.0, 17.0, 18.0, 19.0, 20.0, 21.0)
+
+
+def write_demo_config(out_dir) -> pathlib.Path:
+    """Copy the shipped demo configuration beside the mock catalogues (``<out_dir>/demo.toml``)."""
+    from importlib.resources import files
+
+    text = files("selector").joinpath("configs/demo.toml").read_text(encoding="utf-8")
+    path = pathlib.Path(out_dir) / "demo.toml"
+    path.write_text(text, encoding="utf-8")
+    return path
+
+
+def evaluate_run(cfg, truth_path) -> "object":
+    """Completeness and contamination of a finished run against the mock truth."""
+    from . import tiles
+    from .io import read_parquet
+    from .truth import compare
+
+    def whole(kind):
+        parts = [read_parquet(tiles.tile_file(cfg.tiles_dir, kind, cfg.tiling.order, t))
+                 for t in tiles.list_tiles(cfg.tiles_dir, kind, cfg.tiling.order)]
+        return pa.concat_tables(parts)
+
+    candidates = read_parquet(cfg.run_dir / "candidates.parquet", columns=["astro_id"])
+    return compare(candidates.column("astro_id"), pq.read_table(truth_path), whole("astrometric"),
+                   whole("infrared"), COMPLETENESS, "opt_broad_abmag", RECOVERY_BINS_ABMAG)
+
+
+def run_demo(out_dir, seed: int = 1, scale: float = 1.0, workers=None, log=print):
+    """Write the mock sky and its config into ``out_dir``, ingest, run, and score against the truth."""
+    from .batch import run
+    from .config import load_config
+    from .ingest import ingest
+
+    out = pathlib.Path(out_dir)
+    log(f"writing an invented mock sky (seed {seed}, scale {scale}) to {out / 'catalogues'}")
+    paths = write_mock_sky(make_mock_sky(seed=seed, scale=scale), out / "catalogues")
+    cfg = load_config(write_demo_config(out))
+    log(f"configuration: {out / 'demo.toml'}")
+    ingest(cfg, log=log)
+    result = run(cfg, workers=workers, log=log)
+    report = evaluate_run(cfg, paths["truth"])
+    log("")
+    log("against the mock truth (figures for this invented sky only):")
+    log(report.as_text("optical broad-band AB magnitude"))
+    log("")
+    log(f"ranked candidates: {result.outputs['ecsv']} (also .csv and .parquet)")
+    log(f"per-tile feature cache and cut-flow: {cfg.run_dir / 'tiles'}")
+    return result, report
