@@ -54,7 +54,7 @@ def _disc_filter(table: pa.Table, tile: int, order: int, margin_arcsec: float) -
     corners = hp.boundaries(ns, int(tile), step=1, nest=True).T
     reach = np.max(np.arccos(np.clip(corners @ centre, -1, 1)))
     cos_limit = np.cos(min(np.pi, reach + margin_arcsec / _ARCSEC_PER_RAD))
-    xyz = radec_to_xyz(table.column("ra_deg").to_numpy(), table.column("dec_deg").to_numpy())
+    xyz = radec_to_xyz(table.column("ra_deg").to_numpy(), table.column("dec_deg").to_numpy(), workers=1)
     return table.filter(pa.array(xyz @ centre >= cos_limit))
 
 
@@ -64,10 +64,9 @@ def load_tile(cfg: Config, tile: int):
     Returns
     -------
     own : pyarrow.Table
-        Astrometric sources owned by ``tile``.
-    astro : pyarrow.Table
-        Astrometric sources within the blend margin (own first, then neighbours'), with a
-        boolean column ``_own``.
+        Astrometric sources owned by ``tile`` (every column).
+    neighbours : pyarrow.Table
+        Astrometric sources of other tiles within the blend margin (positions and motions only).
     infrared : pyarrow.Table
         Infrared sources within the match margin.
     """
@@ -86,17 +85,19 @@ def load_tile(cfg: Config, tile: int):
         path = tiles.tile_file(root, "infrared", order, int(t))
         if path.exists():
             ir_parts.append(_disc_filter(read_parquet(path), tile, order, ir_margin))
-    astro_parts = [own.append_column("_own", pa.array(np.ones(own.num_rows, bool)))]
+    neighbour_parts = []
     for t in tiles.tiles_near(tile, order, astro_margin):
-        if t == tile:
-            continue
         path = tiles.tile_file(root, "astrometric", order, int(t))
-        if path.exists():
-            part = _disc_filter(read_parquet(path), tile, order, astro_margin)
-            astro_parts.append(part.append_column("_own", pa.array(np.zeros(part.num_rows, bool))))
+        if t != tile and path.exists():
+            # neighbours only compete for counterparts: their positions and motions are all we need
+            neighbour_parts.append(_disc_filter(read_parquet(path, columns=_NEIGHBOUR_COLUMNS), tile, order,
+                                                astro_margin))
     infrared = _concat(ir_parts) if ir_parts else _empty_infrared(cfg)
-    astro = _concat(astro_parts)
-    return own, astro, infrared
+    neighbours = _concat(neighbour_parts) if neighbour_parts else own.select(_NEIGHBOUR_COLUMNS).slice(0, 0)
+    return own, neighbours, infrared
+
+
+_NEIGHBOUR_COLUMNS = ["astro_id", "ra_deg", "dec_deg", "pmra_mas_yr", "pmdec_mas_yr"]
 
 
 def _concat(parts):
@@ -158,14 +159,16 @@ class TileMatch:
     n_input: int
 
 
-def match_tile(own_and_margin: pa.Table, infrared: pa.Table, tile: int, radius_arcsec: float,
+def match_tile(own: pa.Table, neighbours: pa.Table, infrared: pa.Table, tile: int, radius_arcsec: float,
                dt_yr: float) -> TileMatch:
     """Cross-match the owned sources of a tile against the infrared sources around it.
 
     Parameters
     ----------
-    own_and_margin : pyarrow.Table
-        Astrometric sources (canonical columns) with a boolean ``_own`` column.
+    own : pyarrow.Table
+        Astrometric sources owned by the tile (canonical columns).
+    neighbours : pyarrow.Table
+        Astrometric sources of neighbouring tiles (``_NEIGHBOUR_COLUMNS``), for the blend count.
     infrared : pyarrow.Table
         Infrared sources covering the owned sources' match margin.
     tile : int
@@ -175,24 +178,23 @@ def match_tile(own_and_margin: pa.Table, infrared: pa.Table, tile: int, radius_a
     dt_yr : float
         Infrared epoch minus astrometric epoch (Julian years).
     """
-    own_mask = own_and_margin.column("_own").to_numpy(zero_copy_only=False)
-    astro = own_and_margin.drop(["_own"])
-    ra_m, dec_m = _propagated(astro, dt_yr)
-    own_idx = np.flatnonzero(own_mask)
+    ra_own, dec_own = _propagated(own, dt_yr)
+    ra_nb, dec_nb = _propagated(neighbours, dt_yr)
+    ra_m, dec_m = np.concatenate([ra_own, ra_nb]), np.concatenate([dec_own, dec_nb])
     ir_ra = infrared.column("ra_deg").to_numpy()
     ir_dec = infrared.column("dec_deg").to_numpy()
-    own_pairs = pairs_within(ra_m[own_idx], dec_m[own_idx], ir_ra, ir_dec, radius_arcsec)
-    nearest = nearest_within(own_pairs, len(own_idx))
+    own_pairs = pairs_within(ra_own, dec_own, ir_ra, ir_dec, radius_arcsec, workers=1)
+    nearest = nearest_within(own_pairs, own.num_rows)
     matched = np.flatnonzero(nearest.index_b >= 0)
     ir_for = nearest.index_b[matched]
     # blend count: every astrometric source (own or neighbour) within the radius of the counterpart
     counterparts = np.unique(ir_for)
-    blend_pairs = pairs_within(ir_ra[counterparts], ir_dec[counterparts], ra_m, dec_m, radius_arcsec)
+    blend_pairs = pairs_within(ir_ra[counterparts], ir_dec[counterparts], ra_m, dec_m, radius_arcsec, workers=1)
     blend = np.bincount(blend_pairs.index_a, minlength=len(counterparts))
     blend_for = blend[np.searchsorted(counterparts, ir_for)]
 
-    rows = own_idx[matched]
-    feats = astro.take(pa.array(rows, pa.int64()))
+    rows = matched
+    feats = own.take(pa.array(rows, pa.int64()))
     ir_sel = infrared.take(pa.array(ir_for, pa.int64()))
     l_deg, b_deg = galactic(feats.column("ra_deg").to_numpy(), feats.column("dec_deg").to_numpy())
     add = {
@@ -214,11 +216,11 @@ def match_tile(own_and_margin: pa.Table, infrared: pa.Table, tile: int, radius_a
     for name, col in add.items():
         feats = feats.append_column(name, col)
     pairs = pa.table({
-        "astro_id": astro.column("astro_id").take(pa.array(own_idx[own_pairs.index_a], pa.int64())),
+        "astro_id": own.column("astro_id").take(pa.array(own_pairs.index_a, pa.int64())),
         "ir_id": infrared.column("ir_id").take(pa.array(own_pairs.index_b, pa.int64())),
         "sep_arcsec": pa.array(own_pairs.separation_arcsec),
     })
-    return TileMatch(feats, pairs, int(own_mask.sum()))
+    return TileMatch(feats, pairs, own.num_rows)
 
 
 @lru_cache(maxsize=1)
@@ -234,7 +236,7 @@ def _galactic_matrix() -> np.ndarray:
 
 def galactic(ra_deg, dec_deg):
     """Galactic longitude and latitude (deg) of ICRS positions, as astropy's Galactic frame gives them."""
-    xyz = radec_to_xyz(ra_deg, dec_deg) @ _galactic_matrix().T
+    xyz = radec_to_xyz(ra_deg, dec_deg, workers=1) @ _galactic_matrix().T
     l_deg = np.degrees(np.arctan2(xyz[:, 1], xyz[:, 0])) % 360.0
     b_deg = np.degrees(np.arcsin(np.clip(xyz[:, 2], -1.0, 1.0)))
     return l_deg, b_deg
@@ -415,8 +417,8 @@ class TileResult:
 
 def process_tile(cfg: Config, tile: int, scorer=None, keep_pairs: bool = False) -> TileResult:
     """Run every stage for one tile and return its tables (nothing written)."""
-    own, astro, infrared = load_tile(cfg, tile)
-    m = match_tile(astro, infrared, tile, cfg.match.radius_arcsec, cfg.epoch_difference_yr)
+    own, neighbours, infrared = load_tile(cfg, tile)
+    m = match_tile(own, neighbours, infrared, tile, cfg.match.radius_arcsec, cfg.epoch_difference_yr)
     return select_tile(cfg, tile, own.num_rows, m.features, scorer, m.pairs if keep_pairs else None)
 
 
