@@ -27,8 +27,8 @@ def setting(default=dataclasses.MISSING, *, doc: str = "", default_factory=datac
 
 def suggest(word: str, options) -> str:
     """``" (did you mean 'x'?)"`` for the closest option, or a list of the valid ones."""
-    options = sorted(options)
-    close = difflib.get_close_matches(word, options, n=1, cutoff=0.5)
+    options = sorted(str(o) for o in options)
+    close = difflib.get_close_matches(str(word), options, n=1, cutoff=0.5)
     if close:
         return f" (did you mean '{close[0]}'?)"
     return f" (valid keys: {', '.join(options)})" if options else ""

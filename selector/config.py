@@ -207,6 +207,109 @@ class RunConfig:
 
 
 @dataclass(frozen=True)
+class SiteConfig:
+    """The observing site, as geodetic coordinates on the WGS84 ellipsoid."""
+
+    latitude_deg: float = setting(min=-90.0, max=90.0, doc="geodetic latitude, north positive")
+    longitude_deg: float = setting(min=-180.0, max=180.0, doc="longitude, east positive")
+    height_m: float = setting(0.0, min=-500.0, max=9000.0, doc="height above the ellipsoid")
+    name: str = setting("site", doc="a label for the site, printed in the summary")
+
+
+@dataclass(frozen=True)
+class PriorityConfig:
+    """Limits of priority classes 1 and 2; every other observable target is class 3."""
+
+    band: str = setting("4.6", doc="brightness band: an infrared label (Vega mag) or opt_<band> (AB mag)")
+    class1_score_top_fraction: float = setting(0.2, min=0.0, min_exclusive=True, max=1.0,
+                                               doc="class 1 needs a score among this top fraction of the listed targets")
+    class1_mag_max: float = setting(14.5, doc="class 1 needs the band's magnitude ≤ this")
+    class1_hours_min: float = setting(3.0, min=0.0, doc="class 1 needs at least this many observable dark hours")
+    class2_score_top_fraction: float = setting(0.6, min=0.0, min_exclusive=True, max=1.0,
+                                               doc="class 2 needs a score among this top fraction")
+    class2_mag_max: float = setting(15.5, doc="class 2 needs the band's magnitude ≤ this")
+    class2_hours_min: float = setting(1.0, min=0.0, doc="class 2 needs at least this many observable dark hours")
+
+
+#: Output formats of the target list.
+TARGET_FORMATS = ("ecsv", "csv", "votable", "fits")
+
+
+@dataclass(frozen=True)
+class TargetsConfig:
+    """Follow-up target lists: known-object removal, observability from a site, priorities."""
+
+    site: SiteConfig = setting(doc="the observing site")
+    start_date: str = setting(doc="local date (YYYY-MM-DD) of the evening of the first night")
+    end_date: str = setting(doc="local date (YYYY-MM-DD) after the evening of the last night (exclusive)")
+    sun_altitude_max_deg: float = setting(-18.0, min=-30.0, max=0.0, doc="dark time: the Sun is below this altitude")
+    altitude_min_deg: Optional[float] = setting(None, min=0.0, max=89.0,
+                                                doc="lowest target altitude (30 when neither this nor airmass_max is set)")
+    airmass_max: Optional[float] = setting(None, min=1.0, min_exclusive=True, max=10.0,
+                                           doc="highest airmass sec(z), instead of altitude_min_deg")
+    moon_separation_min_deg: Optional[float] = setting(None, min=0.0, max=180.0,
+                                                       doc="smallest distance from the Moon; no Moon test when absent")
+    time_step_min: int = setting(10, min=1, max=30, doc="sampling step of each night, minutes (a divisor of 1440)")
+    known_radius_arcsec: float = setting(2.0, min=0.0, min_exclusive=True, max=600.0,
+                                         doc="match radius against the known-objects catalogue")
+    known_action: str = setting("remove", choices=("remove", "flag"),
+                                doc="remove candidates matching a known object, or keep and flag them")
+    known: Optional[CatalogueConfig] = setting(None, doc="a known-objects file for targets only (default: the ingested [known])")
+    priority: PriorityConfig = setting(default_factory=PriorityConfig, doc="priority-class limits")
+    formats: list[str] = setting(default_factory=lambda: ("ecsv",), choices=TARGET_FORMATS, doc="output formats")
+    output_folder: str = setting("targets", doc="folder below project.output_dir for the lists")
+    history_file: str = setting("history.sqlite", doc="candidate history database, below project.output_dir")
+    score_tolerance: float = setting(1e-9, min=0.0, doc="score changes up to this count as unchanged")
+
+    def _check(self, where):
+        import datetime
+
+        dates = {}
+        for key in ("start_date", "end_date"):
+            text = getattr(self, key)
+            try:
+                dates[key] = datetime.date.fromisoformat(text)
+            except ValueError:
+                raise ConfigError(f"{where}.{key} = {text!r} is not a date written YYYY-MM-DD") from None
+            if not 1980 <= dates[key].year <= 2100:
+                raise ConfigError(f"{where}.{key} = {text!r} is outside the years 1980 to 2100")
+        nights = (dates["end_date"] - dates["start_date"]).days
+        if nights < 0:
+            raise ConfigError(f"{where}.end_date = {self.end_date!r} is before {where}.start_date = "
+                              f"{self.start_date!r}: the date range is reversed")
+        if nights == 0:
+            raise ConfigError(f"{where}.end_date = {self.end_date!r} equals {where}.start_date: the date range is "
+                              "empty (end_date is the morning after the last night, so give a later date)")
+        if nights > 1096:
+            raise ConfigError(f"{where}: {nights} nights from start_date to end_date; at most 1096 (three years) "
+                              "are allowed, split the range")
+        if 1440 % self.time_step_min:
+            # every night then has the same grid of steps, local noon to local noon
+            raise ConfigError(f"{where}.time_step_min = {self.time_step_min} does not divide a day (1440 minutes); "
+                              "choose e.g. 5, 10, 15 or 20")
+        if self.altitude_min_deg is not None and self.airmass_max is not None:
+            raise ConfigError(f"{where}: give altitude_min_deg or airmass_max, not both")
+        if len(set(self.formats)) != len(self.formats):
+            raise ConfigError(f"{where}.formats = {list(self.formats)} names a format twice")
+        if not self.formats:
+            raise ConfigError(f"{where}.formats is empty; give at least one of {', '.join(TARGET_FORMATS)}")
+        if self.known is not None:
+            try:
+                check_catalogue(self.known, "known")
+            except ConfigError as exc:
+                raise ConfigError(f"{where}.known: {exc}") from None
+
+    @property
+    def altitude_limit_deg(self) -> float:
+        """The altitude limit in force: from airmass_max (plane-parallel sec z), else altitude_min_deg, else 30."""
+        import math
+
+        if self.airmass_max is not None:
+            return 90.0 - math.degrees(math.acos(1.0 / self.airmass_max))
+        return 30.0 if self.altitude_min_deg is None else self.altitude_min_deg
+
+
+@dataclass(frozen=True)
 class Config:
     """The whole validated configuration. Build it with :func:`load_config` or :func:`from_dict`."""
 
@@ -221,6 +324,7 @@ class Config:
     ranking: RankingConfig = setting(default_factory=RankingConfig)
     classifier: ClassifierConfig = setting(default_factory=ClassifierConfig)
     run: RunConfig = setting(default_factory=RunConfig)
+    targets: Optional[TargetsConfig] = setting(None, doc="follow-up target lists (`selector targets`)")
     base_dir: str = setting(".", doc="folder relative paths are taken from (set by load_config)")
 
     def _check(self, where):
@@ -230,6 +334,8 @@ class Config:
             check_catalogue(self.known, "known")
         _check_selection(self)
         _check_margin(self)
+        if self.targets is not None:
+            _check_targets(self)
 
     # --- paths -------------------------------------------------------------------------------
     def path(self, relative: str) -> Path:
@@ -298,6 +404,14 @@ def _check_selection(cfg: Config) -> None:
                           f"[[infrared.magnitudes]]{suggest(cfg.ranking.brightness_band, cfg.infrared_bands())}")
     if cfg.motion.fit_quality_max is not None and "fit_quality" not in cfg.astrometric.columns:
         raise ConfigError("motion.fit_quality_max is set but astrometric.columns has no fit_quality role")
+
+
+def _check_targets(cfg: Config) -> None:
+    band = cfg.targets.priority.band
+    known = _quantity_names(cfg)
+    if band not in known:
+        raise ConfigError(f"targets.priority.band = {band!r} is not a band of this configuration; choose from "
+                          f"{', '.join(sorted(known))}{suggest(band, known)}")
 
 
 def _check_margin(cfg: Config) -> None:

@@ -170,14 +170,16 @@ def test_default_toml_documents_every_settings_key():
     section_classes = {"project": cfgmod.ProjectConfig, "tiling": cfgmod.TilingConfig, "match": cfgmod.MatchConfig,
                        "motion": cfgmod.MotionConfig, "colours": cfgmod.ColourConfig,
                        "ranking": cfgmod.RankingConfig, "classifier": cfgmod.ClassifierConfig,
-                       "run": cfgmod.RunConfig, "astrometric": cfgmod.CatalogueConfig}
+                       "run": cfgmod.RunConfig, "astrometric": cfgmod.CatalogueConfig,
+                       "targets": cfgmod.TargetsConfig}
     for section, cls in section_classes.items():
         assert f"[{section}]" in text, section
         for f in dataclasses.fields(cls):
             # each key appears as "key =", a "[section.key]" table, or commented out
             pattern = rf"^#?\s*({f.name}\s*=|\[\[?{section}\.{f.name}\]\]?)"
             assert re.search(pattern, text, re.M), f"{section}.{f.name} undocumented"
-    for cls in (cfgmod.MagnitudeSpec, cfgmod.LinearCutSpec, cfgmod.OpticalInfraredCut):
+    for cls in (cfgmod.MagnitudeSpec, cfgmod.LinearCutSpec, cfgmod.OpticalInfraredCut, cfgmod.SiteConfig,
+                cfgmod.PriorityConfig):
         for f in dataclasses.fields(cls):
             assert re.search(rf"^#?\s*{f.name}\s*=", text, re.M), f"{cls.__name__}.{f.name} undocumented"
 

@@ -1,0 +1,485 @@
+"""Follow-up target lists: known objects, drop reasons, output formats, candidate history, outcomes.
+
+Candidate lists are small synthetic tables written straight to ``run/candidates.parquet``; the
+pipeline is not run. Checks of the astronomy against astropy are in tests/external/test_observability.py.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+import sqlite3
+
+import numpy as np
+import pyarrow as pa
+import pytest
+from astropy.table import Table
+
+from selector import followup as fu
+from selector.cli import main
+from selector.errors import ConfigError, InputError
+from selector.io import write_parquet
+
+from conftest import base_config, build
+
+SITE = {"name": "test site", "latitude_deg": -30.0, "longitude_deg": -70.0, "height_m": 2400.0}
+# A short range keeps the tests fast; in April, RA ~ 13 h culminates near local midnight.
+TARGETS = {"site": SITE, "start_date": "2027-04-01", "end_date": "2027-04-11"}
+
+
+def _data(tmp_path, known=False, **targets):
+    data = base_config()
+    data["targets"] = {**TARGETS, **targets}
+    if known:
+        data["known"] = {"files": ["known.csv"], "columns": {"name": "n", "ra": "ra", "dec": "dec", "class": "cls"}}
+    return data
+
+
+def _candidates(cfg, ids, ra, dec, score, mag46=None, run_hash="run-a"):
+    n = len(ids)
+    ids = np.asarray(ids)
+    table = pa.table({
+        "astro_id": pa.array(ids, pa.int64() if ids.dtype.kind in "iu" else pa.string()),
+        "ra_deg": np.asarray(ra, float), "dec_deg": np.asarray(dec, float),
+        "parallax_mas": np.zeros(n), "ir_3p4_vegamag": np.full(n, 14.0),
+        "ir_4p6_vegamag": np.full(n, 13.0) if mag46 is None else np.asarray(mag46, float),
+        "opt_broad_abmag": np.full(n, 18.0), "criteria_score": np.asarray(score, float),
+        "ir_id": pa.array([f"IR{i}" for i in range(n)]),
+    })
+    write_parquet(table, cfg.run_dir / "candidates.parquet",
+                  {"provenance": {"config_hash": run_hash, "selector_version": "test"}})
+
+
+def _known_objects(cfg, names, ra, dec, classes, z):
+    table = pa.table({"known_name": pa.array(names), "ra_deg": np.asarray(ra, float),
+                      "dec_deg": np.asarray(dec, float), "known_class": pa.array(classes),
+                      "redshift": np.asarray(z, float)})
+    write_parquet(table, cfg.tiles_dir / "known" / "objects.parquet")
+
+
+def _toml(data: dict, prefix: str = "") -> str:
+    """Just enough TOML for the test configurations (tables, arrays of tables, scalars, lists)."""
+    def value(v):
+        if isinstance(v, bool):
+            return "true" if v else "false"
+        if isinstance(v, (list, tuple)):
+            return "[" + ", ".join(value(x) for x in v) + "]"
+        return json.dumps(v)
+
+    plain = [f"{k} = {value(v)}" for k, v in data.items()
+             if not isinstance(v, dict) and not (isinstance(v, list) and v and isinstance(v[0], dict))]
+    out = ([f"[{prefix}]"] if prefix and plain else []) + plain
+    for k, v in data.items():
+        name = f"{prefix}.{k}" if prefix else k
+        if isinstance(v, dict):
+            out.append(_toml(v, name))
+        elif isinstance(v, list) and v and isinstance(v[0], dict):
+            for item in v:
+                out.append(f"[[{name}]]\n" + _toml(item, "").strip())
+    return "\n".join(out) + "\n"
+
+
+def _write_config(tmp_path, data):
+    path = tmp_path / "selector.toml"
+    path.write_text(_toml(data))
+    return path
+
+
+# --- known objects -------------------------------------------------------------------------------
+
+@pytest.mark.parametrize("action", ["remove", "flag"])
+def test_known_objects_removed_or_flagged(tmp_path, action):
+    cfg = build(_data(tmp_path, known=True, known_action=action, known_radius_arcsec=2.0), tmp_path)
+    ra = np.array([195.0, 196.0, 197.0, 198.0])
+    dec = np.full(4, -30.0)
+    _candidates(cfg, [11, 12, 13, 14], ra, dec, [4.0, 3.0, 2.0, 1.0])
+    # 1" from candidate 12, 1.5" from candidate 14, 5" from candidate 13 (outside the 2" radius)
+    _known_objects(cfg, ["K-a", "K-b", "K-c"], [196.0, 197.0, 198.0],
+                   [-30.0 + 1 / 3600, -30.0 + 5 / 3600, -30.0 - 1.5 / 3600], ["quasar", "star", "galaxy"],
+                   [2.1, 0.0, 0.3])
+    result = fu.make_targets(cfg, log=lambda *a: None)
+    listed = list(result.targets["astro_id"])
+    if action == "remove":
+        assert listed == [11, 13]
+        d = result.dropped
+        assert list(d["astro_id"]) == [12, 14]
+        assert list(d["reason"]) == ["known_object", "known_object"]
+        assert list(d["known_name"]) == ["K-a", "K-c"]
+        assert result.counts["dropped"]["known_object"] == 2
+    else:
+        assert sorted(listed) == [11, 12, 13, 14]
+        t = result.targets
+        row = {int(i): k for k, i in enumerate(t["astro_id"])}
+        assert t["known_name"][row[12]] == "K-a" and t["known_class"][row[12]] == "quasar"
+        assert t["known_redshift"][row[12]] == pytest.approx(2.1)
+        assert t["known_sep_arcsec"][row[12]] == pytest.approx(1.0, abs=1e-3)
+        assert t["known_name"][row[13]] == "" and np.isnan(t["known_sep_arcsec"][row[13]])
+        assert t["known_sep_arcsec"][row[14]] == pytest.approx(1.5, abs=1e-3)
+        assert result.counts["known_flagged"] == 2
+
+
+def test_ingested_known_objects_missing_is_one_line(tmp_path):
+    cfg = build(_data(tmp_path, known=True), tmp_path)
+    _candidates(cfg, [1], [195.0], [-30.0], [1.0])
+    with pytest.raises(Exception, match=r"objects.parquet: not found; run `selector ingest") as info:
+        fu.make_targets(cfg, log=lambda *a: None)
+    assert "\n" not in str(info.value)
+
+
+def test_known_objects_file_missing_a_column_writes_nothing(tmp_path):
+    (tmp_path / "spectra.csv").write_text("name,ra,dec\nK1,195.0,-30.0\n")
+    known = {"files": ["spectra.csv"], "columns": {"name": "name", "ra": "ra", "dec": "dec", "class": "kind"}}
+    data = _data(tmp_path)
+    data["targets"]["known"] = known
+    cfg = build(data, tmp_path)
+    _candidates(cfg, [1, 2], [195.0, 196.0], [-30.0, -30.0], [1.0, 2.0])
+    with pytest.raises(InputError, match=r"spectra.csv: column 'kind' named in the config is not in the file") as info:
+        fu.make_targets(cfg, log=lambda *a: None)
+    assert "\n" not in str(info.value)
+    assert not (cfg.output_dir / "targets").exists()
+    assert not (cfg.output_dir / "history.sqlite").exists()
+
+
+def test_targets_known_file_rows_are_accounted(tmp_path):
+    # one good row matching candidate 2, one with an unparsable position (rejected, not matched)
+    (tmp_path / "spectra.csv").write_text("name,ra,dec,kind\nK1,196.0,-30.0,star\nK2,oops,-30.0,star\n")
+    data = _data(tmp_path)
+    data["targets"]["known"] = {"files": ["spectra.csv"],
+                                "columns": {"name": "name", "ra": "ra", "dec": "dec", "class": "kind"}}
+    cfg = build(data, tmp_path)
+    _candidates(cfg, [1, 2], [195.0, 196.0], [-30.0, -30.0], [2.0, 1.0])
+    known = fu._read_known(cfg)
+    assert (known.rows_in, known.table.num_rows, known.rejected) == (2, 1, {"unparsable_value": 1})
+    result = fu.make_targets(cfg, log=lambda *a: None)
+    assert list(result.dropped["astro_id"]) == [2]
+    rejects = Table.read(result.outputs["known_rejects"], format="ascii.ecsv")
+    assert rejects["input_row"].tolist() == [1] and rejects["column"].tolist() == ["ra"]
+    assert "2 rows, 1 used; refused: unparsable_value: 1" in result.summary
+
+
+# --- observability and drop reasons -----------------------------------------------------------------
+
+def test_far_northern_target_from_southern_site_is_dropped_with_reason(tmp_path):
+    cfg = build(_data(tmp_path), tmp_path)
+    _candidates(cfg, [1, 2], [195.0, 195.0], [80.0, -30.0], [2.0, 1.0])
+    result = fu.make_targets(cfg, log=lambda *a: None)
+    d = result.dropped
+    assert list(d["astro_id"]) == [1]
+    assert d["reason"][0] == "below_altitude_limit"
+    # transit altitude 90 - |latitude - dec| = 90 - 110 = -20 deg (geometry of the meridian); the
+    # declination of date differs from the J2000 one by precession, under 0.2 deg by 2027
+    assert d["transit_altitude_deg"][0] == pytest.approx(-20.0, abs=0.2)
+    assert "transit altitude -19.9 deg is below the limit of 30.0 deg" in d["detail"][0]
+    t = result.targets
+    assert list(t["astro_id"]) == [2]
+    assert t["transit_altitude_deg"][0] == pytest.approx(90.0, abs=0.2)
+    assert t["nights_observable"][0] == 10 and t["observable_hours"][0] > 30
+    assert "never above the altitude limit:" in result.summary
+
+
+def test_daytime_target_is_dropped_as_not_in_dark_time(tmp_path):
+    # In early April the Sun is near RA 0 h, dec +5 deg: a target beside it is up only by day.
+    cfg = build(_data(tmp_path), tmp_path)
+    _candidates(cfg, [1], [12.0], [0.0], [1.0])
+    result = fu.make_targets(cfg, log=lambda *a: None)
+    assert list(result.dropped["reason"]) == ["not_in_dark_time"]
+    assert len(result.targets) == 0
+
+
+def test_moon_distance_limit_drops_target_near_moon(tmp_path):
+    # With a 179-degree limit nothing is ever far enough from the Moon: the reason must say so.
+    cfg = build(_data(tmp_path, moon_separation_min_deg=179.0, end_date="2027-04-03"), tmp_path)
+    _candidates(cfg, [1], [195.0], [-30.0], [1.0])
+    result = fu.make_targets(cfg, log=lambda *a: None)
+    assert list(result.dropped["reason"]) == ["moon_too_close"]
+
+
+def test_airmass_limit_is_the_altitude_of_sec_z(tmp_path):
+    cfg = build(_data(tmp_path, airmass_max=2.0), tmp_path)
+    # plane-parallel airmass sec(z) = 2 at z = 60 deg (common practice)
+    assert cfg.targets.altitude_limit_deg == pytest.approx(30.0)
+    assert build(_data(tmp_path), tmp_path).targets.altitude_limit_deg == 30.0
+
+
+# --- priorities ---------------------------------------------------------------------------------
+
+def test_priority_rule():
+    from selector.config import PriorityConfig
+
+    p = PriorityConfig(class1_score_top_fraction=0.2, class1_mag_max=14.0, class1_hours_min=2.0,
+                       class2_score_top_fraction=0.6, class2_mag_max=15.0, class2_hours_min=1.0)
+    score = np.array([10, 9, 8, 7, 6, 5, 4, 3, 2, 1], float)
+    rank = np.arange(1, 11)
+    mag = np.array([13, 13, 13, 13, 14.5, 13, 13, np.nan, 13, 13])
+    steps = np.full(10, 30)                       # 5 h at 10-minute steps
+    steps[1] = 11                                 # 1 h 50 min: under class 1's 2 h
+    got = fu.priority_classes(score, rank, mag, steps, 10, p)
+    # top 20 % of 10 = ranks 1-2; top 60 % = ranks 1-6
+    assert got.tolist() == [1, 2, 2, 2, 2, 2, 3, 3, 3, 3]
+    # equal scores are ordered by rank, and 0.1 x 30 means exactly 3 targets in the top
+    p = PriorityConfig(class1_score_top_fraction=0.1, class1_mag_max=99.0, class1_hours_min=0.0)
+    got = fu.priority_classes(np.ones(30), np.arange(30, 0, -1), np.full(30, 12.0), np.full(30, 6), 10, p)
+    assert sorted(np.flatnonzero(got == 1).tolist()) == [27, 28, 29]
+
+
+def test_priority_classes_in_output_and_summary(tmp_path):
+    cfg = build(_data(tmp_path), tmp_path)
+    _candidates(cfg, [1, 2, 3, 4, 5], np.full(5, 195.0) + np.arange(5), np.full(5, -30.0), [5, 4, 3, 2, 1],
+                mag46=[13.0, 16.0, 15.0, 13.0, 13.0])
+    result = fu.make_targets(cfg, log=lambda *a: None)
+    t = result.targets
+    # top 20 % of 5 is one target; top 60 % is three: 1 → class 1, 2 too faint, 3 class 2, 4-5 class 3
+    assert list(t["astro_id"]) == [1, 3, 2, 4, 5]
+    assert list(t["priority"]) == [1, 2, 3, 3, 3]
+    assert result.counts["priority"] == {"1": 1, "2": 1, "3": 3}
+    text = result.summary
+    assert "priority class 1:" in text and "Total observable hours of the listed targets:" in text
+    total = float(np.sum(t["observable_hours"]))
+    assert f"{total:.1f} h" in text
+
+
+# --- output formats -----------------------------------------------------------------------------
+
+def _plain(col):
+    """Column values with masked entries as the writer's own blanks ("" for text, NaN for numbers)."""
+    if hasattr(col, "filled"):
+        kind = col.dtype.kind
+        return np.asarray(col.filled("" if kind in "US" else np.nan if kind == "f" else 0))
+    return np.asarray(col)
+
+
+def _same(a, b):
+    a, b = _plain(a), _plain(b)
+    if a.dtype.kind in "US" or b.dtype.kind in "US":
+        return np.array_equal(a.astype(str), b.astype(str))
+    return np.allclose(a.astype(float), b.astype(float), rtol=0, atol=0, equal_nan=True)
+
+
+def test_every_format_reads_back_with_units_and_provenance(tmp_path):
+    from astropy.io.votable import parse
+
+    cfg = build(_data(tmp_path, formats=["ecsv", "csv", "votable", "fits"], known=True, known_action="flag"),
+                tmp_path)
+    _candidates(cfg, [7, 8, 9], [195.0, 200.25, 210.5], [-30.0, -45.5, -10.125], [3.0, 2.0, 1.0],
+                mag46=[13.0, 14.2, np.nan])
+    _known_objects(cfg, ["K1"], [200.25], [-45.5], ["quasar"], [1.5])
+    result = fu.make_targets(cfg, log=lambda *a: None)
+    ref = result.targets
+    assert len(ref) == 3
+    out = result.outputs
+    read = {"ecsv": Table.read(out["ecsv"], format="ascii.ecsv"), "csv": Table.read(out["csv"], format="ascii.csv"),
+            "votable": Table.read(out["votable"], format="votable"), "fits": Table.read(out["fits"], format="fits")}
+    for fmt, t in read.items():
+        assert t.colnames == ref.colnames, fmt
+        for name in ref.colnames:
+            assert _same(t[name], ref[name]), (fmt, name)
+            want = fu.unit_of(name)
+            # CSV has no unit field: its units come from the column names, as everywhere in the project
+            got = fu.unit_of(name) if fmt == "csv" else (None if t[name].unit is None else t[name].unit.to_string())
+            assert (got is None) == (want is None), (fmt, name)
+            if want:
+                assert t[name].unit == want if fmt != "csv" else got == want, (fmt, name)
+    assert read["ecsv"]["ra_deg"].unit == "deg" and read["fits"]["observable_hours"].unit == "h"
+    prov = json.loads(out["provenance"].read_text())
+    assert read["ecsv"].meta["selector_provenance"] == prov
+    assert json.loads(read["fits"].meta["PROVJSON"]) == prov
+    infos = {i.name: i.value for i in parse(str(out["votable"])).get_first_table().infos}
+    assert json.loads(infos["selector_provenance"]) == prov
+    assert prov["candidates"]["config_hash"] == "run-a" and prov["known_objects"]["files"] == "objects.parquet"
+    assert "refraction ignored" in prov["method"]
+
+
+def test_sexagesimal_matches_astropy_formatting():
+    from astropy.coordinates import Angle
+
+    ra = np.array([0.0, 15.0, 123.456789, 359.99999999, 180.0 + 1e-9])
+    dec = np.array([0.0, -0.0000001, -45.123456, 89.9999999999, 12.5])
+    hms, dms = fu.sexagesimal(ra, dec)
+    # reference: astropy Angle.to_string with the same precision (rounding carries into minutes and hours)
+    want_ra = Angle(ra, "deg").wrap_at("360d").to_string(unit="hourangle", sep=":", precision=3, pad=True)
+    want_dec = Angle(dec, "deg").to_string(unit="deg", sep=":", precision=2, pad=True, alwayssign=True)
+    want_ra = [w if w != "24:00:00.000" else "00:00:00.000" for w in want_ra]
+    want_dec = [w if w != "-00:00:00.00" else "+00:00:00.00" for w in want_dec]
+    assert hms.tolist() == want_ra
+    assert dms.tolist() == want_dec
+
+
+def test_output_is_deterministic(tmp_path):
+    cfg = build(_data(tmp_path, formats=["ecsv", "votable", "fits", "csv"]), tmp_path)
+    _candidates(cfg, [1, 2, 3], [195.0, 196.0, 80.0], [-30.0, 10.0, 80.0], [3.0, 2.0, 1.0])
+    first = fu.make_targets(cfg, log=lambda *a: None)
+    before = {k: p.read_bytes() for k, p in first.outputs.items()}
+    second = fu.make_targets(cfg, log=lambda *a: None)
+    assert second.history_reused and second.history_run == first.history_run
+    assert {k: p.read_bytes() for k, p in second.outputs.items()} == before
+
+
+# --- history and outcomes -----------------------------------------------------------------------
+
+def _statuses(cfg):
+    h = fu.read_history(cfg)
+    return dict(zip(h.column("astro_id").to_pylist(), h.column("status").to_pylist()))
+
+
+def test_history_over_three_runs(tmp_path):
+    cfg = build(_data(tmp_path), tmp_path)
+    ra, dec = np.array([195.0, 196.0, 197.0, 198.0]), np.full(4, -30.0)
+    quiet = dict(log=lambda *a: None)
+
+    _candidates(cfg, [1, 2, 3], ra[:3], dec[:3], [3.0, 2.0, 1.0], run_hash="run-1")
+    r1 = fu.make_targets(cfg, **quiet)
+    assert r1.history_run == 1 and _statuses(cfg) == {1: "new", 2: "new", 3: "new"}
+
+    # run 2: candidate 2's score changes, 3 disappears, 4 appears
+    _candidates(cfg, [1, 2, 4], ra[[0, 1, 3]], dec[[0, 1, 3]], [3.0, 2.5, 1.0], run_hash="run-2")
+    r2 = fu.make_targets(cfg, **quiet)
+    assert r2.history_run == 2
+    assert _statuses(cfg) == {1: "unchanged", 2: "score_changed", 3: "dropped", 4: "new"}
+    new = fu.make_targets(cfg, new_only=True, **quiet)
+    assert new.history_run == 2 and list(new.targets["astro_id"]) == [4]
+    assert new.outputs["ecsv"].name == "targets_new.ecsv" and new.counts["not_new"] == 2
+
+    # an outcome for 4, then run 3: 3 comes back, 2 is gone, 4 stays observed and is not re-proposed
+    (tmp_path / "spectra.csv").write_text("astro_id,spec_class,redshift\n4,QSO,2.75\n")
+    assert fu.record_outcomes(cfg, tmp_path / "spectra.csv", log=lambda *a: None) == 1
+    _candidates(cfg, [1, 3, 4], ra[[0, 2, 3]], dec[[0, 2, 3]], [3.0, 1.0, 1.0], run_hash="run-3")
+    r3 = fu.make_targets(cfg, **quiet)
+    assert r3.history_run == 3
+    assert _statuses(cfg) == {1: "unchanged", 2: "dropped", 3: "new", 4: "observed"}
+    assert list(r3.targets["astro_id"]) == [1, 3]
+    assert list(r3.dropped["reason"]) == ["observed"]
+    assert fu.score_history(cfg, 2) == [(1, 2.0, "new"), (2, 2.5, "score_changed")]
+    assert [s for _, _, s in fu.score_history(cfg, 3)] == ["new", "new"]
+    h = fu.read_history(cfg).to_pylist()
+    row1 = next(r for r in h if r["astro_id"] == 1)
+    assert (row1["first_run"], row1["last_run"], row1["n_runs"]) == (1, 3, 3)
+    assert row1["first_seen_utc"] <= row1["last_seen_utc"]
+
+
+def test_recorded_outcome_is_a_training_label(tmp_path):
+    cfg = build(_data(tmp_path), tmp_path)
+    _candidates(cfg, [101, 102, 103], [195.0, 196.0, 197.0], np.full(3, -30.0), [3.0, 2.0, 1.0])
+    fu.make_targets(cfg, log=lambda *a: None)
+    assert fu.training_labels(cfg).num_rows == 0
+    (tmp_path / "spectra.csv").write_text("candidate_id,class,z\n102,star,\n101,quasar,3.1\n")
+    fu.record_outcomes(cfg, tmp_path / "spectra.csv", log=lambda *a: None)
+    labels = fu.training_labels(cfg)
+    assert labels.column_names == ["astro_id", "label", "redshift"]
+    assert labels.schema.field("astro_id").type == pa.int64()
+    assert labels.to_pylist() == [{"astro_id": 101, "label": "quasar", "redshift": 3.1},
+                                  {"astro_id": 102, "label": "star", "redshift": None}]
+    assert _statuses(cfg)[101] == "observed"
+
+
+def test_outcome_for_unknown_candidate_records_nothing(tmp_path):
+    cfg = build(_data(tmp_path), tmp_path)
+    _candidates(cfg, ["a1", "a2"], [195.0, 196.0], [-30.0, -30.0], [2.0, 1.0])
+    fu.make_targets(cfg, log=lambda *a: None)
+    (tmp_path / "spectra.csv").write_text("id,spec_class\na1,galaxy\nzz9,star\n")
+    with pytest.raises(InputError, match=r"spectra.csv: 1 candidate ids are not in the candidate history "
+                                         r"\(data row 2: zz9\); nothing was recorded") as info:
+        fu.record_outcomes(cfg, tmp_path / "spectra.csv", log=lambda *a: None)
+    assert "\n" not in str(info.value)
+    assert fu.training_labels(cfg).num_rows == 0
+    assert _statuses(cfg) == {"a1": "new", "a2": "new"}
+
+
+@pytest.mark.parametrize("text, match", [
+    ("astro_id,redshift\n1,2.0\n", r"no class column; name it one of spec_class"),
+    ("astro_id,spec_class\n1,nebula\n", r"column 'spec_class', data row 1 .*the class must be one of"),
+    ("astro_id,spec_class,z\n1,star,-3\n", r"column 'z', data row 1 .*redshift must be a number"),
+    ("astro_id,spec_class\n1,star\n1,quasar\n", r"data row 2 .*more than once"),
+    ("astro_id,spec_class\nx1,star\n", r"data row 1 .*candidate ids are integers"),
+])
+def test_bad_outcome_files_are_one_line_errors(tmp_path, text, match):
+    cfg = build(_data(tmp_path), tmp_path)
+    _candidates(cfg, [1], [195.0], [-30.0], [1.0])
+    fu.make_targets(cfg, log=lambda *a: None)
+    (tmp_path / "o.csv").write_text(text)
+    with pytest.raises(InputError, match=match) as info:
+        fu.record_outcomes(cfg, tmp_path / "o.csv", log=lambda *a: None)
+    assert "\n" not in str(info.value)
+    assert fu.training_labels(cfg).num_rows == 0
+
+
+def test_history_commits_only_when_files_are_written(tmp_path, monkeypatch):
+    cfg = build(_data(tmp_path, formats=["ecsv", "fits"]), tmp_path)
+    _candidates(cfg, [1, 2], [195.0, 196.0], [-30.0, -30.0], [2.0, 1.0])
+
+    def broken(table, tmp, fmt, prov):
+        if fmt == "fits":
+            raise OSError("disk full")
+        tmp.write_text("partial")
+
+    monkeypatch.setattr(fu, "_write", broken)
+    with pytest.raises(OSError):
+        fu.make_targets(cfg, log=lambda *a: None)
+    folder = cfg.output_dir / "targets"
+    assert not folder.exists() or not any(folder.iterdir())
+    with sqlite3.connect(cfg.output_dir / "history.sqlite") as conn:
+        assert conn.execute("SELECT COUNT(*) FROM runs").fetchone()[0] == 0
+
+
+# --- configuration and command line -------------------------------------------------------------
+
+@pytest.mark.parametrize("change, match", [
+    ({"site": {**SITE, "latitude_deg": -91.0}}, r"targets.site.latitude_deg = -91.0 is out of range"),
+    ({"site": {**SITE, "longitude_deg": 200.0}}, r"targets.site.longitude_deg = 200.0 is out of range"),
+    ({"site": {**SITE, "height_m": 12000.0}}, r"targets.site.height_m = 12000.0 is out of range"),
+    ({"end_date": "2027-03-01"}, r"targets.end_date = '2027-03-01' is before targets.start_date .* reversed"),
+    ({"end_date": "2027-04-01"}, r"the date range is empty"),
+    ({"start_date": "April"}, r"targets.start_date = 'April' is not a date written YYYY-MM-DD"),
+    ({"airmass_max": 2.0, "altitude_min_deg": 30.0}, r"give altitude_min_deg or airmass_max, not both"),
+    ({"sun_altitude_max_deg": 5.0}, r"targets.sun_altitude_max_deg = 5.0 is out of range"),
+    ({"formats": ["ecsv", "html"]}, r"targets.formats\[1\] = 'html' is not allowed"),
+    ({"priority": {"band": "22"}}, r"targets.priority.band = '22' is not a band of this configuration"),
+    ({"time_step_min": 7}, r"targets.time_step_min = 7 does not divide a day"),
+])
+def test_bad_targets_config_is_one_line(tmp_path, change, match):
+    with pytest.raises(ConfigError, match=match) as info:
+        build(_data(tmp_path, **change), tmp_path)
+    assert "\n" not in str(info.value)
+
+
+def test_commands_targets_and_outcome(tmp_path, capsys):
+    data = _data(tmp_path)
+    path = _write_config(tmp_path, data)
+    cfg = build(data, tmp_path)
+    _candidates(cfg, [1, 2], [195.0, 196.0], [-30.0, 80.0], [2.0, 1.0])
+    assert main(["targets", "--config", str(path)]) == 0
+    out = capsys.readouterr().out
+    assert "targets: 1 listed of 2 candidates" in out and "targets.ecsv" in out
+    assert main(["targets", "--config", str(path), "--new-only"]) == 0
+    assert "targets_new.ecsv" in capsys.readouterr().out
+    (tmp_path / "o.csv").write_text("astro_id,spec_class\n3,star\n")
+    assert main(["outcome", "--config", str(path), "--file", str(tmp_path / "o.csv")]) == 2
+    err = capsys.readouterr().err.strip()
+    assert err.startswith("selector: ") and "not in the candidate history" in err and "\n" not in err
+    (tmp_path / "o.csv").write_text("astro_id,spec_class\n1,star\n")
+    assert main(["outcome", "--config", str(path), "--file", str(tmp_path / "o.csv")]) == 0
+    assert "recorded 1 outcomes" in capsys.readouterr().out
+
+
+def test_command_without_targets_section_names_the_file(tmp_path, capsys):
+    data = base_config()
+    path = _write_config(tmp_path, data)
+    assert main(["targets", "--config", str(path)]) == 2
+    err = capsys.readouterr().err
+    assert "selector.toml: no [targets] section" in err
+
+
+def test_missing_candidates_is_one_line(tmp_path):
+    cfg = build(_data(tmp_path), tmp_path)
+    with pytest.raises(Exception, match=r"candidates.parquet: not found; run `selector run"):
+        fu.make_targets(cfg, log=lambda *a: None)
+
+
+def test_demo_config_has_a_semester_for_the_demo_site():
+    from pathlib import Path
+
+    from selector.config import load_config
+
+    cfg = load_config(Path(__file__).resolve().parents[1] / "configs" / "demo.toml")
+    t = cfg.targets
+    assert t.site.name == "the demo site" and (t.start_date, t.end_date) == ("2027-04-01", "2027-10-01")
+    assert math.isclose(t.altitude_limit_deg, 30.0)
