@@ -26,7 +26,6 @@ import numpy as np
 import pandas as pd
 import pyarrow as pa
 import pyarrow.compute as pc
-import pyarrow.parquet as pq
 
 from . import __version__, schema, tiles
 from .config import CatalogueConfig, Config, config_hash
@@ -46,7 +45,9 @@ REASONS = (
     "duplicate_id",
 )
 
-_AB_ZERO_POINT_JY = 3631.0  # Oke & Gunn 1983, ApJ 266, 713: the AB system's flux-density zero point
+# Oke & Gunn 1983, ApJ 266, 713 define m_AB = -2.5 log10(f_nu / erg s^-1 cm^-2 Hz^-1) - 48.60, i.e. a zero
+# point of 3630.78 Jy (1 Jy = 1e-23 cgs); the rounded 3631 Jy would shift every magnitude by 6.6e-5 mag.
+_AB_ZERO_POINT_JY = 10.0 ** (-0.4 * 48.60) * 1e23
 _N_BUCKETS = 64
 _SPOOL_ROWS = 2_000_000
 
@@ -101,14 +102,18 @@ def _source_columns(fields: list[_Field]) -> list[str]:
 
 def _scale(field: _Field, file_units: dict[str, str], path: Path) -> float:
     """Factor from the column's unit (config, else the file's, else canonical) to the canonical unit."""
-    if field.unit is None or field.kind in ("magnitude", "magnitude_error"):
+    if field.kind in ("magnitude", "magnitude_error", "id", "text"):
         return 1.0
+    # dimensionless roles convert too: the config accepts e.g. unit = "%" for a correlation
+    target = u.Unit(field.unit) if field.unit else u.dimensionless_unscaled
     text = field.given_unit or file_units.get(field.source) or field.unit
+    if text is None:
+        return 1.0
     try:
-        return float(u.Unit(text).to(u.Unit(field.unit)))
+        return float(u.Unit(text).to(target))
     except (ValueError, u.UnitsError) as exc:
         raise InputError(f"{path}: column '{field.source}' has unit {text!r}, which cannot be converted to "
-                         f"{field.unit} ({exc}); set its unit in the config") from None
+                         f"{field.unit or 'a plain number'} ({exc}); set its unit in the config") from None
 
 
 def _as_float(arr: pa.ChunkedArray | pa.Array) -> tuple[np.ndarray, np.ndarray]:
@@ -311,31 +316,56 @@ def ingest_catalogue(cfg: Config, kind: str, log=print) -> IngestSummary:
     rejected: Counter = Counter()
     reject_parts: list[pa.Table] = []
     file_starts: list[int] = []
-    buffers: dict[int, list[pa.Table]] = defaultdict(list)
+    buffers: list[tuple[pa.Table, np.ndarray]] = []  # accepted rows of each chunk, with their tiles
     id_buffers: list[pa.Table] = []
     buffered = 0
-    flushes = 0
     id_kind = _IdKind()
+    # One Arrow IPC file per flush, one record batch per tile (and per id bucket): a few large files
+    # instead of one small Parquet file per tile per flush, which at order 5 over the whole sky meant
+    # 12288 files per flush and cost more than everything else together.
+    tile_index: dict[int, list[tuple[int, int]]] = defaultdict(list)
+    id_index: dict[int, list[tuple[int, int]]] = defaultdict(list)
+    spool_files: list[tuple[Path, Path]] = []
+
+    def by_tile():
+        table = pa.concat_tables([t for t, _ in buffers])
+        tile = np.concatenate([k for _, k in buffers])
+        # stable, so rows of a tile stay in input order; numpy sorts 16-bit keys by radix, ~6× faster
+        key = tile.astype(np.uint16) if tiles.n_tiles(order) <= np.iinfo(np.uint16).max + 1 else tile
+        order_t = np.argsort(key, kind="stable")
+        table, tile = _take(table, order_t), tile[order_t]
+        starts = np.flatnonzero(np.r_[True, tile[1:] != tile[:-1]]) if len(tile) else np.zeros(0, np.int64)
+        ends = np.r_[starts[1:], len(tile)].astype(np.int64)
+        return [(int(tile[a]), table.slice(a, b - a)) for a, b in zip(starts, ends)]
+
+    def by_bucket():
+        ids = pa.concat_tables(id_buffers).combine_chunks()
+        bucket = ids.column("_bucket").to_numpy()
+        orderb = np.argsort(bucket, kind="stable")
+        ids, bucket = ids.take(pa.array(orderb)).drop(["_bucket"]), bucket[orderb]
+        edges = np.searchsorted(bucket, np.arange(_N_BUCKETS + 1))
+        return [(b, ids.slice(edges[b], edges[b + 1] - edges[b])) for b in range(_N_BUCKETS) if edges[b + 1] > edges[b]]
+
+    def write_spool(path, parts, index, number):
+        if not parts:
+            return
+        with pa.OSFile(str(path), "wb") as sink, pa.ipc.new_file(sink, parts[0][1].schema) as writer:
+            for i, (key, part) in enumerate(parts):
+                writer.write_batch(part.combine_chunks().to_batches()[0])
+                index[key].append((number, i))
 
     def flush():
-        nonlocal buffered, flushes
-        for tile, parts in buffers.items():
-            pq.write_table(pa.concat_tables(parts), spool / f"t{tile}-{flushes:05d}.parquet", compression="lz4")
+        nonlocal buffered
+        number = len(spool_files)
+        paths_ = (spool / f"tiles-{number:05d}.arrow", spool / f"ids-{number:05d}.arrow")
+        if buffers:
+            write_spool(paths_[0], by_tile(), tile_index, number)
         if id_buffers:
-            ids = pa.concat_tables(id_buffers)
-            bucket = ids.column("_bucket").to_numpy()
-            orderb = np.argsort(bucket, kind="stable")
-            ids = ids.take(orderb)
-            bucket = bucket[orderb]
-            edges = np.searchsorted(bucket, np.arange(_N_BUCKETS + 1))
-            for b in range(_N_BUCKETS):
-                if edges[b + 1] > edges[b]:
-                    pq.write_table(ids.slice(edges[b], edges[b + 1] - edges[b]).drop(["_bucket"]),
-                                   spool / f"id{b:03d}-{flushes:05d}.parquet", compression="lz4")
+            write_spool(paths_[1], by_bucket(), id_index, number)
+        spool_files.append(paths_)
         buffers.clear()
         id_buffers.clear()
         buffered = 0
-        flushes += 1
 
     last_path = None
     for chunk in iter_chunks(paths, cat.format, sources, cat.chunk_rows):
@@ -355,7 +385,8 @@ def ingest_catalogue(cfg: Config, kind: str, log=print) -> IngestSummary:
                 "values": pa.array(_raw_rows(chunk, bad, sources), pa.string()),
             }, schema=REJECT_SCHEMA))
         good = np.flatnonzero(reason < 0)
-        table = table.take(pa.array(good, pa.int64()))
+        if bad.size:
+            table = _take(table, good)
         global_row = rows_in + good
         ra = table.column("ra_deg").to_numpy()
         dec = table.column("dec_deg").to_numpy()
@@ -366,27 +397,24 @@ def ingest_catalogue(cfg: Config, kind: str, log=print) -> IngestSummary:
         bucket = (pd.util.hash_array(ids.to_numpy(zero_copy_only=False)) % _N_BUCKETS).astype(np.int16)
         id_buffers.append(pa.table({"_id": ids, "_row": pa.array(global_row, pa.int64()), "_bucket": bucket}))
         if len(tile):
-            order_t = np.argsort(tile, kind="stable")
-            table = table.take(pa.array(order_t))
-            tile = tile[order_t]
-            starts = np.flatnonzero(np.r_[True, tile[1:] != tile[:-1]])
-            ends = np.r_[starts[1:], len(tile)]
-            for s, e in zip(starts, ends):
-                buffers[int(tile[s])].append(table.slice(s, e - s))
+            buffers.append((table, tile))
         rows_in += n
         buffered += n
         if buffered >= _SPOOL_ROWS:
             flush()
-    if flushes:
+    readers = []
+    if spool_files:
         flush()
-        tile_parts, id_parts = defaultdict(list), defaultdict(list)
-        for p in sorted(spool.glob("t*.parquet")):
-            tile_parts[int(p.name[1:].split("-")[0])].append(p)
-        for p in sorted(spool.glob("id*.parquet")):
-            id_parts[p.name[2:5]].append(p)
+        _allow_open_files(2 * len(spool_files) + 64)
+        # read back one record batch at a time (not memory-mapped, so resident memory stays bounded)
+        for tile_path, id_path in spool_files:
+            readers.append(tuple(pa.ipc.open_file(pa.OSFile(str(q))) if q.exists() else None
+                                 for q in (tile_path, id_path)))
+        tile_parts = {t: [(readers[f][0], i) for f, i in refs] for t, refs in tile_index.items()}
+        id_parts = {b: [(readers[f][1], i) for f, i in refs] for b, refs in id_index.items()}
     else:
         # everything fitted in memory: no need for a round trip through the spool
-        tile_parts = {t: [pa.concat_tables(parts)] for t, parts in buffers.items()}
+        tile_parts = {t: [part] for t, part in by_tile()} if buffers else {}
         id_parts = {0: id_buffers}
 
     duplicates = _find_duplicates(id_parts)
@@ -396,6 +424,7 @@ def ingest_catalogue(cfg: Config, kind: str, log=print) -> IngestSummary:
     rows_per_tile = _write_tiles(cfg, kind, tile_parts, out_dir, order, duplicates, id_col, fields, tiled, reject_parts,
                                  file_list, np.asarray(file_starts))
     accepted = sum(rows_per_tile.values())
+    del tile_parts, id_parts, readers  # closes the spool files before they are removed
     shutil.rmtree(spool)
 
     rejects = pa.concat_tables(reject_parts) if reject_parts else REJECT_SCHEMA.empty_table()
@@ -414,7 +443,38 @@ def ingest_catalogue(cfg: Config, kind: str, log=print) -> IngestSummary:
 
 
 def _load(part) -> pa.Table:
-    return part if isinstance(part, pa.Table) else pq.read_table(part)
+    """A buffered table, or (spool reader, record batch number)."""
+    if isinstance(part, pa.Table):
+        return part
+    reader, i = part
+    return pa.Table.from_batches([reader.get_batch(i)])
+
+
+def _allow_open_files(needed: int) -> None:
+    """Raise the soft limit on open files if the spool needs more (every spool file stays open)."""
+    try:
+        import resource
+    except ImportError:  # not a POSIX system: nothing to adjust
+        return
+    soft, hard = resource.getrlimit(resource.RLIMIT_NOFILE)
+    if soft != resource.RLIM_INFINITY and soft < needed:
+        target = needed if hard == resource.RLIM_INFINITY else min(needed, hard)
+        resource.setrlimit(resource.RLIMIT_NOFILE, (target, hard))
+        if target < needed:
+            raise SelectorError(f"ingest needs {needed} open spool files but the system allows {hard}; "
+                                "raise the hard open-file limit (ulimit -Hn) or split the input")
+
+
+def _take(table: pa.Table, index: np.ndarray) -> pa.Table:
+    """``table.take(index)``, with fixed-width columns without nulls gathered by numpy (about 3× faster)."""
+    index = np.asarray(index, np.int64)
+    out = []
+    for col in table.columns:
+        if col.null_count == 0 and (pa.types.is_floating(col.type) or pa.types.is_integer(col.type)):
+            out.append(pa.array(col.to_numpy()[index], col.type))
+        else:
+            out.append(col.take(pa.array(index)))
+    return pa.Table.from_arrays(out, schema=table.schema)
 
 
 def _find_duplicates(buckets: dict) -> np.ndarray:
@@ -465,7 +525,7 @@ def _write_tiles(cfg, kind, parts, out_dir, order, duplicates, id_col, fields, t
                                    pa.string()),
             }, schema=REJECT_SCHEMA))
             t = t.filter(pa.array(~dup))
-        t = t.sort_by([("_fine", "ascending"), (id_col, "ascending")]).drop(["_fine", "_row"])
+        t = _take(t, _fine_then_id_order(t, id_col)).drop(["_fine", "_row"])
         t = _with_units(t, units)
         if tiled:
             path = tiles.tile_file(out_dir.parent, kind, order, tile)
@@ -484,6 +544,19 @@ def _write_tiles(cfg, kind, parts, out_dir, order, duplicates, id_col, fields, t
         empty = pa.table({f.canonical: pa.array([], pa.float64()) for f in fields})
         write_parquet(empty, out_dir / "objects.parquet", meta)
     return rows_per_tile
+
+
+def _fine_then_id_order(table: pa.Table, id_col: str) -> np.ndarray:
+    """Row order by fine HEALPix index, then id (both ascending, stable)."""
+    fine = table.column("_fine").to_numpy()
+    order = np.argsort(fine)
+    sorted_fine = fine[order]
+    if not np.any(sorted_fine[1:] == sorted_fine[:-1]):
+        return order  # no two rows share a fine pixel (0.4 mas): the order is unique, ids not needed
+    ids = table.column(id_col)
+    if pa.types.is_integer(ids.type) and ids.null_count == 0:
+        return np.lexsort((ids.to_numpy(), fine))
+    return pc.sort_indices(table, sort_keys=[("_fine", "ascending"), (id_col, "ascending")]).to_numpy()
 
 
 def _with_units(table: pa.Table, units: dict[str, str]) -> pa.Table:

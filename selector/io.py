@@ -106,7 +106,9 @@ def _missing(path: Path, have: Sequence[str], want: Sequence[str]):
 
 
 def _parquet(path, kind, columns, chunk_rows):
-    pf = pq.ParquetFile(path)
+    # pre_buffer (on by default) keeps the bytes of every row group read so far until the file is
+    # closed, so memory would grow with the file's size; streaming needs it off.
+    pf = pq.ParquetFile(path, pre_buffer=False)
     _missing(path, pf.schema_arrow.names, columns)
     units = _arrow_units(pf.schema_arrow)
     first = 0
@@ -127,8 +129,16 @@ def _arrow_units(schema: pa.Schema) -> dict[str, str]:
 
 def _csv(path, kind, columns, chunk_rows):
     # Every column is read as text so that an unparsable value rejects its own row, not the file.
-    with open(path, "rb") as fh:
-        header = fh.readline().decode("utf-8", "replace").strip().split(",")
+    # Through pyarrow, so a compressed file (.csv.gz) gives its real header, as the reader below sees
+    # it; "utf-8-sig" drops a byte-order mark, which the reader also skips.
+    head = b""
+    with pa.input_stream(str(path), compression="detect") as fh:
+        while b"\n" not in head:
+            block = fh.read(1 << 16)
+            if not block:
+                break
+            head += block
+    header = head.split(b"\n", 1)[0].decode("utf-8-sig", "replace").strip().split(",")
     header = [h.strip().strip('"') for h in header]
     _missing(path, header, columns)
     convert = pacsv.ConvertOptions(include_columns=columns, column_types={c: pa.string() for c in columns},
@@ -242,8 +252,13 @@ def write_parquet(table: pa.Table, path: Path, metadata: dict | None = None) -> 
         meta.update({k.encode(): (v if isinstance(v, str) else json.dumps(v, sort_keys=True)).encode()
                      for k, v in metadata.items()})
         table = table.replace_schema_metadata(meta)
+    # Dictionary encoding pays for repeated text; on float columns it is tried, abandoned, and makes
+    # writing about three times slower and the file larger, so it is kept to text columns.
+    textual = [f.name for f in table.schema if pa.types.is_string(f.type) or pa.types.is_large_string(f.type)
+               or pa.types.is_binary(f.type) or pa.types.is_dictionary(f.type)]
     with atomic_path(path) as tmp:
-        pq.write_table(table, tmp, compression="zstd", row_group_size=1 << 20, write_statistics=True)
+        pq.write_table(table, tmp, compression="zstd", row_group_size=1 << 20, write_statistics=True,
+                       use_dictionary=textual)
     return Path(path)
 
 
