@@ -155,7 +155,8 @@ MATEOS2012_WEDGE: dict[str, tuple[float, float]] = {
     "left": (-3.172, 0.436),
 }
 """Edges ``(slope, intercept)`` of the Mateos et al. 2012, MNRAS 426, 3271 wedge in
-``y = log10(f12/f4.6)`` versus ``x = log10(f4.6/f3.4)`` (from memory).  The selection
+``y = log10(f4.6/f3.4)`` versus ``x = log10(f12/f4.6)`` (from memory; see :func:`mateos2012_wedge`
+for why the axes are taken this way round).  The selection
 is below ``upper`` and above ``lower`` and ``left``.  The upper and left edges meet at
 ``x = 0.139/3.487 ≈ 0.0399``, the lower and left edges at ``x = 0.546/3.487 ≈ 0.1566``;
 the wedge is open towards large ``x``.
@@ -521,11 +522,17 @@ def assef2018_c75(mags: Mapping[str, np.ndarray]) -> CriterionResult:
 def mateos2012_wedge(mags: Mapping[str, np.ndarray]) -> CriterionResult:
     """Mateos et al. 2012, MNRAS 426, 3271 three-band wedge.
 
-    With ``x = log10(f4.6/f3.4)`` and ``y = log10(f12/f4.6)`` (flux densities per unit
+    With ``x = log10(f12/f4.6)`` and ``y = log10(f4.6/f3.4)`` (flux densities per unit
     frequency, see :func:`flux_ratio_log10`), selected:
     ``y <= 0.315 x + 0.297`` and ``y >= 0.315 x - 0.110`` and
     ``y >= -3.172 x + 0.436`` (coefficients from memory, as given in the project
     design notes).
+
+    The design notes recall the axes the other way round; we take them as above because
+    only this way does the wedge follow the locus of power-law spectra, which is what it was
+    drawn around: for f_ν ∝ ν^−α, ``y / x = log10(4.6/3.4) / log10(12/4.6) = 0.315``, the
+    slope of the wedge's two long edges (the left edge, slope −1/0.315, is perpendicular to
+    them). With the axes swapped, power laws would run at slope 3.17, across the wedge.
 
     Parameters
     ----------
@@ -542,8 +549,8 @@ def mateos2012_wedge(mags: Mapping[str, np.ndarray]) -> CriterionResult:
         for an equivalent in mag.
     """
     m1, m2, m3 = _bands(mags, ("3p4", "4p6", "12"))
-    x = flux_ratio_log10(m1, m2, "3p4", "4p6")
-    y = flux_ratio_log10(m2, m3, "4p6", "12")
+    x = flux_ratio_log10(m2, m3, "4p6", "12")
+    y = flux_ratio_log10(m1, m2, "3p4", "4p6")
     su, iu = MATEOS2012_WEDGE["upper"]
     sl, il = MATEOS2012_WEDGE["lower"]
     sf, if_ = MATEOS2012_WEDGE["left"]

@@ -149,7 +149,7 @@ def test_assef2018_c75_edge(m2):
 
 
 # --------------------------------------------------------------------------------
-# Mateos et al. 2012, MNRAS 426, 3271 wedge, x = log10(f4.6/f3.4), y = log10(f12/f4.6):
+# Mateos et al. 2012, MNRAS 426, 3271 wedge, x = log10(f12/f4.6), y = log10(f4.6/f3.4):
 #   y <= 0.315 x + 0.297,  y >= 0.315 x - 0.110,  y >= -3.172 x + 0.436  (from memory)
 # Sources are built from flux densities in Jy through astropy's AB magnitude, then
 # brought to Vega with the cited offsets, so the test does not reuse the module's
@@ -159,7 +159,7 @@ def test_assef2018_c75_edge(m2):
 
 def _mags_from_xy(x, y, f46_jy=1e-3):
     f46 = np.asarray(f46_jy, dtype=float)
-    fluxes = {"3p4": f46 / 10.0 ** np.asarray(x), "4p6": f46, "12": f46 * 10.0 ** np.asarray(y)}
+    fluxes = {"3p4": f46 / 10.0 ** np.asarray(y), "4p6": f46, "12": f46 * 10.0 ** np.asarray(x)}
     out = {}
     for band, f in fluxes.items():
         ab = (np.atleast_1d(f) * u.Jy).to_value(u.ABmag)
@@ -285,3 +285,19 @@ def test_flux_ratio_insensitive_to_zero_point_convention():
     for a, b in [("3p4", "4p6"), ("4p6", "12"), ("12", "22"), ("3p4", "22")]:
         direct = math.log10(zero_point_jy[b] * 10 ** (-0.4 * m[b]) / (zero_point_jy[a] * 10 ** (-0.4 * m[a])))
         assert float(ph.flux_ratio_log10(m[a], m[b], a, b)) == pytest.approx(direct, abs=1e-3)
+
+
+def test_mateos_wedge_follows_the_power_law_locus():
+    # a power law f_nu ∝ nu^-alpha lies at y/x = log10(4.6/3.4)/log10(12/4.6) = 0.315 in these axes
+    # (common practice: the wedge was drawn around the power-law locus), inside for AGN-like alpha
+    import astropy.units as u
+
+    nu = {band: (float(w) * u.micron).to_value(u.Hz, equivalencies=u.spectral())
+          for band, w in (("3p4", 3.4), ("4p6", 4.6), ("12", 12.0))}
+    alphas = np.array([1.0, 1.5, 2.0, 3.0])
+    f = {b: (nu[b] / nu["4p6"]) ** -alphas * 1e-3 for b in nu}
+    mags = {b: (f[b] * u.Jy).to_value(u.ABmag) - ph.VEGA_TO_AB_MAG[b] for b in f}
+    assert np.all(ph.mateos2012_wedge(mags).passed)
+    # a flat (alpha = 0) spectrum, like a star's Rayleigh-Jeans tail turned over, is outside
+    flat = {b: np.atleast_1d((1e-3 * u.Jy).to_value(u.ABmag)) - ph.VEGA_TO_AB_MAG[b] for b in nu}
+    assert not ph.mateos2012_wedge(flat).passed[0]

@@ -1,0 +1,246 @@
+"""One self-contained HTML page per run: provenance, cut-flow, pictures and the top targets.
+
+``selector report --run DIR`` needs only the run folder: the configuration is read back from
+``DIR/provenance.json``, the feature cache from ``DIR/tiles`` and the candidates from
+``DIR/candidates.parquet``. The page embeds its pictures as base64 PNG data, carries its own style
+sheet, has no scripts and refers to nothing outside itself, so it can be mailed, archived or opened
+on a machine without a network. It holds no wall-clock time: the same run gives the same bytes.
+"""
+
+from __future__ import annotations
+
+import argparse
+import base64
+import html
+import json
+from pathlib import Path
+
+import numpy as np
+import pyarrow as pa
+
+from .config import SELECTION_SECTIONS, plain
+from .errors import InputError
+from .io import read_parquet, write_text
+
+__all__ = ["TABLE_COLUMNS", "add_commands", "build_report", "write_report"]
+
+#: Columns of the top-targets table, where present: (column, heading, format).
+TABLE_COLUMNS = (
+    ("rank", "rank", "{:d}"),
+    ("astro_id", "astrometric id", "{}"),
+    ("ra_deg", "RA (deg)", "{:.6f}"),
+    ("dec_deg", "Dec (deg)", "{:+.6f}"),
+    ("ir_id", "infrared id", "{}"),
+    ("opt_broad_abmag", "broad (AB)", "{:.2f}"),
+    ("ir_3p4_vegamag", "[3.4] (Vega)", "{:.2f}"),
+    ("ir_4p6_vegamag", "[4.6] (Vega)", "{:.2f}"),
+    ("ir_12_vegamag", "[12] (Vega)", "{:.2f}"),
+    ("parallax_snr", "ϖ/σ", "{:+.2f}"),
+    ("pm_pvalue", "p(μ = 0)", "{:.3f}"),
+    ("colour_excess_mag", "colour excess (mag)", "{:+.3f}"),
+    ("criteria_score", "criteria score", "{:.3f}"),
+    ("p_quasar", "P(quasar)", "{:.3f}"),
+)
+
+_STYLE = """
+body { font-family: sans-serif; margin: 2em auto; max-width: 1100px; color: #222; line-height: 1.35; }
+h1 { font-size: 1.6em; } h2 { font-size: 1.25em; border-bottom: 1px solid #ccc; padding-bottom: 0.2em; margin-top: 1.8em; }
+table { border-collapse: collapse; font-size: 0.85em; margin: 0.5em 0; }
+th, td { border: 1px solid #ccc; padding: 0.25em 0.6em; text-align: right; }
+th { background: #f0f0f0; } td.text, th.text { text-align: left; } td.text { white-space: nowrap; }
+figure { margin: 1em 0; } figure img { max-width: 100%; border: 1px solid #ddd; }
+figcaption { font-size: 0.9em; color: #555; }
+pre { background: #f7f7f7; padding: 0.8em; overflow-x: auto; font-size: 0.8em; }
+.note { color: #a04000; } .caution { background: #fdf2e9; padding: 0.6em; border-left: 4px solid #e67e22; }
+"""
+
+
+def _e(text) -> str:
+    return html.escape(str(text), quote=True)
+
+
+def _kv_table(rows) -> str:
+    body = "".join(f"<tr><th class='text'>{_e(k)}</th><td class='text'>{_e(v)}</td></tr>" for k, v in rows)
+    return f"<table>{body}</table>"
+
+
+def _cutflow_table(flow) -> str:
+    first = flow[0][1] if flow and flow[0][1] else 1
+    out = ["<table id='cutflow'><tr><th class='text'>stage</th><th>left</th><th>removed</th><th>kept</th></tr>"]
+    prev = flow[0][1] if flow else 0
+    for name, count in flow:
+        out.append(f"<tr><td class='text'>{_e(name)}</td><td>{count:,d}</td><td>{prev - count:,d}</td>"
+                   f"<td>{count / first:.2%}</td></tr>")
+        prev = count
+    out.append("</table>")
+    return "".join(out)
+
+
+def _cell(value, fmt: str) -> str:
+    if value is None or (isinstance(value, float) and not np.isfinite(value)):
+        return "–"
+    try:
+        return fmt.format(value)
+    except (ValueError, TypeError):
+        return str(value)
+
+
+def _targets_table(cands: pa.Table, top: int) -> str:
+    from .pipeline import sort_by_score
+
+    if cands.num_rows == 0:
+        return "<p id='no-targets'>No candidates in this run.</p>"
+    ranked = sort_by_score(cands).slice(0, top)
+    ranked = ranked.add_column(0, "rank", pa.array(np.arange(1, ranked.num_rows + 1, dtype=np.int64)))
+    cols = [(c, h, f) for c, h, f in TABLE_COLUMNS if c in ranked.column_names]
+    head = "".join(f"<th class='{'text' if f == '{}' else ''}'>{_e(h)}</th>" for _, h, f in cols)
+    data = {c: ranked.column(c).to_pylist() for c, _, _ in cols}
+    rows = []
+    for i in range(ranked.num_rows):
+        cells = "".join(f"<td class='{'text' if f == '{}' else ''}'>{_e(_cell(data[c][i], f))}</td>" for c, _, f in cols)
+        rows.append(f"<tr class='target'>{cells}</tr>")
+    return f"<table id='targets'><tr>{head}</tr>{''.join(rows)}</table>"
+
+
+def _figure_html(name: str, title: str, png: bytes) -> str:
+    data = base64.b64encode(png).decode("ascii")
+    return (f"<figure id='plot-{_e(name)}'><img alt='{_e(title)}' src='data:image/png;base64,{data}'>"
+            f"<figcaption>{_e(title)}</figcaption></figure>")
+
+
+def _selection_rows(cfg) -> list[tuple[str, str]]:
+    """The settings that decide the selection, one dotted key per row (training settings left out)."""
+    data = plain(cfg)
+    rows = []
+
+    def walk(prefix, value):
+        if isinstance(value, dict):
+            for k in sorted(value):
+                walk(f"{prefix}.{k}", value[k])
+        else:
+            rows.append((prefix, json.dumps(value)))
+
+    for section in SELECTION_SECTIONS:
+        if section == "classifier":
+            for key in ("model", "threshold"):
+                rows.append((f"classifier.{key}", json.dumps(data["classifier"].get(key))))
+        else:
+            walk(section, data[section])
+    return rows
+
+
+def build_report(run_dir: Path | str, top: int = 50) -> str:
+    """The HTML text of the report of the run in ``run_dir``.
+
+    Parameters
+    ----------
+    run_dir : path
+        The run folder (``cfg.run_dir``: it holds ``provenance.json``, ``candidates.parquet`` and
+        ``tiles/``).
+    top : int
+        Rows of the top-targets table.
+    """
+    from . import plots, tune
+
+    run_dir = Path(run_dir)
+    cfg, prov = tune.run_config(run_dir)
+    cands_path = run_dir / "candidates.parquet"
+    if not cands_path.exists():
+        raise InputError(f"{cands_path}: not found; the run in {run_dir} has not finished its merge")
+    cands = read_parquet(cands_path)
+    cache = tune.load_cache(cfg, tune.needed_columns(cfg, plots=True, classifier=False))
+    ev = tune.evaluate(cache, cfg, use_classifier=False)
+    is_cand, pos = tune.find_rows(cache, cands.column("astro_id"))
+    p_quasar = None
+    if "p_quasar" in cands.column_names:
+        p_all = cands.column("p_quasar").to_numpy(zero_copy_only=False).astype(float)
+        p_quasar = np.full(cache.n_rows, np.nan)
+        p_quasar[is_cand] = p_all[pos[is_cand]]
+    flow = [tuple(x) for x in prov.get("cutflow", ev.cutflow)]
+    data = plots.PlotData.from_evaluation(cache, ev, candidate=is_cand, p_quasar=p_quasar, cutflow=flow)
+    pngs = plots.render_plots(data)
+
+    notes = []
+    if int(is_cand.sum()) != cands.num_rows:
+        notes.append(f"{cands.num_rows - int(is_cand.sum()):,d} recorded candidates are not in the feature cache")
+    if not cfg.classifier.model and not np.array_equal(is_cand, ev.passed):
+        notes.append("the recorded candidates differ from a re-evaluation of the feature cache with the recorded "
+                     "configuration: the run folder mixes results of different runs")
+
+    fingerprints = []
+    for kind, files in sorted(prov.get("input_fingerprints", {}).items()):
+        for name, fp in sorted(files.items()) if isinstance(files, dict) else [("", files)]:
+            fingerprints.append((f"{kind}: {name}", fp))
+    prov_rows = [
+        ("config hash", prov.get("config_hash", "?")),
+        ("match config hash", prov.get("match_config_hash", "?")),
+        ("selector version", prov.get("selector_version", "?")),
+        ("tiles", f"{prov.get('tiles', len(cache.tiles)):,d} (HEALPix order {cfg.tiling.order}, nested)"),
+        ("astrometric rows", f"{prov.get('rows', 0):,d}"),
+        ("tile rejects", f"{prov.get('tile_rejects', 0):,d}"),
+        ("candidates", f"{cands.num_rows:,d}"),
+        ("match radius", f"{cfg.match.radius_arcsec:g} arcsec"),
+        ("epochs", f"astrometric {cfg.astrometric.epoch_jyear}, infrared {cfg.infrared.epoch_jyear} (Julian years)"),
+    ]
+    selection = _selection_rows(cfg)
+    full = prov.get("config", {})
+    captions = {name: title for name, title, _ in plots.PLOTS}
+
+    parts = [
+        "<!DOCTYPE html>",
+        "<html lang='en'><head><meta charset='utf-8'>",
+        "<meta name='viewport' content='width=device-width, initial-scale=1'>",
+        f"<title>selector report: {_e(run_dir.name)}</title><style>{_STYLE}</style></head><body>",
+        "<h1>Quasar candidate selection: run report</h1>",
+        "<p class='caution'>A candidate list is a statistical selection: zero motion and red infrared colours make a "
+        "source likely to be a quasar, not certainly one. Every target needs spectroscopic confirmation.</p>",
+        *(f"<p class='note'>Note: {_e(n)}.</p>" for n in notes),
+        "<h2 id='provenance'>Provenance</h2>",
+        _kv_table(prov_rows),
+        "<h3>Input fingerprints</h3>",
+        _kv_table(fingerprints) if fingerprints else "<p>none recorded</p>",
+        "<h3>Selection settings</h3>",
+        _kv_table(selection).replace("<table>", "<table id='selection'>", 1),
+        "<details><summary>Full configuration</summary>",
+        f"<pre id='config'>{_e(json.dumps(full, indent=2, sort_keys=True))}</pre></details>",
+        "<h2 id='cutflow-section'>Cut-flow</h2>",
+        _cutflow_table(flow),
+        _figure_html("cutflow", captions["cutflow"], pngs["cutflow"]),
+        "<h2 id='plots'>Diagnostics</h2>",
+        *(_figure_html(name, captions[name], png) for name, png in pngs.items() if name != "cutflow"),
+        f"<h2 id='top-targets'>Top {min(top, cands.num_rows):,d} targets</h2>",
+        _targets_table(cands, top),
+        "</body></html>",
+    ]
+    return "\n".join(parts) + "\n"
+
+
+def write_report(run_dir: Path | str, out: Path | str | None = None, top: int = 50) -> Path:
+    """Write the report (atomically) to ``out``, by default ``<run_dir>/report.html``."""
+    run_dir = Path(run_dir)
+    path = Path(out) if out is not None else run_dir / "report.html"
+    return write_text(build_report(run_dir, top), path)
+
+
+def _cmd_report(args) -> int:
+    if args.top < 1:
+        from .errors import SelectorError
+
+        raise SelectorError(f"--top {args.top}: give at least 1 row")
+    path = write_report(args.run, args.out, args.top)
+    print(f"report: {path}")
+    return 0
+
+
+def add_commands(sub, config_arg) -> None:
+    """Register ``selector report`` (and ``selector tune``, which lives in :mod:`selector.tune`)."""
+    from . import tune
+
+    tune.add_commands(sub, config_arg)
+    p = sub.add_parser("report", help="one self-contained HTML page of a run: provenance, cut-flow, plots, top targets",
+                       formatter_class=argparse.ArgumentDefaultsHelpFormatter)
+    p.add_argument("--run", required=True, metavar="DIR",
+                   help="the run folder (project.output_dir/run), which holds provenance.json")
+    p.add_argument("--out", default=None, metavar="FILE", help="where to write the page (default: DIR/report.html)")
+    p.add_argument("--top", type=int, default=50, help="rows of the top-targets table")
+    p.set_defaults(func=_cmd_report)

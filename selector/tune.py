@@ -1,0 +1,971 @@
+"""Re-apply changed selection settings to the feature cache of a finished run, in seconds.
+
+The feature cache (``run/tiles/tile<N>/features.parquet``) holds every matched owned source and
+depends only on the matching sections of the configuration (:data:`~selector.config.MATCH_SECTIONS`).
+Changing a zero-motion threshold, a colour criterion, the ranking or the classifier threshold
+therefore needs no new cross-match: :func:`load_cache` reads the columns the selection needs from
+every tile at once, and :func:`evaluate` runs :func:`selector.pipeline.select` over all rows,
+vectorised, in blocks of rows that are not aligned with tiles. The per-tile cut-flow comes from
+``np.bincount`` over each row's tile, one per stage. Because ``select`` is a row-by-row function,
+the result is exactly what ``selector run`` gives with the same configuration
+(``tests/test_tune.py`` checks this against a real re-run).
+
+The command::
+
+    selector tune --config FILE [--set KEY=VALUE ...] [--truth FILE] [--plots DIR] [--write]
+
+compares the selection recorded in the run (the configuration kept in ``run/provenance.json``)
+with the one in ``FILE`` plus the ``--set`` changes. It writes nothing unless asked: ``--plots DIR``
+writes the diagnostic pictures of the new selection, ``--write`` makes the new selection the run's
+result (through ``selector run`` itself, which re-applies the selection to each tile's cache).
+"""
+
+from __future__ import annotations
+
+import copy
+import json
+import os
+import time
+import tomllib
+from concurrent.futures import ThreadPoolExecutor
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Sequence
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.compute as pc
+import pyarrow.parquet as pq
+
+from . import pipeline, schema, tiles
+from ._validate import suggest
+from .config import MATCH_SECTIONS, SELECTION_SECTIONS, Config, config_hash, from_dict, load_config, plain
+from .errors import ConfigError, InputError, SelectorError
+from .io import read_parquet
+
+__all__ = [
+    "FeatureCache",
+    "Evaluation",
+    "Recorded",
+    "TruthLabels",
+    "TruthScore",
+    "TuneOutcome",
+    "add_commands",
+    "apply_settings",
+    "candidates",
+    "compare",
+    "compare_cutflows",
+    "evaluate",
+    "find_rows",
+    "find_truth",
+    "format_outcome",
+    "load_cache",
+    "load_truth",
+    "needed_columns",
+    "parse_setting",
+    "recorded",
+    "run_config",
+    "score_truth",
+    "setting_changes",
+    "tune",
+    "with_settings",
+    "write_results",
+]
+
+#: Columns every evaluation needs: the zero-motion inputs, which are also what the tile-reject test reads.
+#: (A row's tile is known from the file it is read from, so the tile column is not loaded.)
+_BASE_COLUMNS = ("parallax_mas", "parallax_error_mas", "pmra_mas_yr", "pmdec_mas_yr",
+                 "pmra_error_mas_yr", "pmdec_error_mas_yr", "pmra_pmdec_corr")
+#: Extra columns the plots read.
+PLOT_COLUMNS = ("astro_id", "ra_deg", "dec_deg", "ir_3p4_vegamag", "ir_4p6_vegamag", "ir_12_vegamag")
+
+#: Rows evaluated at a time (see :func:`evaluate`).
+_BLOCK_ROWS = 1 << 17
+
+_REMOVE = object()  # value of ``KEY=`` (nothing after the sign): drop the key, back to its default
+
+
+# --- --set KEY=VALUE ----------------------------------------------------------------------------
+
+def parse_setting(text: str):
+    """Split ``KEY=VALUE`` into a dotted key path and a TOML value.
+
+    The value is read as a TOML value (``4``, ``0.7``, ``true``, ``["stern2012"]``,
+    ``{name = "x", ...}``); anything TOML cannot read is taken as a bare string, so
+    ``colours.combine=all`` works without quotes. ``KEY=`` with nothing after the sign removes the
+    key, which restores its default.
+
+    Returns
+    -------
+    (tuple of str, object)
+        The key path and the value (or a private marker for removal).
+    """
+    if "=" not in text:
+        raise ConfigError(f"--set {text!r}: write KEY=VALUE, for example motion.parallax_snr_max=4")
+    key, raw = text.split("=", 1)
+    key, raw = key.strip(), raw.strip()
+    parts = tuple(key.split("."))
+    if not key or any(not p or not p.replace("_", "a").isalnum() for p in parts):
+        raise ConfigError(f"--set {text!r}: {key!r} is not a dotted key path such as motion.parallax_snr_max")
+    if raw == "":
+        return parts, _REMOVE
+    try:
+        value = tomllib.loads(f"x = {raw}")["x"]
+    except tomllib.TOMLDecodeError:
+        value = raw
+    return parts, value
+
+
+def _check_section(parts: tuple[str, ...], text: str) -> None:
+    section = parts[0]
+    if section in MATCH_SECTIONS:
+        raise ConfigError(f"--set {text}: [{section}] changes the cross-match and so the feature cache; "
+                          "tune cannot re-apply it, a full `selector run` is needed")
+    if section not in SELECTION_SECTIONS:
+        known = set(SELECTION_SECTIONS) | set(MATCH_SECTIONS) | {"project", "run", "targets", "known"}
+        if section in known:
+            raise ConfigError(f"--set {text}: [{section}] does not change the selection; tune re-applies only "
+                              f"{', '.join(f'[{s}]' for s in SELECTION_SECTIONS)}")
+        raise ConfigError(f"--set {text}: unknown section '{section}'{suggest(section, SELECTION_SECTIONS)}")
+    if len(parts) < 2:
+        raise ConfigError(f"--set {text}: name a key inside [{section}], for example {section}.<key>=VALUE")
+
+
+def apply_settings(data: dict, settings: Sequence[str]) -> dict:
+    """Return a copy of plain configuration data with ``KEY=VALUE`` changes applied.
+
+    Only keys of the selection sections (:data:`~selector.config.SELECTION_SECTIONS`) may be set;
+    a key of a matching section is refused with a message that a full run is needed. The result
+    is not validated here (:func:`with_settings` and :func:`tune` do that).
+    """
+    out = copy.deepcopy(data)
+    for text in settings:
+        parts, value = parse_setting(text)
+        _check_section(parts, text)
+        node = out
+        for i, part in enumerate(parts[:-1]):
+            child = node.get(part)
+            if child is None:
+                child = node[part] = {}
+            if not isinstance(child, dict):
+                raise ConfigError(f"--set {text}: '{'.'.join(parts[:i + 1])}' is a value, not a table")
+            node = child
+        if value is _REMOVE:
+            node.pop(parts[-1], None)
+        else:
+            node[parts[-1]] = value
+    return out
+
+
+def with_settings(cfg: Config, settings: Sequence[str]) -> Config:
+    """``cfg`` with ``KEY=VALUE`` changes to its selection settings, re-validated as a whole.
+
+    Raises
+    ------
+    ConfigError
+        One line naming the key, for a bad value, an unknown key or a key that changes matching.
+    """
+    data = apply_settings(plain(cfg), settings)
+    try:
+        return from_dict(data, base_dir=cfg.base_dir)
+    except ConfigError as exc:
+        raise ConfigError(f"with --set {' '.join(settings)}: {exc}") from None
+
+
+def run_config(run_dir: Path, base_dir: Path | None = None) -> tuple[Config, dict]:
+    """The configuration a run was made with, rebuilt from its ``provenance.json``.
+
+    Parameters
+    ----------
+    run_dir : Path
+        The run folder (``cfg.run_dir``).
+    base_dir : Path, optional
+        Folder the config's relative paths are taken from. Without it, ``project.output_dir`` is
+        pointed at ``run_dir``'s parent, so the run folder alone is enough.
+
+    Returns
+    -------
+    (Config, dict)
+        The configuration and the provenance record.
+    """
+    path = Path(run_dir) / "provenance.json"
+    if not path.exists():
+        raise InputError(f"{path}: not found; is {run_dir} the run folder of a finished `selector run`?")
+    try:
+        prov = json.loads(path.read_text(encoding="utf-8"))
+        data = prov["config"]
+    except (ValueError, KeyError):
+        raise InputError(f"{path}: not a run record (no 'config'); re-run `selector run`") from None
+    if base_dir is None:
+        data = copy.deepcopy(data)
+        data.setdefault("project", {})["output_dir"] = str(Path(run_dir).resolve().parent)
+        base_dir = Path(run_dir).resolve().parent
+    try:
+        return from_dict(data, base_dir=base_dir), prov
+    except ConfigError as exc:
+        raise ConfigError(f"{path}: the recorded configuration is no longer valid ({exc})") from None
+
+
+# --- the feature cache ----------------------------------------------------------------------------
+
+@dataclass
+class FeatureCache:
+    """The usable rows of a run's feature cache, with their tile bookkeeping.
+
+    Attributes
+    ----------
+    table : pyarrow.Table
+        Usable rows (tile rejects removed) of every tile, in tile order then file order, holding
+        only the loaded columns.
+    tiles : numpy.ndarray
+        Tile ids of the run, ascending.
+    offsets : numpy.ndarray
+        ``table`` rows ``offsets[i]:offsets[i + 1]`` belong to ``tiles[i]`` (each tile's rows are
+        contiguous).
+    rows_per_tile, rejects_per_tile : numpy.ndarray
+        Owned astrometric rows of each tile (as recorded by the run) and its tile rejects.
+    run_dir : Path
+        The run folder.
+    folders : list of Path
+        Each tile's output folder.
+    columns : tuple of str or None
+        The columns loaded (None: all).
+    seconds : float
+        Wall time of the load (not part of any result file).
+    """
+
+    table: pa.Table
+    tiles: np.ndarray
+    offsets: np.ndarray
+    rows_per_tile: np.ndarray
+    rejects_per_tile: np.ndarray
+    run_dir: Path
+    folders: list
+    columns: tuple | None = None
+    seconds: float = 0.0
+
+    @property
+    def n_rows(self) -> int:
+        return self.table.num_rows
+
+    def tile_slice(self, i: int) -> slice:
+        """Rows of ``table`` that belong to ``tiles[i]``."""
+        return slice(int(self.offsets[i]), int(self.offsets[i + 1]))
+
+    def tile_index(self, lo: int = 0, hi: int | None = None) -> np.ndarray:
+        """Position in ``tiles`` of each of the rows ``lo:hi`` of ``table``."""
+        hi = self.n_rows if hi is None else hi
+        return np.searchsorted(self.offsets, np.arange(lo, hi), side="right") - 1
+
+
+def _needed_bands(cfg: Config) -> list[str]:
+    """Infrared bands (config labels) the selection reads: the criteria's, the cuts', the ranking's.
+
+    A band left out reads as missing, which changes nothing for criteria that do not use it.
+    """
+    from .photometry import CRITERION_BANDS
+
+    labels = {b for name in cfg.colours.criteria for b in CRITERION_BANDS.get(name, ())}
+    wanted = {cfg.ranking.brightness_band}
+    for cut in cfg.colours.linear_cuts:
+        wanted.update(q for q in (*cut.x, *cut.y) if q in schema.INFRARED_BANDS)
+    if cfg.colours.optical_infrared is not None:
+        wanted.add(cfg.colours.optical_infrared.infrared_band)
+    return [b for b in cfg.infrared_bands() if b in wanted or schema.INFRARED_BANDS[b] in labels]
+
+
+def needed_columns(cfg: Config, plots: bool = False, classifier: bool = True,
+                   ids: bool = False) -> tuple[str, ...] | None:
+    """Feature columns the selection with ``cfg`` reads.
+
+    None (every column) when a classifier is configured and ``classifier`` is true, since a model
+    may read any feature; ``plots`` adds the columns the pictures need, ``ids`` the source ids
+    (for truth labels).
+    """
+    if classifier and cfg.classifier.model:
+        return None
+    cols = (["astro_id"] if ids else []) + list(_BASE_COLUMNS)
+    if cfg.motion.fit_quality_max is not None:
+        cols.append("fit_quality")
+    cols += [schema.infrared_mag_column(b) for b in _needed_bands(cfg)]
+    c = cfg.colours
+    if c.linear_cuts or c.optical_infrared is not None:
+        cols += [schema.optical_mag_column(b) for b in cfg.optical_bands()]
+    if c.galactic_latitude_min_deg is not None:
+        cols.append("gal_b_deg")
+    if plots:
+        cols += PLOT_COLUMNS
+    return tuple(dict.fromkeys(cols))
+
+
+def _tile_dirs(cfg: Config) -> tuple[np.ndarray, list[Path]]:
+    ids = tiles.list_tiles(cfg.tiles_dir, "astrometric", cfg.tiling.order)
+    if not ids:
+        # the run folder may have been moved without the ingested tiles: the run's own tile folders
+        # are then the record of what was processed
+        ids = sorted(int(p.name[4:]) for p in (cfg.run_dir / "tiles").glob("tile*") if p.is_dir())
+    return np.asarray(ids, np.int64), [pipeline.tile_output_dir(cfg, t) for t in ids]
+
+
+def _open(path: Path) -> pq.ParquetFile:
+    try:
+        # without pre-buffering an open file keeps no copy of the bytes it has decoded
+        return pq.ParquetFile(path, pre_buffer=False)
+    except (OSError, pa.ArrowException) as exc:
+        raise InputError(f"{path}: cannot read the feature cache ({str(exc).splitlines()[0]})") from None
+
+
+def _read_columns(files: list, columns, n_threads: int) -> pa.Table:
+    """The requested columns of every file, concatenated in file order, as one chunk per column.
+
+    Floating-point columns are decoded straight into one preallocated array each (nulls become
+    NaN), which needs a single copy and leaves every later read a zero-copy view; other columns
+    are concatenated by pyarrow. A column a file lacks is missing (NaN or null) for its rows.
+    """
+    with ThreadPoolExecutor(max_workers=n_threads) as pool:
+        handles = list(pool.map(_open, files))
+    if columns is None:
+        columns = list(dict.fromkeys(n for h in handles for n in h.schema_arrow.names))
+    types = {}
+    for h in handles:
+        for f in h.schema_arrow:
+            if f.name in columns and not pa.types.is_null(f.type):
+                types.setdefault(f.name, f)
+    floats = [c for c in columns if c in types and pa.types.is_floating(types[c].type)]
+    others = [c for c in columns if c in types and c not in floats]
+    sizes = np.array([h.metadata.num_rows for h in handles], np.int64)
+    starts = np.cumsum(sizes) - sizes
+    total = int(sizes.sum())
+    dense = {c: np.empty(total) for c in floats}
+    pieces = {c: [None] * len(handles) for c in others}
+
+    def read(i):
+        h = handles[i]
+        have = [c for c in columns if c in h.schema_arrow.names]
+        try:
+            t = h.read(columns=have, use_threads=False)
+        except (OSError, pa.ArrowException) as exc:
+            raise InputError(f"{files[i]}: cannot read the feature cache ({str(exc).splitlines()[0]})") from None
+        lo, hi = starts[i], starts[i] + sizes[i]
+        for c in floats:
+            dense[c][lo:hi] = t.column(c).to_numpy() if c in have else np.nan
+        for c in others:
+            pieces[c][i] = t.column(c) if c in have else pa.nulls(int(sizes[i]), types[c].type)
+        h.close()
+
+    with ThreadPoolExecutor(max_workers=n_threads) as pool:
+        list(pool.map(read, range(len(handles))))
+    arrays = {}
+    for c in columns:
+        if c in dense:
+            arrays[c] = pa.array(dense.pop(c))
+        elif c in pieces:
+            chunks = [ch for col in pieces.pop(c) for ch in col.chunks]
+            arrays[c] = pa.chunked_array(chunks, types[c].type).combine_chunks() if chunks else pa.nulls(0, types[c].type)
+    table = pa.table(arrays) if arrays else pa.table({"_": pa.nulls(total)}).drop(["_"])
+    return table, sizes
+
+
+def _read_counts(folder: Path) -> int:
+    path = folder / "cutflow.json"
+    try:
+        return int(json.loads(path.read_text())["rows"])
+    except FileNotFoundError:
+        raise InputError(f"{path}: not found; the run is incomplete, finish it with `selector run`") from None
+    except (ValueError, KeyError, TypeError):
+        raise InputError(f"{path}: damaged (no 'rows'); re-run `selector run`") from None
+
+
+def load_cache(cfg: Config, columns: Sequence[str] | None = ("auto",), plots: bool = False,
+               ids: bool = False, threads: int | None = None) -> FeatureCache:
+    """Read the feature cache of ``cfg``'s run: the needed columns of every tile at once.
+
+    Parameters
+    ----------
+    cfg : Config
+        Any configuration of the run (the matching sections locate the cache).
+    columns : sequence of str or None
+        Columns to load; the default loads what :func:`needed_columns` says for ``cfg``; None
+        loads all. A column absent from a tile's file is read as missing (null).
+    plots : bool
+        Also load the columns the plots read.
+    ids : bool
+        Also load the source ids (needed to compare with truth labels).
+    threads : int, optional
+        Files read in parallel (default: one per core).
+    """
+    if columns is not None and tuple(columns) == ("auto",):
+        columns = needed_columns(cfg, plots, ids=ids)
+    elif columns is not None:
+        columns = tuple(dict.fromkeys(list(_BASE_COLUMNS) + list(columns)))
+    t0 = time.perf_counter()
+    ids, folders = _tile_dirs(cfg)
+    if len(ids) == 0:
+        raise InputError(f"{cfg.run_dir}: no tiles found; run `selector ingest` and `selector run` first")
+    files = [f / "features.parquet" for f in folders]
+    for f in files:
+        if not f.exists():
+            raise InputError(f"{f}: no feature cache for this tile; run `selector run` first")
+    n_threads = threads or os.cpu_count() or 1
+    table, sizes = _read_columns(files, columns, n_threads)
+    with ThreadPoolExecutor(max_workers=n_threads) as pool:
+        rows = np.array(list(pool.map(_read_counts, folders)), np.int64)
+    starts = np.concatenate([[0], np.cumsum(sizes)])
+    bad = pipeline.tile_rejects(table)
+    rejects = np.zeros(len(ids), np.int64)
+    if bad.any():
+        seen = np.concatenate([[0], np.cumsum(bad)])
+        rejects = (seen[starts[1:]] - seen[starts[:-1]]).astype(np.int64)
+        table = table.filter(pa.array(~bad)).combine_chunks()
+    offsets = np.concatenate([[0], np.cumsum(sizes - rejects)]).astype(np.int64)
+    return FeatureCache(table, ids, offsets, rows, rejects, cfg.run_dir, folders,
+                        None if columns is None else tuple(columns), time.perf_counter() - t0)
+
+
+# --- evaluation ---------------------------------------------------------------------------------
+
+@dataclass
+class Evaluation:
+    """The selection of one configuration over a whole feature cache.
+
+    Attributes
+    ----------
+    cfg : Config
+        The configuration evaluated.
+    stage_names : list of str
+        Cut-flow stages: ``input``, ``matched``, then the selection stages.
+    tile_counts : numpy.ndarray
+        ``(n_tiles, n_stages)`` rows left after each stage in each tile.
+    blocks : list of selector.pipeline.Selection
+        The selection of consecutive blocks of cache rows; :attr:`selection` joins them (on
+        first use, so a cut-flow alone costs no copy of the derived columns).
+    seconds : float
+        Wall time of the evaluation (not part of any result file).
+    """
+
+    cfg: Config
+    stage_names: list
+    tile_counts: np.ndarray
+    blocks: list
+    seconds: float = 0.0
+    _joined: dict = field(default_factory=dict, repr=False)
+
+    @property
+    def selection(self) -> pipeline.Selection:
+        """Cumulative stage masks and derived columns over every cache row."""
+        if "selection" not in self._joined:
+            stages = [(name, self.stage_mask(name)) for name, _ in self.blocks[0].stages]
+            derived = {k: np.concatenate([np.asarray(b.derived[k]) for b in self.blocks])
+                       for k in self.blocks[0].derived}
+            self._joined["selection"] = pipeline.Selection(stages, derived)
+        return self._joined["selection"]
+
+    def stage_mask(self, name: str) -> np.ndarray:
+        """Rows left after the stage ``name`` (KeyError for a stage this selection lacks)."""
+        key = ("mask", name)
+        if key not in self._joined:
+            names = [n for n, _ in self.blocks[0].stages]
+            j = names.index(name) if name in names else None
+            if j is None:
+                raise KeyError(name)
+            self._joined[key] = np.concatenate([b.stages[j][1] for b in self.blocks])
+        return self._joined[key]
+
+    @property
+    def passed(self) -> np.ndarray:
+        """The candidates among the cache rows."""
+        return self.stage_mask(self.blocks[0].stages[-1][0])
+
+    @property
+    def cutflow(self) -> list[tuple[str, int]]:
+        """Totals over every tile, as ``selector run`` reports them."""
+        totals = self.tile_counts.sum(axis=0)
+        return [(n, int(c)) for n, c in zip(self.stage_names, totals)]
+
+    def tile_cutflow(self, i: int) -> list[tuple[str, int]]:
+        """The cut-flow of the ``i``-th tile of the cache (as in its ``cutflow.json``)."""
+        return [(n, int(c)) for n, c in zip(self.stage_names, self.tile_counts[i])]
+
+
+def _scorer(cfg: Config):
+    from importlib import import_module
+
+    try:
+        classify = import_module("selector.classify")
+    except ImportError as exc:
+        if exc.name == "selector.classify":
+            raise SelectorError(f"classifier.model = {cfg.classifier.model!r} is set but this installation has no "
+                                "classifier (selector.classify); remove classifier.model to tune without it") from None
+        raise
+    return classify.load_scorer(str(cfg.path(cfg.classifier.model)), cfg)
+
+
+def evaluate(cache: FeatureCache, cfg: Config, p_quasar: np.ndarray | None = None,
+             use_classifier: bool = True, threads: int | None = None) -> Evaluation:
+    """Apply ``cfg``'s selection to every cached row at once.
+
+    Parameters
+    ----------
+    cache : FeatureCache
+        From :func:`load_cache` (with every column when a classifier is used).
+    cfg : Config
+        Configuration whose selection sections are applied; its matching sections must be those
+        of the run (see :func:`tune`).
+    p_quasar : numpy.ndarray, optional
+        Classifier probabilities of the cache rows, computed once and shared between evaluations.
+        When None and ``cfg.classifier.model`` is set (and ``use_classifier``), the model scores
+        the cache here.
+    use_classifier : bool
+        False leaves the classifier stage out (the report does, for a model it cannot load).
+    threads : int, optional
+        Blocks of rows evaluated side by side (default: one per core).
+    """
+    t0 = time.perf_counter()
+    if p_quasar is None and use_classifier and cfg.classifier.model:
+        if cache.columns is not None:
+            raise SelectorError("the classifier needs every feature column: load the cache with columns=None")
+        p_quasar = np.asarray(_scorer(cfg)(cache.table), float)
+    if not use_classifier:
+        p_quasar = None
+    n, n_tiles = cache.n_rows, len(cache.tiles)
+    # select() is row by row, so blocks of rows give exactly the whole-table result; blocks small
+    # enough for the cache keep its many temporaries from being fresh, page-faulted memory, which
+    # is several times faster than one pass over 10^7 rows (and the blocks can run side by side)
+    bounds = list(range(0, n, _BLOCK_ROWS)) or [0]
+
+    def block(lo):
+        hi = min(lo + _BLOCK_ROWS, n)
+        part = pipeline.select(cache.table.slice(lo, hi - lo), cfg, None if p_quasar is None else p_quasar[lo:hi])
+        idx = cache.tile_index(lo, hi)
+        return part, np.stack([np.bincount(idx[mask], minlength=n_tiles) for _, mask in part.stages], axis=1)
+
+    with ThreadPoolExecutor(max_workers=max(1, min(threads or os.cpu_count() or 1, len(bounds)))) as pool:
+        parts = list(pool.map(block, bounds))
+    stage_names = [name for name, _ in parts[0][0].stages]
+    counts = np.empty((n_tiles, len(stage_names) + 1), np.int64)
+    counts[:, 0] = cache.rows_per_tile - cache.rejects_per_tile
+    counts[:, 1:] = np.sum([c for _, c in parts], axis=0)
+    # the first stage of select() is "matched": every usable row
+    return Evaluation(cfg, ["input"] + stage_names, counts, [p for p, _ in parts], time.perf_counter() - t0)
+
+
+def _tile_features(cache: FeatureCache, i: int) -> pa.Table:
+    """The full usable feature rows of one tile, in cache order."""
+    path = cache.folders[i] / "features.parquet"
+    full = read_parquet(path)
+    return full.filter(pa.array(~pipeline.tile_rejects(full)))
+
+
+def _tile_selection(ev: Evaluation, s: slice) -> pipeline.Selection:
+    return pipeline.Selection([(n, m[s]) for n, m in ev.selection.stages],
+                              {k: np.asarray(v)[s] for k, v in ev.selection.derived.items()})
+
+
+def candidates(cache: FeatureCache, ev: Evaluation) -> pa.Table:
+    """Every column of the candidates of ``ev``, as the run's merged ``candidates.parquet`` holds them.
+
+    Per tile (in tile order) the candidates are sorted by score then id, exactly as
+    :func:`selector.pipeline.candidates_table` sorts them; full rows are read only for tiles
+    that have candidates.
+    """
+    passed_tiles = np.unique(np.searchsorted(cache.offsets, np.flatnonzero(ev.passed), side="right") - 1)
+    parts = []
+    for i in passed_tiles:
+        s = cache.tile_slice(int(i))
+        parts.append(pipeline.candidates_table(_tile_features(cache, int(i)), _tile_selection(ev, s)))
+    if not parts:
+        return pa.table({"astro_id": pa.array([], pa.int64())})
+    return pa.concat_tables(parts, promote_options="permissive")
+
+
+def write_results(ev: Evaluation, config_path=None, log=print):
+    """Make ``ev``'s selection the run's result, through ``selector run`` itself.
+
+    The matching settings are the run's, so every tile's feature cache is reused and only the
+    selection is re-applied, tile by tile, with the run's manifest, lock and merge: the run folder
+    then holds exactly what ``selector run`` with ``ev.cfg`` writes, and a later ``selector run``
+    with another configuration re-selects from it as usual.
+    """
+    from . import batch
+
+    result = batch.run(ev.cfg, quiet=True, log=log, config_path=config_path)
+    log(f"wrote the tuned selection as the run's result: {result.candidates:,} candidates in "
+        f"{result.outputs['ecsv']}")
+    return result
+
+
+# --- truth labels ---------------------------------------------------------------------------------
+
+@dataclass
+class TruthLabels:
+    """Truth labels aligned with the rows of a feature cache.
+
+    Attributes
+    ----------
+    path : Path
+        Where the labels came from.
+    labelled : numpy.ndarray of bool
+        Cache rows that have a label.
+    quasar : numpy.ndarray of bool
+        Cache rows labelled as quasars.
+    n_quasars : int
+        Labelled quasars in the whole file (matched or not): the completeness denominator.
+    """
+
+    path: Path
+    labelled: np.ndarray
+    quasar: np.ndarray
+    n_quasars: int
+
+
+@dataclass
+class TruthScore:
+    """Completeness and purity of one candidate selection.
+
+    ``completeness = recovered / n_quasars``; ``purity = recovered / labelled candidates``
+    (candidates without a label are counted separately, not as contaminants).
+    """
+
+    candidates: int
+    labelled_candidates: int
+    recovered: int
+    n_quasars: int
+
+    @property
+    def completeness(self) -> float:
+        return self.recovered / self.n_quasars if self.n_quasars else float("nan")
+
+    @property
+    def purity(self) -> float:
+        return self.recovered / self.labelled_candidates if self.labelled_candidates else float("nan")
+
+
+def _read_any(path: Path) -> pa.Table:
+    from .io import guess_format
+
+    fmt = guess_format(path)
+    try:
+        if fmt == "parquet":
+            return pq.read_table(path)
+        if fmt == "csv":
+            import pyarrow.csv as pacsv
+
+            return pacsv.read_csv(path, convert_options=pacsv.ConvertOptions(column_types={"id": pa.string()}))
+        from astropy.table import Table
+
+        t = Table.read(path, format={"fits": "fits", "ecsv": "ascii.ecsv", "votable": "votable"}[fmt])
+        return pa.table({c: np.asarray(t[c]) for c in t.colnames})
+    except (OSError, ValueError, pa.ArrowException) as exc:
+        raise InputError(f"{path}: cannot read the truth labels ({str(exc).splitlines()[0]})") from None
+
+
+def _is_quasar(values: pa.ChunkedArray) -> np.ndarray:
+    from .truth import QUASAR_POPULATIONS
+
+    if pa.types.is_boolean(values.type):
+        return np.asarray(values.fill_null(False).to_numpy(zero_copy_only=False), bool)
+    if pa.types.is_integer(values.type):
+        return np.asarray(values.fill_null(0).to_numpy(zero_copy_only=False) == 1, bool)
+    text = pc.utf8_lower(pc.cast(values, pa.string()).fill_null(""))
+    return np.asarray(pc.is_in(text, value_set=pa.array(list(QUASAR_POPULATIONS))).to_numpy(zero_copy_only=False), bool)
+
+
+def load_truth(path: Path, cache: FeatureCache) -> TruthLabels:
+    """Read truth labels and align them with the cache rows.
+
+    The file (Parquet, CSV, ECSV, FITS or VOTable) needs a column ``id`` (the astrometric id) and
+    either ``population`` (quasar when ``quasar`` or ``bright_quasar``, as the demo's truth writes)
+    or ``label`` (quasar when ``quasar``, ``true`` or ``1``). With a column ``catalogue`` only the
+    ``astrometric`` rows are used.
+    """
+    path = Path(path)
+    if not path.exists():
+        raise InputError(f"{path}: no such truth file")
+    table = _read_any(path)
+    names = table.column_names
+    if "id" not in names:
+        raise InputError(f"{path}: the truth file has no column 'id' (the astrometric source id){suggest('id', names)}")
+    label = "population" if "population" in names else "label" if "label" in names else None
+    if label is None:
+        raise InputError(f"{path}: the truth file needs a column 'population' or 'label'")
+    if "catalogue" in names:
+        table = table.filter(pc.equal(pc.cast(table.column("catalogue"), pa.string()), "astrometric"))
+    quasar = _is_quasar(table.column(label))
+    labelled, row = find_rows(cache, table.column("id"))
+    is_q = labelled & (quasar[row] if len(quasar) else np.zeros(len(row), bool))
+    return TruthLabels(path, labelled, is_q, int(quasar.sum()))
+
+
+def find_truth(cfg: Config) -> Path | None:
+    """The demo's truth labels, ``catalogues/truth.parquet`` beside the config, if present."""
+    path = Path(cfg.base_dir) / "catalogues" / "truth.parquet"
+    return path if path.exists() else None
+
+
+def score_truth(labels: TruthLabels, passed: np.ndarray) -> TruthScore:
+    """Completeness and purity of the cache rows in ``passed``."""
+    return TruthScore(int(passed.sum()), int((passed & labels.labelled).sum()), int((passed & labels.quasar).sum()),
+                      labels.n_quasars)
+
+
+# --- the tuning loop ------------------------------------------------------------------------------
+
+@dataclass
+class Recorded:
+    """A run's selection as its outputs record it: the "before" of ``selector tune``.
+
+    Attributes
+    ----------
+    cfg : Config
+        The configuration kept in ``provenance.json``.
+    cutflow : list of (stage, count)
+        The run's cut-flow totals.
+    candidate_ids : pyarrow.Array
+        ``astro_id`` of the run's candidates.
+    passed : numpy.ndarray of bool or None
+        The candidates among a cache's rows, once aligned with one (needs the ids loaded).
+    """
+
+    cfg: Config
+    cutflow: list
+    candidate_ids: pa.Array
+    passed: np.ndarray | None = None
+
+
+def recorded(run_dir: Path, cfg: Config, prov: dict, cache: FeatureCache | None = None) -> Recorded:
+    """The run's recorded selection; aligned with ``cache`` when its ids are loaded."""
+    path = Path(run_dir) / "candidates.parquet"
+    if not path.exists():
+        raise InputError(f"{path}: not found; the run in {run_dir} has not finished its merge")
+    ids = read_parquet(path, columns=["astro_id"]).column("astro_id").combine_chunks()
+    out = Recorded(cfg, [(str(n), int(c)) for n, c in prov.get("cutflow", [])], ids)
+    if cache is not None and "astro_id" in cache.table.column_names:
+        out.passed = find_rows(cache, ids)[0]
+    return out
+
+
+def find_rows(cache: FeatureCache, ids) -> tuple[np.ndarray, np.ndarray]:
+    """Where ``ids`` sit among the cache rows.
+
+    Returns
+    -------
+    (numpy.ndarray of bool, numpy.ndarray of int64)
+        For each cache row, whether its ``astro_id`` is among ``ids``, and the position in
+        ``ids`` of the first equal id (0 where there is none). Integer ids given as text are
+        compared as integers; otherwise both sides are compared as text.
+    """
+    if "astro_id" not in cache.table.column_names:
+        raise SelectorError("internal error: the feature cache was loaded without its ids (astro_id)")
+    cache_ids = cache.table.column("astro_id").combine_chunks()
+    if isinstance(ids, pa.ChunkedArray):
+        ids = ids.combine_chunks()
+    elif not isinstance(ids, pa.Array):
+        ids = pa.array(ids)
+    if ids.type != cache_ids.type:
+        try:
+            if not pa.types.is_integer(cache_ids.type):
+                raise pa.ArrowInvalid("text ids")
+            ids = pc.cast(ids, cache_ids.type)
+        except (pa.ArrowInvalid, pa.ArrowNotImplementedError):
+            ids, cache_ids = pc.cast(ids, pa.string()), pc.cast(cache_ids, pa.string())
+    pos = pc.index_in(cache_ids, value_set=ids)
+    found = np.asarray(pos.is_valid().to_numpy(zero_copy_only=False), bool)
+    return found, np.asarray(pos.fill_null(0).to_numpy(zero_copy_only=False), np.int64)
+
+
+@dataclass
+class TuneOutcome:
+    """Before and after of a tuning step.
+
+    Attributes
+    ----------
+    before : Recorded or Evaluation
+        The run's selection (as recorded, from ``selector tune``; any evaluation, from the API).
+    after : Evaluation
+        The changed selection over the cache.
+    changes : list of (key, before, after)
+        Selection settings that differ.
+    truth_before, truth_after : TruthScore or None
+        Against the truth labels, where given.
+    """
+
+    cache: FeatureCache
+    before: "Recorded | Evaluation"
+    after: Evaluation
+    changes: list = field(default_factory=list)
+    truth: TruthLabels | None = None
+    truth_before: TruthScore | None = None
+    truth_after: TruthScore | None = None
+
+
+def _flatten(data, prefix=""):
+    if isinstance(data, dict):
+        out = {}
+        for k in sorted(data):
+            out.update(_flatten(data[k], f"{prefix}{k}."))
+        return out
+    return {prefix[:-1]: data}
+
+
+def setting_changes(before: Config, after: Config) -> list[tuple[str, object, object]]:
+    """Selection settings that differ between two configurations, as (dotted key, before, after)."""
+    a = _flatten({k: plain(before)[k] for k in SELECTION_SECTIONS})
+    b = _flatten({k: plain(after)[k] for k in SELECTION_SECTIONS})
+    return [(k, a.get(k), b.get(k)) for k in sorted(set(a) | set(b)) if a.get(k) != b.get(k)]
+
+
+def _check_same_match(cfg: Config, prov: dict, where: str) -> None:
+    recorded = prov.get("match_config_hash")
+    if recorded is not None and config_hash(cfg, MATCH_SECTIONS) != recorded:
+        run_cfg = prov.get("config", {})
+        now = plain(cfg)
+        differ = [s for s in MATCH_SECTIONS if json.dumps(run_cfg.get(s), sort_keys=True)
+                  != json.dumps(now.get(s), sort_keys=True)]
+        which = ", ".join(f"[{s}]" for s in differ) or "the matching sections"
+        raise ConfigError(f"{where}: {which} differ from the run in {cfg.run_dir}, so its feature cache does not "
+                          "apply; a full `selector run` is needed")
+
+
+def tune(config_path: Path | str, settings: Sequence[str] = (), truth: Path | str | None = None,
+         plots: bool = False) -> TuneOutcome:
+    """Compare a run's recorded selection with ``config_path`` plus ``settings``, on its feature cache.
+
+    Parameters
+    ----------
+    config_path : path
+        The configuration file; its matching sections must be those of the run.
+    settings : sequence of str
+        ``KEY=VALUE`` changes to selection settings (see :func:`parse_setting`).
+    truth : path, optional
+        Truth labels for completeness and purity; by default the demo's, when present.
+    plots : bool
+        Also load the columns the plots read.
+    """
+    config_path = Path(config_path)
+    base = load_config(config_path)  # validates the file as written, with its own messages
+    data = tomllib.loads(config_path.read_text(encoding="utf-8"))
+    data = apply_settings(data, settings)
+    try:
+        after_cfg = from_dict(data, base_dir=config_path.resolve().parent)
+    except ConfigError as exc:
+        raise ConfigError(f"{config_path} with --set {' '.join(settings)}: {exc}") from None
+    before_cfg, prov = run_config(base.run_dir, base_dir=config_path.resolve().parent)
+    _check_same_match(after_cfg, prov, str(config_path))
+    truth_path = Path(truth) if truth is not None else find_truth(after_cfg)
+    cache = load_cache(after_cfg, needed_columns(after_cfg, plots, ids=truth_path is not None))
+    after = evaluate(cache, after_cfg)  # scores with the classifier, when one is set
+    labels = load_truth(truth_path, cache) if truth_path is not None else None
+    # the run's own record is the "before": nothing to re-evaluate, and exactly what the run gave
+    before = recorded(base.run_dir, before_cfg, prov, cache if labels is not None else None)
+    return compare(cache, before, after, labels)
+
+
+def compare(cache: FeatureCache, before, after: Evaluation, labels: TruthLabels | None = None) -> TuneOutcome:
+    """Put two selections over one cache side by side (settings changed; truth figures where labels exist).
+
+    ``before`` is an :class:`Evaluation` or a :class:`Recorded` aligned with ``cache``.
+    """
+    out = TuneOutcome(cache, before, after, setting_changes(before.cfg, after.cfg), truth=labels)
+    if labels is not None:
+        out.truth_before = score_truth(labels, before.passed)
+        out.truth_after = score_truth(labels, after.passed)
+    return out
+
+
+def compare_cutflows(before: list, after: list) -> list[tuple[str, int | None, int | None]]:
+    """Stages of two cut-flows side by side (a stage only one of them has gets None in the other)."""
+    b = dict(before)
+    a = dict(after)
+    order = [n for n, _ in after]
+    for i, (name, _) in enumerate(before):
+        if name not in a:
+            prev = before[i - 1][0] if i else None
+            order.insert(order.index(prev) + 1 if prev in order else len(order), name)
+    return [(n, b.get(n), a.get(n)) for n in order]
+
+
+def _fmt(v) -> str:
+    return "-" if v is None else f"{v:,d}"
+
+
+def _trained_on(cfg: Config, truth_path: Path) -> bool:
+    """Whether ``cfg`` scores with a classifier whose training labels are ``truth_path``."""
+    labels = getattr(cfg.classifier, "labels", None)
+    file = getattr(labels, "file", None)
+    if not cfg.classifier.model or not file:
+        return False
+    return cfg.path(file).resolve() == Path(truth_path).resolve()
+
+
+def format_outcome(out: TuneOutcome) -> str:
+    """The printed summary: changed settings, cut-flows before and after, truth figures."""
+    lines = []
+    if out.changes:
+        lines.append("changed selection settings:")
+        for key, a, b in out.changes:
+            lines.append(f"  {key}: {json.dumps(a)} -> {json.dumps(b)}")
+    else:
+        lines.append("no selection setting differs from the run's")
+    if not out.after.cfg.classifier.model and any(k == "classifier.threshold" for k, _, _ in out.changes):
+        lines.append("  (classifier.threshold has no effect: no classifier.model is set)")
+    rows = compare_cutflows(out.before.cutflow, out.after.cutflow)
+    width = max(len(n) for n, _, _ in rows)
+    lines.append("")
+    lines.append(f"{'stage':<{width}}  {'before':>12}  {'after':>12}  {'change':>10}")
+    for name, b, a in rows:
+        change = "" if a is None or b is None else f"{a - b:+,d}"
+        lines.append(f"{name:<{width}}  {_fmt(b):>12}  {_fmt(a):>12}  {change:>10}")
+    if out.truth is not None:
+        tb, ta = out.truth_before, out.truth_after
+        lines.append("")
+        lines.append(f"against the truth labels in {out.truth.path} ({tb.n_quasars:,d} true quasars):")
+        lines.append(f"  {'':<14}{'before':>10}  {'after':>10}")
+        lines.append(f"  {'completeness':<14}{tb.completeness:>10.1%}  {ta.completeness:>10.1%}")
+        lines.append(f"  {'purity':<14}{tb.purity:>10.1%}  {ta.purity:>10.1%}")
+        lines.append(f"  {'recovered':<14}{tb.recovered:>10,d}  {ta.recovered:>10,d}")
+        unl_b, unl_a = tb.candidates - tb.labelled_candidates, ta.candidates - ta.labelled_candidates
+        if unl_b or unl_a:
+            lines.append(f"  {'unlabelled':<14}{unl_b:>10,d}  {unl_a:>10,d}")
+        if any(_trained_on(ev.cfg, out.truth.path) for ev in (out.before, out.after)):
+            lines.append("  (the classifier was trained on these labels: its figures are optimistic; judge it by "
+                         "the held-out evaluation of `selector train`)")
+    lines.append("")
+    lines.append(f"{out.cache.n_rows:,d} cached rows from {len(out.cache.tiles):,d} tiles: read in "
+                 f"{out.cache.seconds:.2f} s, re-evaluated in {out.after.seconds:.2f} s")
+    return "\n".join(lines)
+
+
+# --- the command ----------------------------------------------------------------------------------
+
+def _cmd_tune(args) -> int:
+    out = tune(args.config, args.set or (), truth=args.truth, plots=bool(args.plots))
+    print(format_outcome(out))
+    if args.plots:
+        from . import plots
+
+        data = plots.PlotData.from_evaluation(out.cache, out.after)
+        paths = plots.write_plots(data, Path(args.plots))
+        print(f"plots of the new selection: {len(paths)} PNG files in {args.plots}")
+    if args.write:
+        write_results(out.after, config_path=args.config)
+    return 0
+
+
+def add_commands(sub, config_arg) -> None:
+    """Register ``selector tune``."""
+    p = sub.add_parser(
+        "tune", help="re-apply changed cuts to the run's feature cache in seconds; cut-flow before and after",
+        description="Compare the run's selection with the config file's (plus --set changes) on the cached "
+                    "features, without matching again. Writes nothing unless --plots or --write is given.")
+    config_arg(p)
+    p.add_argument("--set", action="append", metavar="KEY=VALUE",
+                   help="change a selection setting, e.g. motion.parallax_snr_max=4, "
+                        "colours.criteria='[\"assef2018_r75\"]', classifier.threshold=0.7 (repeatable; "
+                        "KEY= restores the default)")
+    p.add_argument("--truth", metavar="FILE", default=None,
+                   help="truth labels (columns id and population or label) for completeness and purity; "
+                        "default: catalogues/truth.parquet beside the config, if present")
+    p.add_argument("--plots", metavar="DIR", default=None, help="write PNG diagnostics of the new selection here")
+    p.add_argument("--write", action="store_true",
+                   help="make the new selection the run's result (rewrites the run's candidates and cut-flows)")
+    p.set_defaults(func=_cmd_tune)

@@ -1,0 +1,260 @@
+"""Tests of selector.plots and selector.report: every picture, a self-contained page, a real browser."""
+
+from __future__ import annotations
+
+import base64
+import io
+import re
+import shutil
+import subprocess
+from html.parser import HTMLParser
+
+import numpy as np
+import pytest
+from PIL import Image
+
+from selector import batch, demo, ingest, photometry as ph, plots, report, tune
+from selector.cli import main
+from selector.config import load_config
+
+PNG_MAGIC = b"\x89PNG\r\n\x1a\n"
+
+
+@pytest.fixture(scope="module")
+def demo_run(tmp_path_factory):
+    tmp = tmp_path_factory.mktemp("report_demo")
+    demo.write_mock_sky(demo.make_mock_sky(seed=2, scale=0.03), tmp / "catalogues")
+    cfg = load_config(demo.write_demo_config(tmp))
+    ingest.ingest(cfg, log=lambda *a: None)
+    batch.run(cfg, workers=1, quiet=True, log=lambda *a: None)
+    return cfg
+
+
+@pytest.fixture(scope="module")
+def cache(demo_run):
+    return tune.load_cache(demo_run, plots=True)
+
+
+def _data(cache, cfg, settings=()):
+    changed = tune.with_settings(cfg, list(settings)) if settings else cfg
+    return plots.PlotData.from_evaluation(cache, tune.evaluate(cache, changed))
+
+
+def _png_size(png: bytes) -> tuple[int, int]:
+    assert png[:8] == PNG_MAGIC
+    with Image.open(io.BytesIO(png)) as im:
+        im.verify()
+    with Image.open(io.BytesIO(png)) as im:
+        return im.size
+
+
+# --- pictures -------------------------------------------------------------------------------------
+
+def test_every_plot_is_produced_and_deterministic(demo_run, cache):
+    data = _data(cache, demo_run, ['colours.criteria=["stern2012", "assef2013_r90", "mateos2012_wedge"]'])
+    assert data.candidate.sum() > 0
+    first = plots.render_plots(data)
+    assert list(first) == [name for name, _, _ in plots.PLOTS]
+    assert set(first) == {"cutflow", "colour_colour", "colour_magnitude", "motion", "score", "sky"}
+    for name, png in first.items():
+        w, h = _png_size(png)
+        assert w >= 400 and h >= 200, name
+    assert plots.render_plots(data) == first  # same data, same bytes
+    assert len(set(first.values())) == len(first)
+
+
+def test_score_plot_shows_the_classifier_when_there_is_one(demo_run, cache):
+    data = _data(cache, demo_run, ["classifier.threshold=0.8"])
+    assert len(plots.score_distribution(data).axes) == 1
+    data.p_quasar = np.linspace(0.0, 1.0, len(data.score))
+    fig = plots.score_distribution(data)
+    assert len(fig.axes) == 2
+    assert [ln.get_xdata()[0] for ln in fig.axes[1].lines] == [0.8]
+
+
+def test_thresholds_drawn_follow_the_config(demo_run, cache):
+    a = plots.motion_statistics(_data(cache, demo_run))
+    b = plots.motion_statistics(_data(cache, demo_run, ["motion.parallax_snr_max=5", "motion.pm_pvalue_min=0.01"]))
+
+    def vlines(fig):
+        return sorted({round(float(ln.get_xdata()[0]), 6) for ax in fig.axes for ln in ax.lines
+                       if len(set(ln.get_xdata())) == 1})
+
+    assert vlines(a) == [-3.0, 3.0, round(-2 * np.log(0.001), 6)]
+    # the χ² limit is −2 ln p for two degrees of freedom: p = exp(−χ²/2) (scipy's chi2.sf as reference)
+    from scipy.stats import chi2
+
+    assert chi2.sf(-2 * np.log(0.01), 2) == pytest.approx(0.01)
+    assert vlines(b) == [-5.0, 5.0, round(-2 * np.log(0.01), 6)]
+
+
+def test_colour_magnitude_boundaries_come_from_photometry(demo_run, cache):
+    fig = plots.colour_magnitude(_data(cache, demo_run, ['colours.criteria=["assef2018_r75", "stern2012"]']))
+    lines = {ln.get_label().split(":")[0]: ln for ln in fig.axes[0].lines}
+    assef = lines["assef2018_r75"]
+    k = ph.ASSEF2018_R75
+    x = np.asarray(assef.get_xdata())
+    assert np.allclose(assef.get_ydata(), ph.assef_boundary_colour_vega(x, k.alpha, k.beta, k.gamma))
+    stern = lines["stern2012"]
+    assert list(stern.get_xdata())[1] == ph.STERN2012_MAG_4P6_MAX_VEGA
+    assert list(stern.get_ydata())[0] == ph.STERN2012_COLOUR_MIN_VEGA
+
+
+def test_wedge_in_vega_colours_lies_on_the_criterion_boundary():
+    """Mapped back to magnitudes, every corner of the drawn wedge is on the criterion's edge."""
+    x, y = plots._wedge_vega((-0.5, 2.5))  # [4.6]−[12], [3.4]−[4.6]
+    m2 = np.full(len(x), 14.0)
+    res = ph.mateos2012_wedge({"3p4": m2 + y, "4p6": m2, "12": m2 - x})
+    assert np.allclose(res.excess_mag, 0.0, atol=1e-9)
+    # a point between the two long edges, above the short one, is selected
+    mid = ph.mateos2012_wedge({"3p4": np.array([14.0 + y[1:3].mean() + 0.3]), "4p6": np.array([14.0]),
+                               "12": np.array([14.0 - x[1:3].mean()])})
+    assert mid.passed[0]
+
+
+def test_sky_map_shows_the_healpix_density(demo_run, cache):
+    import healpy as hp
+
+    data = _data(cache, demo_run)
+    fig = plots.sky_map(data)
+    mesh = next(c for c in fig.axes[0].collections if hasattr(c, "get_array"))
+    nside = 1 << demo_run.tiling.order
+    counts = np.bincount(hp.ang2pix(nside, data.ra_deg[data.candidate], data.dec_deg[data.candidate],
+                                    nest=True, lonlat=True), minlength=hp.nside2npix(nside))
+    area_deg2 = hp.nside2pixarea(nside, degrees=True)  # 41253/12/nside² deg² (Górski et al. 2005)
+    assert float(np.ma.max(mesh.get_array())) == pytest.approx(counts.max() / area_deg2)
+
+
+def test_funnel_lists_every_stage():
+    fig = plots.cutflow_funnel([("input", 1000), ("matched", 600), ("infrared_colour", 3)])
+    ax = fig.axes[0]
+    assert [t.get_text() for t in ax.get_yticklabels()] == ["input", "matched", "infrared_colour"]
+    assert any("3  (0.30%)" in t.get_text() for t in ax.texts)
+
+
+# --- the page -------------------------------------------------------------------------------------
+
+class _Page(HTMLParser):
+    def __init__(self):
+        super().__init__()
+        self.images, self.tags, self.targets, self.in_targets = [], [], 0, False
+        self.attrs_seen = []
+
+    def handle_starttag(self, tag, attrs):
+        a = dict(attrs)
+        self.tags.append(tag)
+        self.attrs_seen += [(k, v or "") for k, v in attrs]
+        if tag == "img":
+            self.images.append(a.get("src", ""))
+        if tag == "table" and a.get("id") == "targets":
+            self.in_targets = True
+        if tag == "tr" and self.in_targets and a.get("class") == "target":
+            self.targets += 1
+
+    def handle_endtag(self, tag):
+        if tag == "table":
+            self.in_targets = False
+
+
+def _parse(text: str) -> _Page:
+    page = _Page()
+    page.feed(text)
+    return page
+
+
+def _check_self_contained(text: str) -> None:
+    page = _parse(text)
+    assert "script" not in page.tags and "link" not in page.tags and "iframe" not in page.tags
+    for key, value in page.attrs_seen:
+        if key in ("src", "href", "action", "poster", "srcset"):
+            assert value.startswith("data:image/png;base64,"), (key, value[:60])
+    without_data = re.sub(r"data:image/png;base64,[A-Za-z0-9+/=]+", "", text)
+    assert not re.search(r"(?i)\b(?:https?|ftp|wss?):", without_data)
+    assert not re.search(r"(?i)url\s*\(|@import|//[a-z0-9.-]+\.[a-z]{2,}", without_data)
+
+
+@pytest.fixture(scope="module")
+def moved_run(demo_run, tmp_path_factory):
+    """The run folder alone, copied somewhere else (no config file, no ingested tiles beside it)."""
+    dest = tmp_path_factory.mktemp("moved") / "run"
+    shutil.copytree(demo_run.run_dir, dest)
+    return dest
+
+
+def test_report_is_self_contained_and_complete(demo_run, moved_run):
+    out = report.write_report(moved_run, top=20)
+    text = out.read_text(encoding="utf-8")
+    _check_self_contained(text)
+    page = _parse(text)
+    n_cands = load_config_candidates(demo_run)
+    assert page.targets == min(20, n_cands) > 0
+    assert len(page.images) == len(plots.PLOTS)
+    for src in page.images:
+        _png_size(base64.b64decode(src.split(",", 1)[1]))
+    import json
+
+    prov = json.loads((demo_run.run_dir / "provenance.json").read_text())
+    assert prov["config_hash"] in text and prov["match_config_hash"] in text
+    assert "Note:" not in text  # the recorded candidates are what the cache gives
+    assert report.build_report(moved_run, top=20) == text  # no clock in the page
+
+
+def load_config_candidates(cfg) -> int:
+    from selector.io import read_parquet
+
+    return read_parquet(cfg.run_dir / "candidates.parquet").num_rows
+
+
+def test_report_command(moved_run, tmp_path, capsys):
+    out = tmp_path / "page.html"
+    assert main(["report", "--run", str(moved_run), "--out", str(out), "--top", "5"]) == 0
+    assert _parse(out.read_text(encoding="utf-8")).targets == 5
+    assert main(["report", "--run", str(tmp_path / "nowhere")]) == 2
+    err = capsys.readouterr().err.strip()
+    assert "\n" not in err and "provenance.json" in err
+
+
+# --- a real browser -------------------------------------------------------------------------------
+
+_PROBE = """<script>
+window.addEventListener('load', function () {
+  var found = [];
+  for (var i = 0; i < document.images.length; i++) {
+    var im = document.images[i];
+    found.push(im.complete && im.naturalWidth > 0 ? im.naturalWidth + 'x' + im.naturalHeight : 'broken');
+  }
+  document.body.setAttribute('data-probe', found.join(','));
+});
+</script>"""
+
+
+def _browser() -> str | None:
+    return shutil.which("chromium") or shutil.which("chromium-browser")
+
+
+def test_report_renders_in_a_headless_browser(moved_run, tmp_path):
+    exe = _browser()
+    if exe is None:
+        pytest.skip("no headless browser: install Debian's chromium package (.ci/run does this when run as root)")
+    page_path = report.write_report(moved_run, tmp_path / "report.html", top=10)
+    text = page_path.read_text(encoding="utf-8")
+    sizes = [_png_size(base64.b64decode(s.split(",", 1)[1])) for s in _parse(text).images]
+    # a copy with a probe that records, after loading, what the browser decoded for each image
+    probed = tmp_path / "probed.html"
+    probed.write_text(text.replace("</body>", _PROBE + "</body>"), encoding="utf-8")
+    flags = ["--headless", "--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run",
+             "--disable-background-networking", "--disable-component-update", "--disable-sync",
+             "--disable-extensions", "--virtual-time-budget=10000", f"--user-data-dir={tmp_path / 'profile'}"]
+    dom = subprocess.run([exe, *flags, "--dump-dom", probed.as_uri()], capture_output=True, text=True,
+                         timeout=120, check=True).stdout
+    assert _parse(dom).targets == 10
+    probe = re.search(r'data-probe="([^"]*)"', dom)
+    assert probe, "the browser did not finish loading the page"
+    assert probe.group(1).split(",") == [f"{w}x{h}" for w, h in sizes]
+    shot = tmp_path / "shot.png"
+    subprocess.run([exe, *flags, "--window-size=1200,2400", f"--screenshot={shot}", page_path.as_uri()],
+                   capture_output=True, timeout=120, check=True)
+    with Image.open(shot) as im:
+        pixels = np.asarray(im.convert("L"))
+    assert pixels.shape == (2400, 1200)
+    assert pixels.std() > 10  # text, tables and pictures, not a blank page
