@@ -35,7 +35,7 @@ def _cmd_run(args) -> int:
 
     cfg = load_config(args.config)
     result = run(cfg, workers=args.workers, executor=args.executor, scheduler=args.scheduler,
-                 quiet=args.quiet, verbose=args.verbose)
+                 quiet=args.quiet, verbose=args.verbose, force=args.force, config_path=args.config)
     return 0 if result.ok else 1
 
 
@@ -66,6 +66,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--scheduler", default=None, metavar="ADDRESS", help="Dask scheduler address")
     p.add_argument("--quiet", action="store_true", help="print only the final summary")
     p.add_argument("--verbose", action="store_true", help="print a line per tile")
+    p.add_argument("--force", action="store_true", help="recompute every tile, whatever the run manifest says")
     p.set_defaults(func=_cmd_run)
 
     p = sub.add_parser("demo", help="write an invented mock sky, ingest it, run the whole job and score it")

@@ -58,8 +58,15 @@ def _disc_filter(table: pa.Table, tile: int, order: int, margin_arcsec: float) -
     return table.filter(pa.array(xyz @ centre >= cos_limit))
 
 
-def load_tile(cfg: Config, tile: int):
+def load_tile(cfg: Config, tile: int, on_input=None):
     """Read a tile's own astrometric sources and everything within the margins around it.
+
+    Parameters
+    ----------
+    on_input : callable, optional
+        Called as ``on_input(catalogue, tile_id, path, part)`` for every tile file consulted, with
+        the rows taken from it (``None`` when the file does not exist); the batch runner uses it
+        to record exactly what a tile's result depends on.
 
     Returns
     -------
@@ -72,7 +79,10 @@ def load_tile(cfg: Config, tile: int):
     """
     order = cfg.tiling.order
     root = cfg.tiles_dir
-    own = read_parquet(tiles.tile_file(root, "astrometric", order, tile))
+    own_path = tiles.tile_file(root, "astrometric", order, tile)
+    own = read_parquet(own_path)
+    report = on_input or (lambda *args: None)
+    report("astrometric", tile, own_path, own)
     dt = abs(cfg.epoch_difference_yr)
     r = cfg.match.radius_arcsec
     pm_own = _pm_total(own)
@@ -83,8 +93,10 @@ def load_tile(cfg: Config, tile: int):
     ir_parts = []
     for t in tiles.tiles_near(tile, order, ir_margin):
         path = tiles.tile_file(root, "infrared", order, int(t))
-        if path.exists():
-            ir_parts.append(_disc_filter(read_parquet(path), tile, order, ir_margin))
+        part = _disc_filter(read_parquet(path), tile, order, ir_margin) if path.exists() else None
+        report("infrared", int(t), path, part)
+        if part is not None:
+            ir_parts.append(part)
     neighbour_parts = []
     for t in tiles.tiles_near(tile, order, astro_margin):
         path = tiles.tile_file(root, "astrometric", order, int(t))
@@ -92,6 +104,9 @@ def load_tile(cfg: Config, tile: int):
             # neighbours only compete for counterparts: their positions and motions are all we need
             neighbour_parts.append(_disc_filter(read_parquet(path, columns=_NEIGHBOUR_COLUMNS), tile, order,
                                                 astro_margin))
+            report("astrometric", int(t), path, neighbour_parts[-1])
+        elif t != tile:
+            report("astrometric", int(t), path, None)
     infrared = _concat(ir_parts) if ir_parts else _empty_infrared(cfg)
     neighbours = _concat(neighbour_parts) if neighbour_parts else own.select(_NEIGHBOUR_COLUMNS).slice(0, 0)
     return own, neighbours, infrared
@@ -324,7 +339,10 @@ def select(features: pa.Table, cfg: Config, p_quasar: np.ndarray | None = None) 
     c = cfg.colours
     mags = infrared_mags(features, cfg.infrared_bands())
     crit = apply_criteria(mags, c.criteria, c.combine)
-    colour_ok = crit.passed
+    # with a model, the published criteria may be left to the classifier, which then sees every
+    # source that passed the zero-motion test
+    replaced = p_quasar is not None and not cfg.classifier.require_colour_criteria
+    colour_ok = np.ones(n, bool) if replaced else crit.passed
     excess = crit.excess_mag
     if c.linear_cuts:
         quantities = dict(mags)

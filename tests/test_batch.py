@@ -1,0 +1,350 @@
+"""Nightly batch runs: manifest, resumption after SIGKILL, incremental runs, failure isolation, executors.
+
+Every test works on its own copy of one small ingested mock sky (a few dozen order-4 tiles). The
+reference is one uninterrupted run; the other runs must end with the same bytes in every merged
+output, however they got there.
+"""
+
+from __future__ import annotations
+
+import io
+import json
+import os
+import shutil
+import sqlite3
+import subprocess
+import sys
+from pathlib import Path
+
+import pyarrow as pa
+import pyarrow.compute as pc
+import pyarrow.parquet as pq
+import pytest
+
+from selector import batch, cli, demo, tiles
+from selector.config import load_config
+from selector.errors import SelectorError
+from selector.ingest import ingest
+from selector.manifest import Manifest
+
+MERGED = ("candidates.ecsv", "candidates.csv", "candidates.parquet", "cutflow.csv", "provenance.json")
+
+
+def _quiet(*args, **kwargs):
+    pass
+
+
+def _merged_bytes(cfg) -> dict:
+    return {name: (cfg.run_dir / name).read_bytes() for name in MERGED}
+
+
+def _tile_files(cfg) -> dict:
+    return {p.relative_to(cfg.run_dir): p for p in sorted((cfg.run_dir / "tiles").rglob("*")) if p.is_file()}
+
+
+def _tile_bytes(cfg) -> dict:
+    return {rel: p.read_bytes() for rel, p in _tile_files(cfg).items()}
+
+
+def _mtimes(cfg) -> dict:
+    return {rel: p.stat().st_mtime_ns for rel, p in _tile_files(cfg).items()}
+
+
+@pytest.fixture(scope="module")
+def template(tmp_path_factory) -> Path:
+    """The mock catalogues, the demo config and the ingested tiles, not yet run."""
+    root = tmp_path_factory.mktemp("batch") / "template"
+    root.mkdir()
+    demo.write_mock_sky(demo.make_mock_sky(seed=3, scale=0.03), root / "catalogues")
+    ingest(load_config(demo.write_demo_config(root)), log=_quiet)
+    return root
+
+
+@pytest.fixture(scope="module")
+def reference(template, tmp_path_factory) -> dict:
+    """One uninterrupted run: the project folder and the bytes of every output."""
+    root = tmp_path_factory.mktemp("batch") / "reference"
+    shutil.copytree(template, root)
+    cfg = load_config(root / "demo.toml")
+    result = batch.run(cfg, workers=2, quiet=True, log=_quiet)
+    assert result.ok and result.actions["computed"] == result.tiles > 20
+    return {"root": root, "result": result, "merged": _merged_bytes(cfg), "tiles": _tile_bytes(cfg)}
+
+
+def _copy(src: Path, dest: Path):
+    # copy2 keeps sizes and modification times, as moving a project folder would
+    shutil.copytree(src, dest)
+    return load_config(dest / "demo.toml")
+
+
+@pytest.fixture
+def finished(reference, tmp_path):
+    """A private copy of the reference project, run finished."""
+    return _copy(reference["root"], tmp_path / "project")
+
+
+def _cli_run(config: Path, kill_at: str | None, workers: int = 2) -> subprocess.CompletedProcess:
+    env = dict(os.environ)
+    env.pop(batch.KILL_AT_ENV, None)
+    if kill_at:
+        env[batch.KILL_AT_ENV] = kill_at
+    return subprocess.run([sys.executable, "-m", "selector.cli", "run", "--config", str(config), "--workers",
+                           str(workers), "--quiet"], env=env, capture_output=True, text=True, timeout=120)
+
+
+def test_killed_runs_resume_to_identical_outputs(template, reference, tmp_path):
+    """SIGKILL before any tile is recorded, mid-way, and during the merge; each resumed by the next run."""
+    cfg = _copy(template, tmp_path / "project")
+    config = tmp_path / "project" / "demo.toml"
+    n_tiles = reference["result"].tiles
+
+    # 1: the first tile's files are written, but it is not yet recorded
+    proc = _cli_run(config, "tile@1")
+    assert proc.returncode == -9, proc.stderr
+    with Manifest(cfg.run_dir / "manifest.sqlite") as man:
+        assert man.counts()["done"] == 0 and man.counts()["pending"] == n_tiles
+        assert man.runs()[0]["status"] == "running"
+
+    # 2: mid-way, right after the 25th tile is recorded
+    proc = _cli_run(config, "recorded@25")
+    assert proc.returncode == -9, proc.stderr
+    with Manifest(cfg.run_dir / "manifest.sqlite") as man:
+        assert man.counts()["done"] == 25
+    assert not (cfg.run_dir / "candidates.ecsv").exists()
+
+    # 3: during the merge, after the ECSV list and before the CSV one
+    proc = _cli_run(config, "merge:ecsv")
+    assert proc.returncode == -9, proc.stderr
+    assert (cfg.run_dir / "candidates.ecsv").exists() and not (cfg.run_dir / "candidates.csv").exists()
+
+    proc = _cli_run(config, None)
+    assert proc.returncode == 0, proc.stdout + proc.stderr
+    assert _merged_bytes(cfg) == reference["merged"]
+    assert _tile_bytes(cfg) == reference["tiles"]
+    with Manifest(cfg.run_dir / "manifest.sqlite") as man:
+        runs = man.runs()
+        assert [r["status"] for r in reversed(runs)] == ["died", "died", "died", "ok"]
+        assert runs[0]["computed"] == 0  # every tile was recorded before the merge was killed
+        computed = [e["tile"] for e in man.events() if e["action"] == "computed"]
+    # no tile that was recorded as finished was ever computed again
+    assert sorted(computed) == sorted(set(computed)) and len(computed) == n_tiles
+
+
+def test_unchanged_rerun_does_no_tile_work(finished, reference):
+    before = _mtimes(finished)
+    merged_before = {n: (finished.run_dir / n).stat().st_mtime_ns for n in MERGED}
+    result = batch.run(finished, workers=2, quiet=True, log=_quiet)
+    assert result.ok
+    assert result.actions == {"computed": 0, "reselected": 0, "verified": 0, "failed": 0,
+                              "reused": reference["result"].tiles}
+    assert not result.merged
+    assert _mtimes(finished) == before
+    assert {n: (finished.run_dir / n).stat().st_mtime_ns for n in MERGED} == merged_before
+    assert _merged_bytes(finished) == reference["merged"]
+
+
+def test_one_changed_input_recomputes_that_tile_alone(finished, reference, tmp_path):
+    # the top candidate gets a large parallax in the raw astrometric file, then everything is re-ingested
+    top = pq.read_table(finished.run_dir / "candidates.parquet").sort_by([("criteria_score", "descending")])
+    source, tile = top.column("astro_id")[0].as_py(), top.column("tile")[0].as_py()
+    raw_dir = finished.path("catalogues/astrometric")
+    for part in sorted(raw_dir.glob("*.parquet")):
+        table = pq.read_table(part)
+        hit = pc.equal(table.column("srcid"), source)
+        if pc.any(hit).as_py():
+            plx = pc.if_else(hit, 50.0, table.column("plx"))
+            pq.write_table(table.set_column(table.column_names.index("plx"), "plx", plx), part)
+    ingest(finished, log=_quiet)
+    before = _mtimes(finished)
+
+    result = batch.run(finished, workers=2, quiet=True, log=_quiet)
+    assert result.ok and result.actions["computed"] == 1 and result.actions["reselected"] == 0
+    with Manifest(finished.run_dir / "manifest.sqlite") as man:
+        worked = {e["tile"]: e["action"] for e in man.events(result.run_id)}
+    assert [t for t, a in worked.items() if a == "computed"] == [tile]
+    # the neighbours that read the file only re-read its positions and motions, which did not change
+    assert set(a for t, a in worked.items() if t != tile) <= {"verified"}
+    changed = {rel for rel, m in _mtimes(finished).items() if before[rel] != m}
+    assert changed and {rel.parts[1] for rel in changed} == {f"tile{tile:08d}"}
+    assert result.candidates == reference["result"].candidates - 1
+
+    # the incremental result is the one a full recomputation gives
+    forced = _copy(Path(finished.base_dir), tmp_path / "forced")
+    full = batch.run(forced, workers=2, quiet=True, log=_quiet, force=True)
+    assert full.actions["computed"] == reference["result"].tiles
+    assert _merged_bytes(forced) == _merged_bytes(finished)
+
+
+def _edit_config(cfg, old: str, new: str):
+    path = Path(cfg.base_dir) / "demo.toml"
+    text = path.read_text()
+    assert text.count(old) == 1, old
+    path.write_text(text.replace(old, new))
+    return load_config(path)
+
+
+def test_selection_change_reuses_the_feature_cache_and_match_change_recomputes(finished, reference):
+    features = {rel: m for rel, m in _mtimes(finished).items() if rel.name == "features.parquet"}
+    loose = _edit_config(finished, "parallax_snr_max = 3.0", "parallax_snr_max = 5.0")
+    result = batch.run(loose, workers=2, quiet=True, log=_quiet)
+    n = reference["result"].tiles
+    assert result.actions["reselected"] == n and result.actions["computed"] == 0
+    assert dict(result.cutflow)["parallax"] > dict(reference["result"].cutflow)["parallax"]
+    assert {rel: m for rel, m in _mtimes(finished).items() if rel.name == "features.parquet"} == features
+
+    # back to the original cuts: re-selection from the cache gives the bytes of the first computation
+    back = _edit_config(finished, "parallax_snr_max = 5.0", "parallax_snr_max = 3.0")
+    result = batch.run(back, workers=2, quiet=True, log=_quiet)
+    assert result.actions["reselected"] == n
+    assert _merged_bytes(back) == reference["merged"] and _tile_bytes(back) == reference["tiles"]
+
+    wider = _edit_config(finished, "radius_arcsec = 2.0", "radius_arcsec = 2.5")
+    result = batch.run(wider, workers=2, quiet=True, log=_quiet)
+    assert result.actions["computed"] == n
+
+
+def test_second_run_on_the_same_folder_is_refused(finished, capsys):
+    with Manifest(finished.run_dir / "manifest.sqlite") as man:
+        n_runs = len(man.runs())
+    with batch.run_lock(finished):
+        with pytest.raises(SelectorError, match=rf"{finished.run_dir}: another `selector run` .*pid {os.getpid()}"):
+            batch.run(finished, workers=1, quiet=True, log=_quiet)
+        code = cli.main(["run", "--config", str(Path(finished.base_dir) / "demo.toml"), "--quiet"])
+    assert code == 2
+    err = capsys.readouterr().err
+    assert "another `selector run` is using this folder" in err and str(finished.run_dir) in err
+    assert len(err.strip().splitlines()) == 1
+    with Manifest(finished.run_dir / "manifest.sqlite") as man:
+        assert len(man.runs()) == n_runs  # the refused run recorded nothing
+    assert batch.run(finished, workers=1, quiet=True, log=_quiet).ok  # free again afterwards
+
+
+def test_corrupt_tiles_fail_alone_and_a_retry_redoes_only_them(finished, reference, capsys):
+    order = finished.tiling.order
+    with Manifest(finished.run_dir / "manifest.sqlite") as man:
+        inputs = {t: set(r["inputs"]) for t, r in man.tiles().items()}
+    ids = sorted(inputs)
+    bad_astro = tiles.tile_file(finished.tiles_dir, "astrometric", order, ids[len(ids) // 3])
+    bad_ir_tile = tiles.list_tiles(finished.tiles_dir, "infrared", order)[-1]
+    bad_ir = tiles.tile_file(finished.tiles_dir, "infrared", order, bad_ir_tile)
+    saved = {p: p.read_bytes() for p in (bad_astro, bad_ir)}
+    bad_astro.write_bytes(saved[bad_astro][: len(saved[bad_astro]) // 2])  # truncated
+    ir = pq.read_table(bad_ir)
+    pq.write_table(ir.drop(["ir_4p6_vegamag"]), bad_ir)  # wrong schema
+    rel = {str(p.relative_to(finished.tiles_dir)) for p in (bad_astro, bad_ir)}
+    expected_failed = {t for t, used in inputs.items() if used & rel}
+
+    code = cli.main(["run", "--config", str(Path(finished.base_dir) / "demo.toml"), "--workers", "2", "--quiet"])
+    out = capsys.readouterr().out
+    assert code == 1
+    with Manifest(finished.run_dir / "manifest.sqlite") as man:
+        records = man.tiles()
+        last = man.runs()[0]
+    failed = {t for t, r in records.items() if r["status"] == "failed"}
+    assert failed == expected_failed and len(failed) < len(ids) // 2
+    assert last["status"] == "incomplete" and last["failed"] == len(failed)
+    assert all(r["status"] == "done" for t, r in records.items() if t not in failed)
+    for t in failed:
+        error = records[t]["error"]
+        assert "\n" not in error and (str(bad_astro) in error or str(bad_ir) in error)
+    assert any("column 'ir_4p6_vegamag' is missing" in records[t]["error"] for t in failed)
+    assert any("cannot read" in records[t]["error"] for t in failed)
+    assert f"INCOMPLETE: {len(failed)} of {len(ids)} tiles failed" in out
+    assert f"selector run --config {Path(finished.base_dir) / 'demo.toml'}" in out
+    prov = json.loads((finished.run_dir / "provenance.json").read_text())
+    assert prov["complete"] is False and prov["failed_tiles"] == sorted(failed)
+    assert prov["tiles"] == len(ids) - len(failed)
+    status = batch.status_text(finished)
+    assert f"{len(failed)} failed" in status and f"failed tiles ({len(failed)})" in status
+
+    for p, data in saved.items():
+        p.write_bytes(data)
+    result = batch.run(finished, workers=2, quiet=True, log=_quiet)
+    assert result.ok and result.actions["computed"] == len(failed)
+    assert result.actions["reused"] == len(ids) - len(failed)
+    assert _merged_bytes(finished) == reference["merged"]
+
+
+def test_row_accounting_that_does_not_add_up_fails_the_run(finished):
+    db = sqlite3.connect(finished.run_dir / "manifest.sqlite")
+    with db:
+        db.execute("UPDATE tiles SET rows = rows + 1 WHERE tile = (SELECT MIN(tile) FROM tiles)")
+    db.close()
+    with pytest.raises(SelectorError, match="row accounting does not add up"):
+        batch.run(finished, workers=1, quiet=True, log=_quiet)
+    with Manifest(finished.run_dir / "manifest.sqlite") as man:
+        assert man.runs()[0]["status"] == "failed"
+
+
+def test_account_checks_tiles_against_the_ingest_summary():
+    flow = [["input", 10], ["matched", 6], ["colour", 2]]
+    tiles_ = [{"tile": 1, "rows": 11, "rejects": 1, "cutflow": flow},
+              {"tile": 2, "rows": 10, "rejects": 0, "cutflow": flow}]
+    ingest_ok = {"astrometric": {"rows_in": 30, "accepted": 28, "rejected_total": 2}}
+    lines = batch.account(tiles_, 4, ingest_ok, failed={3: "broken"}, expected_rows={1: 11, 2: 10, 3: 7})
+    assert "30 = 2 ingest rejects + 21 in finished tiles + 7 in failed tiles" in lines[0]
+    assert "21 in 2 tiles = 4 candidates + 16 removed by cuts + 1 tile rejects" in lines[1]
+    with pytest.raises(SelectorError, match="not 2 ingest rejects"):
+        batch.account(tiles_, 4, ingest_ok)  # tile 3's rows are nowhere
+    with pytest.raises(SelectorError, match="does not add up"):
+        batch.account(tiles_, 5, None)
+
+
+def test_progress_is_one_updating_line_on_a_terminal_and_plain_lines_otherwise(tmp_path):
+    class Terminal(io.StringIO):
+        def isatty(self):
+            return True
+
+    shown = []
+    term = Terminal()
+    rep = batch._Reporter(shown.append, quiet=False, verbose=False, log_path=tmp_path / "a.log", interval_s=3600,
+                          stream=term)
+    for done in range(1, 4):
+        rep.progress(done, 10, 100 * done, 0)
+        rep.last_draw = 0.0  # draw every update
+    rep.info("a message")
+    rep.progress(10, 10, 1000, 1, final=True)
+    rep.close()
+    text = term.getvalue()
+    assert text.count("\n") == 1 and text.endswith("elapsed\x1b[K\n")  # the last state stays on screen
+    assert text.count("\r") >= 4 and "tiles 3/10" in text and "left" in text
+    assert shown == ["a message"]
+    plain = io.StringIO()
+    rep = batch._Reporter(shown.append, quiet=False, verbose=True, log_path=tmp_path / "b.log", interval_s=3600,
+                          stream=plain)
+    rep.progress(1, 10, 100, 0)
+    rep.progress(2, 10, 200, 0)  # within the interval: not printed
+    rep.detail("tile 5: computed")
+    rep.progress(10, 10, 1000, 0, final=True)
+    rep.close()
+    lines = plain.getvalue().splitlines()
+    assert len(lines) == 2 and "\r" not in plain.getvalue() and lines[1].startswith("tiles 10/10 · 1,000 rows")
+    assert shown[-1] == "tile 5: computed"
+    assert "tile 5: computed" in (tmp_path / "b.log").read_text()
+
+
+def test_quiet_verbose_log_file_and_status(finished, capsys):
+    cfg = _edit_config(finished, "pm_pvalue_min = 0.001", "pm_pvalue_min = 0.002")
+    printed = []
+    result = batch.run(cfg, workers=1, verbose=True, log=printed.append)
+    per_tile = [line for line in printed if line.startswith("tile ") and "reselected" in line]
+    assert len(per_tile) == result.actions["reselected"] > 0
+    log_text = result.log_file.read_text()
+    assert result.log_file.name == f"run-{result.run_id}.log" and "infrared_colour" in log_text
+    printed.clear()
+    batch.run(cfg, workers=1, quiet=True, log=printed.append)
+    assert len(printed) == 1 and printed[0].startswith(f"run {result.run_id + 1}: 0 tiles computed")
+    assert cli.main(["status", "--config", str(Path(cfg.base_dir) / "demo.toml")]) == 0
+    out = capsys.readouterr().out
+    assert f"tiles: {result.tiles} — {result.tiles} done, 0 failed, 0 pending" in out
+    assert out.count(" ok ") >= 3
+
+
+def test_dask_executor_gives_the_local_bytes(template, reference, tmp_path):
+    distributed = pytest.importorskip("distributed", reason="dask[distributed] is not installed (the test extra has it)")
+    cfg = _copy(template, tmp_path / "project")
+    with distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True, dashboard_address=None) as cluster:
+        result = batch.run(cfg, executor="dask", scheduler=cluster.scheduler_address, quiet=True, log=_quiet)
+    assert result.ok and result.actions["computed"] == reference["result"].tiles
+    assert _merged_bytes(cfg) == reference["merged"]
+    assert _tile_bytes(cfg) == reference["tiles"]
