@@ -46,7 +46,7 @@ from .config import MATCH_SECTIONS, SELECTION_SECTIONS, Config, config_hash, pla
 from .errors import InputError, SelectorError
 from .io import file_sha256, read_parquet, write_json, write_parquet, write_table, write_text
 from .manifest import Manifest, pid_alive, utc_now
-from .pipeline import check_accounting, load_tile, match_tile, select_tile, sort_by_score, tile_output_dir
+from .pipeline import rank_candidates, check_accounting, load_tile, match_tile, select_tile, sort_by_score, tile_output_dir
 
 #: Files of a tile that depend only on the matching (the feature cache).
 FEATURE_FILES = ("features.parquet",)
@@ -1030,8 +1030,6 @@ def _ranked_table(cfg: Config, candidates: pa.Table, prov: dict):
     """The merged ranked list as an astropy Table with units and provenance in its metadata."""
     from astropy.table import Table
 
-    candidates = sort_by_score(candidates)
-    candidates = candidates.add_column(0, "rank", pa.array(np.arange(1, candidates.num_rows + 1, dtype=np.int64)))
     cols = {}
     for name in candidates.column_names:
         arr = candidates.column(name)
@@ -1077,6 +1075,9 @@ def merge(cfg: Config, summaries: list[dict], prov: dict, fault=None) -> RunResu
     if len(np.unique(ids)) != len(ids):
         raise SelectorError("internal error: a source appears in more than one tile's candidates")
     flow = total_cutflow(summaries)
+    if candidates.num_rows:
+        # every merged format carries the same ranked rows, the Parquet copy included
+        candidates = rank_candidates(candidates)
     table = _ranked_table(cfg, candidates, prov) if candidates.num_rows else None
     outputs = _merged_paths(cfg)
     if table is None:

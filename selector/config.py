@@ -193,10 +193,63 @@ class RankingConfig:
     brightness_weight: float = setting(0.1, min=0.0, doc="score per magnitude brighter than the pivot")
 
 
+#: Classes the classifier tells apart (brown dwarfs are counted as stars).
+CLASSIFIER_CLASSES = ("quasar", "star", "galaxy")
+
+
+def _default_class_map() -> dict[str, str]:
+    return {"agn": "quasar", "brown_dwarf": "star", "galaxy": "galaxy", "qso": "quasar", "quasar": "quasar",
+            "star": "star"}
+
+
+@dataclass(frozen=True)
+class LabelsFileConfig:
+    """A labelled file for training, matched to the feature cache by identifier or by position."""
+
+    file: str = setting(doc="labelled file (Parquet, FITS, CSV, ECSV or VOTable), relative to the config file")
+    class_column: str = setting(doc="column holding the class as text (mapped through classifier.class_map)")
+    format: str = setting("auto", choices=FORMATS, doc="input format; auto guesses from the file ending")
+    id_column: Optional[str] = setting(None, doc="column matched against the astrometric identifier (as text)")
+    ra_column: Optional[str] = setting(None, doc="right ascension column (deg, ICRS), to match by position instead")
+    dec_column: Optional[str] = setting(None, doc="declination column (deg, ICRS), to match by position instead")
+
+    def _check(self, where):
+        if self.id_column is None and (self.ra_column is None or self.dec_column is None):
+            raise ConfigError(f"{where} needs id_column, or ra_column and dec_column, to match its rows to sources")
+        if self.id_column is not None and (self.ra_column is not None or self.dec_column is not None):
+            raise ConfigError(f"{where}: give id_column or ra_column/dec_column, not both")
+
+
 @dataclass(frozen=True)
 class ClassifierConfig:
     model: Optional[str] = setting(None, doc="model file written by `selector train`, relative to the config file")
     threshold: float = setting(0.5, min=0.0, max=1.0, doc="keep candidates with P(quasar) ≥ this when a model is set")
+    require_colour_criteria: bool = setting(True, doc="with a model, still require [colours] criteria (true) or let "
+                                                      "P(quasar) replace them (false)")
+    labels: Optional[LabelsFileConfig] = setting(None, doc="a labelled file for training")
+    use_known: bool = setting(True, doc="also label training sources from the ingested [known] catalogue")
+    known_radius_arcsec: float = setting(1.0, min=0.0, min_exclusive=True, max=60.0,
+                                         doc="match radius of known objects and positional labels")
+    class_map: dict[str, str] = setting(default_factory=_default_class_map, choices=CLASSIFIER_CLASSES,
+                                        doc="label text (case-insensitive) → quasar, star or galaxy; others dropped")
+    folds: int = setting(5, min=2, max=20, doc="cross-validation folds, grouped by sky region")
+    group_order: int = setting(3, min=0, max=12, doc="HEALPix order of the sky regions grouping the folds "
+                                                     "(the coarser of this and tiling.order is used)")
+    class_weight: str = setting("balanced", choices=("balanced", "none"), doc="weight classes inversely to their size")
+    calibration: str = setting("sigmoid", choices=("sigmoid", "isotonic"), doc="probability calibration method")
+    max_iter: int = setting(200, min=1, max=5000, doc="boosting iterations")
+    learning_rate: float = setting(0.1, min=0.0, min_exclusive=True, max=1.0, doc="boosting learning rate")
+    max_leaf_nodes: int = setting(31, min=2, max=1024, doc="leaves per tree")
+    min_samples_leaf: int = setting(20, min=1, doc="smallest number of training rows in a leaf")
+    l2_regularization: float = setting(0.0, min=0.0, doc="L2 penalty on leaf values")
+    permutation_repeats: int = setting(3, min=1, max=100, doc="shuffles per feature for permutation importances")
+    threads: int = setting(1, min=0, max=1024, doc="threads for training; 0 means one per core")
+    output_folder: str = setting("model", doc="folder below project.output_dir for the model, card and evaluation")
+
+    def _check(self, where):
+        for key in self.class_map:
+            if not key.strip():
+                raise ConfigError(f"{where}.class_map has an empty label; give the class text as it appears in the data")
 
 
 @dataclass(frozen=True)
@@ -204,6 +257,10 @@ class RunConfig:
     workers: int = setting(0, min=0, max=1024, doc="worker processes; 0 means one per core")
     executor: str = setting("local", choices=("local", "dask"), doc="local processes or a Dask cluster")
     scheduler: Optional[str] = setting(None, doc="Dask scheduler address; a local cluster when absent")
+    progress_interval_s: float = setting(30.0, min=0.1, max=86400.0,
+                                         doc="seconds between progress lines when the output is not a terminal")
+    merge_incomplete: bool = setting(True, doc="when tiles fail, merge the finished ones (marked incomplete) "
+                                               "instead of leaving the previous merged outputs")
 
 
 @dataclass(frozen=True)

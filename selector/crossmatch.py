@@ -41,8 +41,8 @@ _ARCSEC_PER_RAD = 648000.0 / np.pi
 _XYZ_BLOCK = 1 << 16
 # Below this many rows threads and spatial sorting cost more than they save.
 _SMALL = 1 << 15
-# Query rows per k-d tree call; bounds the (rows, k) temporaries at a few tens of MB.
-_QUERY_BLOCK = 1 << 20
+# Query rows per k-d tree call: small blocks balance the threads and keep temporaries in cache.
+_QUERY_BLOCK = 1 << 15
 # Neighbours asked for in the first pass. Real catalogues rarely have more than one counterpart
 # inside a few arcsec, and k = 2 costs about as much as k = 1.
 _FIRST_K = 2
@@ -259,37 +259,51 @@ def _hits(start: int, rows, dist: np.ndarray, idx: np.ndarray, n_tree: int):
             dist.ravel()[pos])
 
 
-def _candidates(tree: cKDTree, n_tree: int, xq: np.ndarray, bound: float, workers: int):
-    """Every tree point within ``bound`` of each query row.
-
-    Returns (query row, tree index, chord) for all hits. Each row's hits are contiguous and in the
-    tree's distance order, because every row is answered by exactly one k-nearest query.
-    """
-    parts = []
-    for start in range(0, xq.shape[0], _QUERY_BLOCK):
-        block = xq[start:start + _QUERY_BLOCK]
-        k = min(_FIRST_K, n_tree)
-        dist, idx = tree.query(block, k=k, distance_upper_bound=bound, workers=workers)
-        dist, idx = dist.reshape(-1, k), idx.reshape(-1, k)
-        full = np.flatnonzero(idx[:, -1] < n_tree) if k < n_tree else np.empty(0, np.int64)
-        idx[full] = n_tree  # rows that may have more neighbours are answered again below
-        parts.append(_hits(start, None, dist, idx, n_tree))
-        if full.size == 0:
-            continue
+def _block_candidates(tree: cKDTree, n_tree: int, block: np.ndarray, start: int, bound: float):
+    """(query row, tree index, chord) of every tree point within ``bound`` of the rows of one block."""
+    k = min(_FIRST_K, n_tree)
+    dist, idx = tree.query(block, k=k, distance_upper_bound=bound)
+    dist, idx = dist.reshape(-1, k), idx.reshape(-1, k)
+    full = np.flatnonzero(idx[:, -1] < n_tree) if k < n_tree else np.empty(0, np.int64)
+    idx[full] = n_tree  # rows that may have more neighbours are answered again below
+    parts = [_hits(start, None, dist, idx, n_tree)]
+    if full.size:
         # Exact neighbour counts first, then one k-nearest query per power-of-two class of k: the
         # (rows, k) answers never exceed twice the pairs they hold, however crowded the field.
         pts = block[full]
-        count = np.asarray(tree.query_ball_point(pts, bound, return_length=True, workers=workers))
+        count = np.asarray(tree.query_ball_point(pts, bound, return_length=True))
         k_row = np.left_shift(1, np.ceil(np.log2(np.maximum(count, 1))).astype(np.int64))
         k_row = np.minimum(np.maximum(k_row, 2 * _FIRST_K), n_tree)
         for k in np.unique(k_row):
+            k = int(k)
             sel = np.flatnonzero(k_row == k)
-            step = max(1, _MAX_ANSWER // int(k))
+            step = max(1, _MAX_ANSWER // k)
             for s in range(0, sel.size, step):
                 rows = sel[s:s + step]
-                dist, idx = tree.query(pts[rows], k=int(k), distance_upper_bound=bound, workers=workers)
-                parts.append(_hits(start, full[rows], dist.reshape(-1, int(k)), idx.reshape(-1, int(k)),
-                                   n_tree))
+                dist, idx = tree.query(pts[rows], k=k, distance_upper_bound=bound)
+                parts.append(_hits(start, full[rows], dist.reshape(-1, k), idx.reshape(-1, k), n_tree))
+    return parts
+
+
+def _candidates(tree: cKDTree, n_tree: int, xq: np.ndarray, bound: float, nthreads: int):
+    """Every tree point within ``bound`` of each query row.
+
+    Returns (query row, tree index, chord) for all hits. Each row's hits are contiguous and in the
+    tree's distance order, because every row is answered by exactly one k-nearest query. Blocks go
+    to a thread pool rather than to the tree's own ``workers``: the tree splits its work into equal
+    shares up front, which stalls on a machine where other processes hold some of the cores.
+    """
+    starts = range(0, xq.shape[0], _QUERY_BLOCK)
+
+    def job(s):
+        return _block_candidates(tree, n_tree, xq[s:s + _QUERY_BLOCK], s, bound)
+
+    if nthreads > 1 and len(starts) > 1:
+        with ThreadPoolExecutor(max_workers=nthreads) as pool:  # the tree releases the GIL
+            blocks = list(pool.map(job, starts))
+    else:
+        blocks = [job(s) for s in starts]
+    parts = [p for b in blocks for p in b]
     if not parts:
         e = np.empty(0, np.int64)
         return e, e, np.empty(0, np.float64)
@@ -375,13 +389,15 @@ def pairs_within(ra_a_deg, dec_a_deg, ra_b_deg, dec_b_deg, radius_arcsec, *, wor
 
     Notes
     -----
-    The k-d tree (Bentley 1975) is built on the smaller catalogue, in a background thread while the
-    larger one is converted and put in a spatial order; the larger one then queries it on every
-    core. Candidates within a slightly enlarged chord whose chord is within a relative 1e-9 of the
-    radius are re-tested with the exact inequality used by
-    :func:`astropy.coordinates.search_around_sky`, so the pair set is identical to that reference.
-    Separations are ``2 asin(chord/2)`` (a few ulp at sub-arcsec scales, unlike the cosine formula)
-    and ``atan2(|u×v|, u·v)`` beyond 90 deg.
+    Both catalogues become unit vectors and are put in a coarse spatial order (cache locality). A
+    k-d tree (Bentley 1975) is built on the smaller one, in a background thread while the larger one
+    is being prepared, and the larger one asks it for its nearest neighbours within a chord a
+    relative 1e-8 larger than ``2 sin(radius/2)``, on every core. Candidates whose chord lies within
+    a relative 1e-9 of the radius are then re-tested with the exact inequality of
+    :func:`astropy.coordinates.search_around_sky` (squared chord summed over x, y, z <= squared
+    radius), so the pair set is identical to that reference. Separations are ``2 asin(chord/2)``,
+    good to a few ulp at sub-arcsec scales where the cosine formula fails, and
+    ``atan2(|u×v|, u·v)`` beyond 90 deg.
     """
     r = chord_from_arcsec(radius_arcsec)
     nthreads = _n_workers(workers)

@@ -17,12 +17,16 @@ pipeline meets realistic numbers:
   and proper motions follow from the 4.74 km/s factor;
 * nearby brown dwarfs with large parallaxes and proper motions and red 3.4−4.6 µm colours;
 * compact galaxies, at rest, with intermediate infrared colours and a poor astrometric fit;
+* dusty star-forming galaxies, at rest, faint at 4.6 µm, with 3.4−4.6 µm colours reaching about
+  1.0 and a moderately poor fit: the galaxies that leak into infrared colour selections;
 * quasars, at rest, with a smooth invented 3.4−4.6 µm colour–redshift relation, plus a handful of
-  very bright ones and some optically obscured ones that appear only in the infrared;
+  very bright ones, some optically obscured ones that appear only in the infrared, and a share at
+  high redshift whose colours fall below 0.8;
 * astrometric errors that grow with magnitude as in modern space astrometry, correlated
   proper-motion noise, infrared photometric noise from a flux-limited detection model, blends of two
-  optical sources inside one infrared beam, and true motion applied between the two epochs by
-  3-D unit-vector propagation.
+  optical sources inside one infrared beam, a few infrared sources whose flux includes an unrelated
+  red source below the detection limit (which turns some faint stars red), and true motion applied
+  between the two epochs by 3-D unit-vector propagation.
 
 Only :func:`make_mock_sky`, :func:`write_mock_sky`, :class:`MockSky` and the module constants are
 public; everything prefixed with ``_`` may change.
@@ -66,9 +70,9 @@ INFRARED_EPOCH_JYEAR = 2013.5
 #: both catalogues with good signal-to-noise (4.6 µm S/N of about 10 or more), so a sound
 #: selection should recover nearly all of those that pass its colour cut.  The 4.6 µm value
 #: matches the magnitude limit of the Stern et al. 2012 (ApJ 753, 30) criterion.  The truth
-#: table's ``above_completeness`` column applies these limits; at ``scale=1`` about 1650–1700
-#: quasars (3.4 per deg^2) are above them, of which about 97 % have 3.4−4.6 µm colours of 0.8 or
-#: redder.
+#: table's ``above_completeness`` column applies these limits; at ``scale=1`` about 1600–1650
+#: quasars (3.3 per deg^2) are above them, of which about 95 % have measured 3.4−4.6 µm colours of
+#: 0.8 or redder (the rest are mostly at high redshift).
 COMPLETENESS = {"opt_broad_abmag_max": 20.0, "ir_4p6_vegamag_max": 15.0}
 
 # --------------------------------------------------------------------------------------------
@@ -125,6 +129,20 @@ _OBSCURED_QUASAR_DENSITY_PER_DEG2 = 4.0
 _GALAXY_DENSITY_PER_DEG2 = 70.0
 #: Only a fraction of compact galaxies make it into a point-source astrometric catalogue.
 _GALAXY_OPTICAL_FRACTION = 0.35
+#: Dusty star-forming galaxies, faint at 4.6 µm; more of them look point-like than ordinary
+#: galaxies because their light is concentrated in a compact starburst (invented numbers).
+_DUSTY_GALAXY_DENSITY_PER_DEG2 = 6.0
+_DUSTY_GALAXY_OPTICAL_FRACTION = 0.6
+#: Share of quasars drawn at high redshift (z 3.3–4.0), where the rest-frame near-infrared bump
+#: moving through the bands lowers 3.4−4.6 µm below 0.8 for many of them.
+_HIGH_Z_QUASAR_FRACTION = 0.06
+_HIGH_Z_RANGE = (3.3, 4.0)
+#: Share of infrared sources whose measured flux includes an unrelated red source below the
+#: detection limit inside the beam (confusion), and that source's 4.6 µm magnitude range (Vega)
+#: and 3.4−4.6 µm colour (invented, realistic in spirit).
+_IR_CONFUSION_FRACTION = 0.03
+_IR_CONFUSION_M46 = (14.6, 17.0)
+_IR_CONFUSION_COLOUR = (1.0, 0.15)
 _BROWN_DWARF_DENSITY_PER_DEG2 = 0.06
 _BRIGHT_QUASARS_AT_SCALE_1 = 7
 #: Fraction of well-detected optical+infrared sources that get a second optical source in the beam.
@@ -606,6 +624,8 @@ def _make_quasars(rng, scale):
     n = len(patch)
     broad0 = _power_law_mags(rng, n, 21.5, 16.0, 0.4)
     z = 0.3 + 3.7 * rng.beta(2.0, 3.0, n)
+    high = rng.random(n) < _HIGH_Z_QUASAR_FRACTION
+    z = np.where(high, rng.uniform(*_HIGH_Z_RANGE, n), z)
     return _quasar_like(rng, xyz, patch, _QUASAR, broad0, z)
 
 
@@ -665,6 +685,41 @@ def _make_galaxies(rng, scale):
         red=broad - 0.55 * colour + (_EXT_PER_AV["red"] - _EXT_PER_AV["broad"]) * av,
         ir=ir, fit_excess=10 ** (0.4 + 0.15 * rng.standard_normal(n)),
         optical_prob=_GALAXY_OPTICAL_FRACTION,
+    )
+
+
+def _make_dusty_galaxies(rng, scale):
+    """Dusty star-forming galaxies at rest: faint at 4.6 µm, 3.4−4.6 µm colours of 0.4–1.05.
+
+    Hot dust around young stars, plus a weak buried nucleus in some, pushes their colour toward
+    the quasar locus; they are very bright at 12 µm (warm dust and aromatic bands), somewhat
+    extended in the optical, and optically faint for their infrared flux.  These are the galaxies
+    that leak into infrared colour selections near their faint limit (invented relations, realistic
+    in spirit).
+    """
+    counts = _per_patch_counts(rng, _DUSTY_GALAXY_DENSITY_PER_DEG2, scale)
+    patch = np.repeat(np.arange(len(_PATCHES)), counts)
+    xyz = _sample_caps(rng, patch)
+    n = len(patch)
+    av = _extragalactic_av(xyz)
+    m46 = _power_law_mags(rng, n, 16.3, 13.8, 0.5)
+    c_34_46 = 0.4 + 0.65 * rng.beta(2.0, 2.0, n)
+    m34 = m46 + c_34_46
+    m120 = m46 - (3.6 + 0.4 * rng.standard_normal(n))
+    m220 = m120 - (2.6 + 0.3 * rng.standard_normal(n))
+    z = np.clip(0.3 + 0.25 * (m46 - 13.8) + 0.1 * rng.standard_normal(n), 0.05, 1.5)
+    broad0 = m34 + 3.3 + 0.5 * rng.standard_normal(n)
+    colour = 0.9 + 0.5 * rng.random(n)
+    broad = broad0 + _EXT_PER_AV["broad"] * av
+    ir = np.stack([m34, m46, m120, m220], axis=1)
+    ir = ir + av[:, None] * np.array([_EXT_PER_AV[b] for b in _IR_BANDS])
+    return _objects(
+        pop=np.full(n, _GALAXY), patch=patch, xyz=xyz, parallax=0.0, pmra=0.0, pmdec=0.0,
+        redshift=z, broad=broad,
+        blue=broad + 0.45 * colour + (_EXT_PER_AV["blue"] - _EXT_PER_AV["broad"]) * av,
+        red=broad - 0.55 * colour + (_EXT_PER_AV["red"] - _EXT_PER_AV["broad"]) * av,
+        ir=ir, fit_excess=10 ** (0.18 + 0.12 * rng.standard_normal(n)),
+        optical_prob=_DUSTY_GALAXY_OPTICAL_FRACTION,
     )
 
 
@@ -907,6 +962,7 @@ def _true_sky(rng, scale):
     objs = _concat(star_parts + [
         _make_brown_dwarfs(rng, scale),
         _make_galaxies(rng, scale),
+        _make_dusty_galaxies(rng, scale),
         _make_quasars(rng, scale),
         _make_obscured_quasars(rng, scale),
         _make_bright_quasars(rng, scale),
@@ -951,6 +1007,13 @@ def _observe_infrared(rng, objs, partner):
     w_comp = 10 ** (-0.4 * objs["ir"][comp, 0])
     centroid = ir_xyz[rows] * w_own[:, None] + objs["xyz_ir"][comp] * w_comp[:, None]
     ir_xyz[rows] = centroid / np.linalg.norm(centroid, axis=1)[:, None]
+    # Confusion: an unrelated red source below the detection limit adds its flux (not its
+    # position: it is faint and sits well inside the beam).  Faint blue stars become red this way.
+    confused = np.flatnonzero(rng.random(len(owner)) < _IR_CONFUSION_FRACTION)
+    bg46 = rng.uniform(*_IR_CONFUSION_M46, len(confused))
+    bg34 = bg46 + _IR_CONFUSION_COLOUR[0] + _IR_CONFUSION_COLOUR[1] * rng.standard_normal(len(confused))
+    background = np.stack([bg34, bg46, bg46 - 2.5, bg46 - 4.5], axis=1)
+    ir_true[confused] = _combine_mags(ir_true[confused], background)
 
     # Noise in flux units of the 1-sigma background: observed S/N = true S/N + N(0, 1).
     n_own = len(owner)

@@ -413,6 +413,12 @@ def candidates_table(features: pa.Table, sel: Selection) -> pa.Table:
     return sort_by_score(out)
 
 
+def rank_candidates(table: pa.Table) -> pa.Table:
+    """The merged ranked list: sorted by score (then id) with a ``rank`` column from 1."""
+    table = sort_by_score(table)
+    return table.add_column(0, "rank", pa.array(np.arange(1, table.num_rows + 1, dtype=np.int64)))
+
+
 def sort_by_score(table: pa.Table) -> pa.Table:
     key = "p_quasar" if "p_quasar" in table.column_names else "criteria_score"
     if table.num_rows == 0:

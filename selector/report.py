@@ -86,12 +86,13 @@ def _cell(value, fmt: str) -> str:
 
 
 def _targets_table(cands: pa.Table, top: int) -> str:
-    from .pipeline import sort_by_score
+    from .pipeline import rank_candidates
 
     if cands.num_rows == 0:
         return "<p id='no-targets'>No candidates in this run.</p>"
-    ranked = sort_by_score(cands).slice(0, top)
-    ranked = ranked.add_column(0, "rank", pa.array(np.arange(1, ranked.num_rows + 1, dtype=np.int64)))
+    if "rank" in cands.column_names:
+        cands = cands.drop(["rank"])
+    ranked = rank_candidates(cands).slice(0, top)
     cols = [(c, h, f) for c, h, f in TABLE_COLUMNS if c in ranked.column_names]
     head = "".join(f"<th class='{'text' if f == '{}' else ''}'>{_e(h)}</th>" for _, h, f in cols)
     data = {c: ranked.column(c).to_pylist() for c, _, _ in cols}

@@ -564,9 +564,8 @@ def _tile_selection(ev: Evaluation, s: slice) -> pipeline.Selection:
 def candidates(cache: FeatureCache, ev: Evaluation) -> pa.Table:
     """Every column of the candidates of ``ev``, as the run's merged ``candidates.parquet`` holds them.
 
-    Per tile (in tile order) the candidates are sorted by score then id, exactly as
-    :func:`selector.pipeline.candidates_table` sorts them; full rows are read only for tiles
-    that have candidates.
+    Ranked over all tiles by score then id (:func:`selector.pipeline.rank_candidates`, as the
+    merge does); full rows are read only for tiles that have candidates.
     """
     passed_tiles = np.unique(np.searchsorted(cache.offsets, np.flatnonzero(ev.passed), side="right") - 1)
     parts = []
@@ -575,7 +574,7 @@ def candidates(cache: FeatureCache, ev: Evaluation) -> pa.Table:
         parts.append(pipeline.candidates_table(_tile_features(cache, int(i)), _tile_selection(ev, s)))
     if not parts:
         return pa.table({"astro_id": pa.array([], pa.int64())})
-    return pa.concat_tables(parts, promote_options="permissive")
+    return pipeline.rank_candidates(pa.concat_tables(parts, promote_options="permissive"))
 
 
 def write_results(ev: Evaluation, config_path=None, log=print):

@@ -206,3 +206,13 @@ def test_run_is_deterministic(mock_run, tmp_path):
     run(cfg, workers=2, quiet=True)
     second = {p.name: p.read_bytes() for p in cfg.run_dir.glob("candidates.*")}
     assert first == second
+
+
+def test_parquet_list_is_ranked_like_the_ecsv(mock_run):
+    from astropy.table import Table
+
+    cfg, sky, paths, result = mock_run
+    pq_list = read_parquet(cfg.run_dir / "candidates.parquet")
+    ecsv = Table.read(cfg.run_dir / "candidates.ecsv")
+    assert pq_list.column("rank").to_pylist() == list(range(1, pq_list.num_rows + 1))
+    assert pq_list.column("astro_id").to_pylist() == list(ecsv["astro_id"])

@@ -195,7 +195,8 @@ def test_classifier_scores_are_applied_like_select_tile(demo_run):
         assert [list(x) for x in ev.tile_cutflow(i)] == [list(x) for x in res.cutflow]
         if res.candidates.num_rows:
             parts.append(res.candidates)
-    assert _same(tune.candidates(cache, ev), pa.concat_tables(parts, promote_options="permissive"))
+    assert _same(tune.candidates(cache, ev),
+                 pipeline.rank_candidates(pa.concat_tables(parts, promote_options="permissive")))
 
 
 def test_model_in_config_is_loaded_once_through_classify(demo_run, monkeypatch):
