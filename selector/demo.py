@@ -1304,10 +1304,13 @@ def evaluate_run(cfg, truth_path) -> "object":
 
 
 def run_demo(out_dir, seed: int = 1, scale: float = 1.0, workers=None, log=print):
-    """Write the mock sky and its config into ``out_dir``, ingest, run, and score against the truth."""
+    """Write the mock sky and its config into ``out_dir``, ingest, run, score against the truth,
+    then make the follow-up list for the demo site and the HTML report."""
     from .batch import run
     from .config import load_config
+    from .followup import make_targets
     from .ingest import ingest
+    from .report import write_report
 
     out = pathlib.Path(out_dir)
     log(f"writing an invented mock sky (seed {seed}, scale {scale}) to {out / 'catalogues'}")
@@ -1321,6 +1324,13 @@ def run_demo(out_dir, seed: int = 1, scale: float = 1.0, workers=None, log=print
     log("against the mock truth (figures for this invented sky only):")
     log(report.as_text("optical broad-band AB magnitude"))
     log("")
+    targets = make_targets(cfg, log=log)
+    page = write_report(cfg.run_dir)
+    log("")
     log(f"ranked candidates: {result.outputs['ecsv']} (also .csv and .parquet)")
     log(f"per-tile feature cache and cut-flow: {cfg.run_dir / 'tiles'}")
+    log(f"follow-up list for the demo site: {targets.outputs.get('ecsv', cfg.output_dir / 'targets')}")
+    log(f"report: {page}")
+    log("next: `selector tune --config {0} --set motion.parallax_snr_max=4`, or `selector train --config {0}` "
+        "and set classifier.model".format(out / "demo.toml"))
     return result, report
