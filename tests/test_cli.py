@@ -1,0 +1,64 @@
+"""The command: version, help for every subcommand, one-line errors, and the demo end to end."""
+
+from __future__ import annotations
+
+import subprocess
+import sys
+
+import pytest
+
+from selector import __version__
+from selector.cli import build_parser, main
+
+
+def test_version(capsys):
+    with pytest.raises(SystemExit) as exc:
+        main(["--version"])
+    assert exc.value.code == 0
+    assert capsys.readouterr().out.strip() == f"selector {__version__}"
+
+
+def test_every_subcommand_has_help(capsys):
+    sub = next(a for a in build_parser()._actions if a.dest == "command")
+    names = set(sub.choices)
+    assert {"ingest", "run", "demo", "status", "train", "tune", "report", "targets", "outcome"} <= names
+    for name in sorted(names):
+        with pytest.raises(SystemExit) as exc:
+            main([name, "--help"])
+        assert exc.value.code == 0
+        assert "usage: selector " + name in capsys.readouterr().out
+
+
+def test_bad_config_is_one_line_without_traceback(tmp_path):
+    bad = tmp_path / "bad.toml"
+    bad.write_text("[tiling]\norder = 'five'\n")
+    proc = subprocess.run([sys.executable, "-m", "selector.cli", "ingest", "--config", str(bad)],
+                          capture_output=True, text=True)
+    assert proc.returncode == 2
+    lines = proc.stderr.strip().splitlines()
+    assert len(lines) == 1 and "Traceback" not in proc.stderr
+    assert lines[0].startswith("selector: ") and "bad.toml" in lines[0]
+
+
+def test_missing_input_file_is_one_line(tmp_path):
+    from conftest import BASE
+
+    cfg = tmp_path / "c.toml"
+    cfg.write_text(
+        '[astrometric]\nfiles = ["nowhere.parquet"]\nepoch_jyear = 2016.0\n'
+        '[astrometric.columns]\n' + "".join(f'{k} = "{v}"\n' for k, v in BASE["astrometric"]["columns"].items()) +
+        '[infrared]\nfiles = ["ir.parquet"]\nepoch_jyear = 2010.0\n[infrared.columns]\nid = "a"\nra = "b"\ndec = "c"\n'
+        '[[infrared.magnitudes]]\nband = "3.4"\ncolumn = "w1"\n[[infrared.magnitudes]]\nband = "4.6"\ncolumn = "w2"\n')
+    proc = subprocess.run([sys.executable, "-m", "selector.cli", "ingest", "--config", str(cfg)],
+                          capture_output=True, text=True)
+    assert proc.returncode == 2
+    assert proc.stderr.strip().splitlines() == [f"selector: {tmp_path / 'nowhere.parquet'}: no such file"]
+
+
+def test_demo_runs_the_whole_job(tmp_path, capsys):
+    assert main(["demo", "--out", str(tmp_path), "--scale", "0.03", "--workers", "1"]) == 0
+    out = capsys.readouterr().out
+    assert "true quasars recovered above the completeness limit" in out
+    for path in ("demo.toml", "catalogues/truth.parquet", "output/run/candidates.ecsv", "output/run/report.html",
+                 "output/targets/targets.ecsv", "output/targets/summary.txt"):
+        assert (tmp_path / path).is_file(), path
