@@ -604,7 +604,7 @@ def _read_known_files(cfg: Config, cat) -> _Known:
     paths = expand_files(cat.files, cfg.path("."))
     parts, rejects, rows_in = [], [], 0
     for chunk in iter_chunks(paths, cat.format, sources, cat.chunk_rows):
-        table, reason, column = ingest.map_chunk(chunk, fields, ingest._IdKind())
+        table, reason, column = ingest.map_chunk(chunk, fields, ingest.IdKind())
         rows_in += chunk.table.num_rows
         bad = np.flatnonzero(reason >= 0)
         rejects.append(pa.table({

@@ -135,7 +135,7 @@ def _as_float(arr: pa.ChunkedArray | pa.Array) -> tuple[np.ndarray, np.ndarray]:
     return pc.cast(arr, pa.float64()).to_numpy(zero_copy_only=False).astype(float), np.zeros(len(arr), bool)
 
 
-class _IdKind:
+class IdKind:
     """Remembers whether a catalogue's ids are integers or text, fixed by the first chunk."""
 
     def __init__(self):
@@ -163,7 +163,7 @@ class _IdKind:
         return text.fill_null(""), missing, np.zeros(n, bool)
 
 
-def map_chunk(chunk, fields: list[_Field], id_kind: _IdKind):
+def map_chunk(chunk, fields: list[_Field], id_kind: IdKind):
     """Map one input chunk onto canonical columns and validate it.
 
     Returns
@@ -319,7 +319,7 @@ def ingest_catalogue(cfg: Config, kind: str, log=print) -> IngestSummary:
     buffers: list[tuple[pa.Table, np.ndarray]] = []  # accepted rows of each chunk, with their tiles
     id_buffers: list[pa.Table] = []
     buffered = 0
-    id_kind = _IdKind()
+    id_kind = IdKind()
     # One Arrow IPC file per flush, one record batch per tile (and per id bucket): a few large files
     # instead of one small Parquet file per tile per flush, which at order 5 over the whole sky meant
     # 12288 files per flush and cost more than everything else together.
