@@ -70,12 +70,12 @@ def write_sky(folder: Path, n: int, area: float, seed: int = 1, parts: int = 10)
     extra_ra, extra_dec = cap_points(rng, n // 20, area)
     ir_ra = np.concatenate(ir_ra + [extra_ra]) % 360
     ir_dec = np.concatenate(ir_dec + [extra_dec])
-    w2 = np.concatenate(ir_w2 + [rng.uniform(11, 17, len(extra_ra))])
+    m4p6 = np.concatenate(ir_w2 + [rng.uniform(11, 17, len(extra_ra))])
     m = len(ir_ra)
-    w1 = w2 + np.where(rng.random(m) < 0.05, rng.normal(1.0, 0.2, m), rng.normal(0.05, 0.05, m))
+    m3p4 = m4p6 + np.where(rng.random(m) < 0.05, rng.normal(1.0, 0.2, m), rng.normal(0.05, 0.05, m))
     pq.write_table(pa.table({
         "ir": np.arange(m, dtype=np.int64), "ra": ir_ra, "dec": ir_dec,
-        "w1": w1, "ew1": np.full(m, 0.03), "w2": w2, "ew2": np.full(m, 0.05),
+        "m3p4": m3p4, "e_m3p4": np.full(m, 0.03), "m4p6": m4p6, "e_m4p6": np.full(m, 0.05),
     }), folder / "ir.parquet")
     return m
 
@@ -90,8 +90,8 @@ def config(folder: Path, order: int, workers: int, out: str):
             "pmdec": "pmdec", "pmra_error": "epmra", "pmdec_error": "epmdec"},
             "magnitudes": [{"band": "g", "column": "g", "error_column": "eg", "system": "ab"}]},
         "infrared": {"files": ["ir.parquet"], "epoch_jyear": 2010.5, "columns": {"id": "ir", "ra": "ra", "dec": "dec"},
-                     "magnitudes": [{"band": "3.4", "column": "w1", "error_column": "ew1"},
-                                    {"band": "4.6", "column": "w2", "error_column": "ew2"}]},
+                     "magnitudes": [{"band": "3.4", "column": "m3p4", "error_column": "e_m3p4"},
+                                    {"band": "4.6", "column": "m4p6", "error_column": "e_m4p6"}]},
     }, base_dir=folder)
 
 

@@ -74,20 +74,20 @@ system = "ab"
 files = ["ir"]
 epoch_jyear = 2010.0
 [infrared.columns]
-id = "wid"
+id = "irid"
 ra = "ra"
 dec = "dec"
 [[infrared.magnitudes]]
 band = "3.4"
-column = "w1"
-error_column = "ew1"
+column = "m3p4"
+error_column = "e_m3p4"
 [[infrared.magnitudes]]
 band = "4.6"
-column = "w2"
-error_column = "ew2"
+column = "m4p6"
+error_column = "e_m4p6"
 [[infrared.magnitudes]]
 band = "12"
-column = "w3"
+column = "m12"
 
 [match]
 radius_arcsec = 2.0
@@ -131,14 +131,14 @@ def write_sky(folder: Path, rows: int, patch_deg2: float, seed: int = 7) -> None
             "epmra": 1.1 * e, "epmdec": e, "corr": rng.uniform(-0.3, 0.3, n),
             "g": rng.uniform(14.0, 21.0, n),
         }
-        w2 = rng.uniform(10.0, 16.5, n)
+        m4p6 = rng.uniform(10.0, 16.5, n)
         w12 = np.where(agn, rng.normal(1.1, 0.25, n), rng.normal(0.05, 0.1, n))
         offset = rng.normal(0.0, 0.15 / 3600.0, (2, n))
         ir = {
-            "wid": np.char.add("I", np.arange(start, start + n).astype(str)),
+            "irid": np.char.add("I", np.arange(start, start + n).astype(str)),
             "ra": np.mod(ra + offset[0] / np.cos(np.radians(dec)), 360.0), "dec": np.clip(dec + offset[1], -90, 90),
-            "w1": w2 + w12, "ew1": np.full(n, 0.03), "w2": w2, "ew2": np.full(n, 0.05),
-            "w3": np.where(rng.random(n) < 0.3, w2 - np.where(agn, 2.8, 0.2), np.nan),
+            "m3p4": m4p6 + w12, "e_m3p4": np.full(n, 0.03), "m4p6": m4p6, "e_m4p6": np.full(n, 0.05),
+            "m12": np.where(rng.random(n) < 0.3, m4p6 - np.where(agn, 2.8, 0.2), np.nan),
         }
         pq.write_table(pa.table(astro), folder / "astro" / f"part-{k:03d}.parquet")
         pq.write_table(pa.table(ir), folder / "ir" / f"part-{k:03d}.parquet")

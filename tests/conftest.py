@@ -29,10 +29,10 @@ BASE = {
     "infrared": {
         "files": ["ir.parquet"],
         "epoch_jyear": 2010.0,
-        "columns": {"id": "wid", "ra": "ra", "dec": "dec"},
+        "columns": {"id": "irid", "ra": "ra", "dec": "dec"},
         "magnitudes": [
-            {"band": "3.4", "column": "w1", "error_column": "ew1"},
-            {"band": "4.6", "column": "w2", "error_column": "ew2"},
+            {"band": "3.4", "column": "m3p4", "error_column": "e_m3p4"},
+            {"band": "4.6", "column": "m4p6", "error_column": "e_m4p6"},
         ],
     },
 }
@@ -64,11 +64,11 @@ def random_ir(n: int, rng: np.random.Generator, ra=None, dec=None):
     if ra is None:
         ra = rng.uniform(0, 360, n)
         dec = np.degrees(np.arcsin(rng.uniform(-1, 1, n)))
-    w2 = rng.uniform(12, 16, n)
+    m4p6 = rng.uniform(12, 16, n)
     return {
-        "wid": np.array([f"IR{i:07d}" for i in range(n)]), "ra": ra, "dec": dec,
-        "w1": w2 + rng.uniform(-0.2, 1.5, n), "ew1": np.full(n, 0.03),
-        "w2": w2, "ew2": np.full(n, 0.05),
+        "irid": np.array([f"IR{i:07d}" for i in range(n)]), "ra": ra, "dec": dec,
+        "m3p4": m4p6 + rng.uniform(-0.2, 1.5, n), "e_m3p4": np.full(n, 0.03),
+        "m4p6": m4p6, "e_m4p6": np.full(n, 0.05),
     }
 
 

@@ -103,8 +103,8 @@ def test_feature_list_follows_the_configuration(tmp_path):
                      "ir_3p4_minus_4p6_mag", "opt_broad_minus_ir_3p4_abmag", "opt_broad_minus_ir_4p6_abmag",
                      "parallax_snr", "pm_chi2", "sep_arcsec", "ir_blend_count"]
     data = base_config()
-    data["astrometric"]["columns"]["fit_quality"] = "ruwe"
-    data["infrared"]["magnitudes"].append({"band": "12", "column": "w3"})
+    data["astrometric"]["columns"]["fit_quality"] = "fitq"
+    data["infrared"]["magnitudes"].append({"band": "12", "column": "m12"})
     names = [f.name for f in classify.feature_specs(build(data, tmp_path))]
     # the 12 micron band has no error column here, so no error feature either
     assert "fit_quality" in names and "ir_4p6_minus_12_mag" in names and "ir_12_mag_error" not in names
@@ -114,7 +114,7 @@ def test_feature_list_follows_the_configuration(tmp_path):
 
 def test_missing_bands_stay_missing(tmp_path):
     data = base_config()
-    data["infrared"]["magnitudes"].append({"band": "12", "column": "w3"})
+    data["infrared"]["magnitudes"].append({"band": "12", "column": "m12"})
     cfg = build(data, tmp_path)
     table = pa.table({
         "astro_id": [1, 2], "parallax_mas": [0.1, 0.0], "parallax_error_mas": [0.1, 0.2],

@@ -48,7 +48,7 @@ def test_missing_input_file_is_one_line(tmp_path):
         '[astrometric]\nfiles = ["nowhere.parquet"]\nepoch_jyear = 2016.0\n'
         '[astrometric.columns]\n' + "".join(f'{k} = "{v}"\n' for k, v in BASE["astrometric"]["columns"].items()) +
         '[infrared]\nfiles = ["ir.parquet"]\nepoch_jyear = 2010.0\n[infrared.columns]\nid = "a"\nra = "b"\ndec = "c"\n'
-        '[[infrared.magnitudes]]\nband = "3.4"\ncolumn = "w1"\n[[infrared.magnitudes]]\nband = "4.6"\ncolumn = "w2"\n')
+        '[[infrared.magnitudes]]\nband = "3.4"\ncolumn = "m3p4"\n[[infrared.magnitudes]]\nband = "4.6"\ncolumn = "m4p6"\n')
     proc = subprocess.run([sys.executable, "-m", "selector.cli", "ingest", "--config", str(cfg)],
                           capture_output=True, text=True)
     assert proc.returncode == 2

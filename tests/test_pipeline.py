@@ -72,9 +72,9 @@ def edge_sky(tmp_path_factory):
     keep = rng.random(m) < 0.85
     ir_ra, ir_dec = ir_ra[keep], ir_dec[keep]
     k = len(ir_ra)
-    w2 = rng.uniform(12, 16, k)
-    ir = {"wid": np.array([f"W{i:06d}" for i in range(k)]), "ra": ir_ra, "dec": ir_dec,
-          "w1": w2 + rng.uniform(-0.2, 1.5, k), "ew1": np.full(k, 0.03), "w2": w2, "ew2": np.full(k, 0.05)}
+    m4p6 = rng.uniform(12, 16, k)
+    ir = {"irid": np.array([f"IRX{i:06d}" for i in range(k)]), "ra": ir_ra, "dec": ir_dec,
+          "m3p4": m4p6 + rng.uniform(-0.2, 1.5, k), "e_m3p4": np.full(k, 0.03), "m4p6": m4p6, "e_m4p6": np.full(k, 0.05)}
     write_parquet(astro, tmp / "astro.parquet")
     write_parquet(ir, tmp / "ir.parquet")
     cfg = build(data, tmp)
@@ -93,7 +93,7 @@ def test_pairs_equal_astropy_on_the_untiled_catalogues(edge_sky):
     a = SkyCoord(moved.ra_deg * u.deg, moved.dec_deg * u.deg)
     b = SkyCoord(ir["ra"] * u.deg, ir["dec"] * u.deg)
     ia, ib, sep, _ = search_around_sky(a, b, cfg.match.radius_arcsec * u.arcsec)
-    expected = set(zip(astro["sid"][ia].tolist(), ir["wid"][ib].tolist()))
+    expected = set(zip(astro["sid"][ia].tolist(), ir["irid"][ib].tolist()))
     pairs = pa.concat_tables([r.pairs for r in results])
     got = list(zip(pairs.column("astro_id").to_pylist(), pairs.column("ir_id").to_pylist()))
     assert len(got) == len(set(got)), "a pair was produced by two tiles"
@@ -129,7 +129,7 @@ def test_every_source_in_exactly_one_tile(edge_sky):
     got_sep = feats.column("sep_arcsec").to_numpy()
     for k, sid in enumerate(got_ids):
         j, s = best[int(sid)]
-        assert got_ir[k] == ir["wid"][j]
+        assert got_ir[k] == ir["irid"][j]
         assert got_sep[k] == pytest.approx(s, abs=1e-6)
         assert got_n[k] == n_within[sid]
         assert got_blend[k] == blend[j]

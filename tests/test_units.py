@@ -138,10 +138,10 @@ def _ir_columns(rng, values: dict):
     n = N
     ra = rng.uniform(0, 360, n)
     dec = np.degrees(np.arcsin(rng.uniform(-1, 1, n)))
-    return {"wid": np.array([f"IR{i:05d}" for i in range(n)]), "ra": ra, "dec": dec, **values}
+    return {"irid": np.array([f"IR{i:05d}" for i in range(n)]), "ra": ra, "dec": dec, **values}
 
 
-IR_SPEC = {"id": "wid", "ra": "ra", "dec": "dec"}
+IR_SPEC = {"id": "irid", "ra": "ra", "dec": "dec"}
 
 
 def test_infrared_ab_magnitudes_are_stored_as_vega(tmp_path, rng):
