@@ -246,7 +246,11 @@ def atomic_path(path: Path):
 
 
 def write_parquet(table: pa.Table, path: Path, metadata: dict | None = None) -> Path:
-    """Write a Parquet file atomically with fixed options, so equal tables give equal bytes."""
+    """Write a Parquet file atomically with fixed options, so equal tables give equal bytes.
+
+    LZ4 rather than a denser codec: every tile is read by each of its neighbours' jobs, and LZ4
+    decodes about a third faster for a tenth more disk.
+    """
     if metadata:
         meta = dict(table.schema.metadata or {})
         meta.update({k.encode(): (v if isinstance(v, str) else json.dumps(v, sort_keys=True)).encode()
@@ -257,7 +261,7 @@ def write_parquet(table: pa.Table, path: Path, metadata: dict | None = None) -> 
     textual = [f.name for f in table.schema if pa.types.is_string(f.type) or pa.types.is_large_string(f.type)
                or pa.types.is_binary(f.type) or pa.types.is_dictionary(f.type)]
     with atomic_path(path) as tmp:
-        pq.write_table(table, tmp, compression="zstd", row_group_size=1 << 20, write_statistics=True,
+        pq.write_table(table, tmp, compression="lz4", row_group_size=1 << 20, write_statistics=True,
                        use_dictionary=textual)
     return Path(path)
 
