@@ -228,6 +228,15 @@ def file_sha256(path: Path) -> str:
 
 # --- atomic writers -----------------------------------------------------------------------------
 
+def _current_umask() -> int:
+    mask = os.umask(0)
+    os.umask(mask)
+    return mask
+
+
+_UMASK = _current_umask()
+
+
 @contextmanager
 def atomic_path(path: Path):
     """Yield a temporary path beside ``path``; on success fsync it and rename it into place."""
@@ -239,6 +248,8 @@ def atomic_path(path: Path):
         yield Path(tmp)
         with open(tmp, "rb") as fh:
             os.fsync(fh.fileno())
+        # mkstemp makes files private; outputs are meant to be shared like any file the user writes
+        os.chmod(tmp, 0o666 & ~_UMASK)
         os.replace(tmp, path)
     except BaseException:
         Path(tmp).unlink(missing_ok=True)

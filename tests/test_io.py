@@ -328,3 +328,15 @@ def test_write_table_failure_leaves_no_temp(tmp_path):
     assert _leftovers(tmp_path) == []
     io.write_table(Table({"a": [1.0]}), tmp_path / "a.ecsv", "ecsv")
     assert Table.read(tmp_path / "a.ecsv")["a"][0] == 1.0 and _leftovers(tmp_path) == ["a.ecsv"]
+
+
+def test_atomic_outputs_follow_the_umask(tmp_path):
+    import os
+    import stat
+
+    from selector.io import write_text
+
+    path = write_text("x", tmp_path / "out.txt")
+    mask = os.umask(0)
+    os.umask(mask)
+    assert stat.S_IMODE(path.stat().st_mode) == 0o666 & ~mask
