@@ -49,7 +49,7 @@ from .manifest import Manifest, pid_alive, utc_now
 from .pipeline import rank_candidates, check_accounting, load_tile, match_tile, select_tile, sort_by_score, tile_output_dir
 
 #: Files of a tile that depend only on the matching (the feature cache).
-FEATURE_FILES = ("features.parquet",)
+FEATURE_FILES = ("features.parquet", "infrared.parquet")
 #: Files of a tile that the selection writes.
 SELECTION_FILES = ("candidates.parquet", "rejects.parquet", "cutflow.json")
 #: Merged outputs, in the order they are written.
@@ -385,11 +385,14 @@ def _work(cfg: Config, tile: int, plan: dict) -> dict:
                 return out
             mode = "select"
         else:
-            m = match_tile(own, neighbours, infrared, tile, cfg.match.radius_arcsec, cfg.epoch_difference_yr)
+            m = match_tile(own, neighbours, infrared, tile, cfg.match.radius_arcsec, cfg.epoch_difference_yr,
+                           cfg.tiling.order)
             features = _normalised(m.features)
-            write_parquet(features, folder / "features.parquet",
-                          {"provenance": {"tile": tile, "match_key": plan["match_key"], "content_key": content_key,
-                                          "selector_version": __version__}})
+            match_prov = {"provenance": {"tile": tile, "match_key": plan["match_key"], "content_key": content_key,
+                                         "selector_version": __version__}}
+            write_parquet(features, folder / "features.parquet", match_prov)
+            # the blend count of every infrared source the tile owns, matched or not
+            write_parquet(m.infrared, folder / "infrared.parquet", match_prov)
             out["action"] = "computed"
     else:
         rows = int(plan["rows"])

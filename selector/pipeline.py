@@ -167,15 +167,21 @@ class TileMatch:
         Every (astro_id, ir_id, sep_arcsec) pair within the radius for owned sources.
     n_input : int
         Owned astrometric sources.
+    infrared : pyarrow.Table or None
+        One row per infrared source owned by the tile (its position falls in it): ``ir_id`` and
+        ``n_astro_within``, how many astrometric sources (at the infrared epoch) lie within the
+        radius — the blend count of every infrared source, matched or not. None unless the tiling
+        order was given.
     """
 
     features: pa.Table
     pairs: pa.Table
     n_input: int
+    infrared: pa.Table | None = None
 
 
 def match_tile(own: pa.Table, neighbours: pa.Table, infrared: pa.Table, tile: int, radius_arcsec: float,
-               dt_yr: float) -> TileMatch:
+               dt_yr: float, order: int | None = None) -> TileMatch:
     """Cross-match the owned sources of a tile against the infrared sources around it.
 
     Parameters
@@ -192,6 +198,9 @@ def match_tile(own: pa.Table, neighbours: pa.Table, infrared: pa.Table, tile: in
         Match radius, applied at the infrared epoch.
     dt_yr : float
         Infrared epoch minus astrometric epoch (Julian years).
+    order : int, optional
+        Tiling order; when given, the blend count of every infrared source owned by the tile is
+        returned as well (``TileMatch.infrared``).
     """
     ra_own, dec_own = _propagated(own, dt_yr)
     ra_nb, dec_nb = _propagated(neighbours, dt_yr)
@@ -202,11 +211,18 @@ def match_tile(own: pa.Table, neighbours: pa.Table, infrared: pa.Table, tile: in
     nearest = nearest_within(own_pairs, own.num_rows)
     matched = np.flatnonzero(nearest.index_b >= 0)
     ir_for = nearest.index_b[matched]
-    # blend count: every astrometric source (own or neighbour) within the radius of the counterpart
-    counterparts = np.unique(ir_for)
-    blend_pairs = pairs_within(ir_ra[counterparts], ir_dec[counterparts], ra_m, dec_m, radius_arcsec, workers=1)
-    blend = np.bincount(blend_pairs.index_a, minlength=len(counterparts))
-    blend_for = blend[np.searchsorted(counterparts, ir_for)]
+    # blend count: every astrometric source (own or neighbour) within the radius of an infrared
+    # source, for the counterparts of owned sources and for the tile's own infrared sources
+    ir_own = (tiles.tile_of(ir_ra, ir_dec, order) == tile) if order is not None else np.zeros(len(ir_ra), bool)
+    counted = np.union1d(np.unique(ir_for), np.flatnonzero(ir_own))
+    blend_pairs = pairs_within(ir_ra[counted], ir_dec[counted], ra_m, dec_m, radius_arcsec, workers=1)
+    blend = np.bincount(blend_pairs.index_a, minlength=len(counted))
+    blend_for = blend[np.searchsorted(counted, ir_for)]
+    ir_table = None
+    if order is not None:
+        own_ir = np.flatnonzero(ir_own)
+        ir_table = pa.table({"ir_id": infrared.column("ir_id").take(pa.array(own_ir, pa.int64())),
+                             "n_astro_within": pa.array(blend[np.searchsorted(counted, own_ir)].astype(np.int64))})
 
     rows = matched
     feats = own.take(pa.array(rows, pa.int64()))
@@ -235,7 +251,7 @@ def match_tile(own: pa.Table, neighbours: pa.Table, infrared: pa.Table, tile: in
         "ir_id": infrared.column("ir_id").take(pa.array(own_pairs.index_b, pa.int64())),
         "sep_arcsec": pa.array(own_pairs.separation_arcsec),
     })
-    return TileMatch(feats, pairs, own.num_rows)
+    return TileMatch(feats, pairs, own.num_rows, ir_table)
 
 
 @lru_cache(maxsize=1)
@@ -437,13 +453,17 @@ class TileResult:
     rejects: pa.Table
     cutflow: list
     pairs: pa.Table | None = None
+    infrared: pa.Table | None = None
 
 
 def process_tile(cfg: Config, tile: int, scorer=None, keep_pairs: bool = False) -> TileResult:
     """Run every stage for one tile and return its tables (nothing written)."""
     own, neighbours, infrared = load_tile(cfg, tile)
-    m = match_tile(own, neighbours, infrared, tile, cfg.match.radius_arcsec, cfg.epoch_difference_yr)
-    return select_tile(cfg, tile, own.num_rows, m.features, scorer, m.pairs if keep_pairs else None)
+    m = match_tile(own, neighbours, infrared, tile, cfg.match.radius_arcsec, cfg.epoch_difference_yr,
+                   cfg.tiling.order)
+    result = select_tile(cfg, tile, own.num_rows, m.features, scorer, m.pairs if keep_pairs else None)
+    result.infrared = m.infrared
+    return result
 
 
 def select_tile(cfg: Config, tile: int, n_rows: int, features: pa.Table, scorer=None, pairs=None) -> TileResult:
@@ -466,6 +486,8 @@ def write_tile(cfg: Config, result: TileResult, provenance: dict) -> None:
     """Write a tile's feature cache, candidates, rejects and cut-flow (each atomically)."""
     out = tile_output_dir(cfg, result.tile)
     write_parquet(result.features, out / "features.parquet", {"provenance": provenance})
+    if result.infrared is not None:
+        write_parquet(result.infrared, out / "infrared.parquet", {"provenance": provenance})
     write_parquet(result.candidates, out / "candidates.parquet", {"provenance": provenance})
     write_parquet(result.rejects, out / "rejects.parquet")
     write_json({"tile": result.tile, "rows": result.n_rows, "rejects": result.rejects.num_rows,

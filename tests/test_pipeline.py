@@ -216,3 +216,20 @@ def test_parquet_list_is_ranked_like_the_ecsv(mock_run):
     ecsv = Table.read(cfg.run_dir / "candidates.ecsv")
     assert pq_list.column("rank").to_pylist() == list(range(1, pq_list.num_rows + 1))
     assert pq_list.column("astro_id").to_pylist() == list(ecsv["astro_id"])
+
+
+def test_every_infrared_source_gets_its_blend_count_once(edge_sky):
+    from astropy.coordinates import SkyCoord, search_around_sky
+    import astropy.units as u
+
+    cfg, astro, ir, moved, results = edge_sky
+    got = pa.concat_tables([r.infrared for r in results])
+    ids = got.column("ir_id").to_pylist()
+    # each infrared source is owned by exactly one tile, whether or not it has a counterpart
+    assert sorted(ids) == sorted(ir["irid"].tolist())
+    # reference: astropy search_around_sky on the untiled catalogues at the infrared epoch
+    a = SkyCoord(moved.ra_deg * u.deg, moved.dec_deg * u.deg)
+    b = SkyCoord(ir["ra"] * u.deg, ir["dec"] * u.deg)
+    _, ib, _, _ = search_around_sky(a, b, cfg.match.radius_arcsec * u.arcsec)
+    expected = dict(zip(ir["irid"].tolist(), np.bincount(ib, minlength=len(ir["ra"])).tolist()))
+    assert dict(zip(ids, got.column("n_astro_within").to_pylist())) == expected
