@@ -34,6 +34,7 @@ class ColumnSpec:
 
     column: str = setting(doc="the column name in the input file")
     unit: Optional[str] = setting(None, doc="astropy unit string; default: the file's own unit, else the role's canonical unit")
+    null_values: list[float] = setting(default_factory=tuple, doc="values that mean 'missing' in this column, e.g. [-999.0]")
 
     @classmethod
     def _from_config(cls, value, where):
@@ -54,6 +55,7 @@ class MagnitudeSpec:
     unit: str = setting("mag", doc="'mag' or a flux-density unit such as 'mJy' (converted to AB magnitudes)")
     system: str = setting("vega", choices=("vega", "ab"), doc="magnitude system of the column")
     vega_to_ab_mag: Optional[float] = setting(None, doc="AB − Vega offset of an optical band given in Vega (required then)")
+    null_values: list[float] = setting(default_factory=tuple, doc="values meaning 'not measured' in the magnitude and error columns, e.g. [99.0]")
 
     def _check(self, where):
         _parse_unit(self.unit, f"{where}.unit")

@@ -65,6 +65,7 @@ class _Field:
     band: str | None = None
     offset_mag: float = 0.0    # added to an AB/Vega magnitude to reach the canonical system
     flux: bool = False
+    null_values: tuple = ()    # values the catalogue uses for "missing" (sentinels such as -999)
 
 
 def plan_fields(cat: CatalogueConfig, kind: str) -> list[_Field]:
@@ -74,7 +75,8 @@ def plan_fields(cat: CatalogueConfig, kind: str) -> list[_Field]:
         spec = cat.columns.get(r.role)
         if spec is None:
             continue
-        out.append(_Field(r.canonical, spec.column, r.kind, unit=r.unit, given_unit=spec.unit))
+        out.append(_Field(r.canonical, spec.column, r.kind, unit=r.unit, given_unit=spec.unit,
+                          null_values=tuple(spec.null_values)))
     for m in cat.magnitudes:
         if kind == "infrared":
             mag_col, err_col = schema.infrared_mag_column(m.band), schema.infrared_error_column(m.band)
@@ -85,10 +87,10 @@ def plan_fields(cat: CatalogueConfig, kind: str) -> list[_Field]:
             to_canonical = float(m.vega_to_ab_mag) if (m.system == "vega" and u.Unit(m.unit) == u.mag) else 0.0
         flux = u.Unit(m.unit) != u.mag
         out.append(_Field(mag_col, m.column, "magnitude", unit="mag", given_unit=m.unit, band=m.band,
-                          offset_mag=to_canonical, flux=flux))
+                          offset_mag=to_canonical, flux=flux, null_values=tuple(m.null_values)))
         if m.error_column:
             out.append(_Field(err_col, m.error_column, "magnitude_error", unit="mag", given_unit=m.unit,
-                              band=m.band, flux=flux))
+                              band=m.band, flux=flux, null_values=tuple(m.null_values)))
     return out
 
 
@@ -206,6 +208,7 @@ def map_chunk(chunk, fields: list[_Field], id_kind: IdKind):
             raise InputError(f"{chunk.path}: column '{f.source}' {exc}; map a numeric column to "
                              f"{f.canonical}") from None
         checks.append(("unparsable_value", bad, f.source))
+        values = _blank_sentinels(values, f.null_values)
         if f.kind in ("magnitude", "magnitude_error"):
             values = _magnitude(values, f, raw_flux=None) if f.kind == "magnitude" else values
         else:
@@ -235,6 +238,13 @@ def map_chunk(chunk, fields: list[_Field], id_kind: IdKind):
     return pa.table(arrays, names=names), reason, column
 
 
+def _blank_sentinels(values: np.ndarray, null_values: tuple) -> np.ndarray:
+    """Values the catalogue uses to mean "missing" become NaN, before any unit is applied."""
+    if null_values:
+        values = np.where(np.isin(values, np.asarray(null_values, float)), np.nan, values)
+    return values
+
+
 def _magnitude(values: np.ndarray, f: _Field, raw_flux=None) -> np.ndarray:
     if f.flux:
         jy = values * float(u.Unit(f.given_unit).to(u.Jy))
@@ -255,7 +265,7 @@ def _flux_errors(chunk, fields, names, arrays, checks):
         checks.append(("non_finite_value", np.isinf(err), f.source))
         if f.flux:
             mag_field = next(g for g in fields if g.kind == "magnitude" and g.band == f.band)
-            flux, _ = _as_float(chunk.table.column(mag_field.source))
+            flux = _blank_sentinels(_as_float(chunk.table.column(mag_field.source))[0], mag_field.null_values)
             with np.errstate(divide="ignore", invalid="ignore"):
                 # first-order propagation of a flux error into magnitudes: 2.5/ln(10) · σ_f / f
                 err = np.where(flux > 0, 2.5 / np.log(10.0) * err / flux, np.nan)

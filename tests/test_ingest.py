@@ -166,3 +166,25 @@ def test_missing_file_is_one_line_error(tmp_path):
     cfg = build(base_config(), tmp_path)
     with pytest.raises(InputError, match=r"astro.parquet: no such file"):
         ingest_catalogue(cfg, "astrometric", log=lambda *a: None)
+
+
+def test_sentinel_values_become_missing(tmp_path, rng):
+    a = random_astro(6, rng)
+    a["plx"][0] = -999.0                # a catalogue's "no parallax"
+    a["ra"] = a["ra"].astype(float)
+    a["ra"][1] = -999.0                 # a position that is missing: rejected, not wrapped to 81 deg
+    a["g"][2] = 99.0                    # "not measured" magnitude
+    a["eg"][2] = 99.0
+    write_parquet(a, tmp_path / "astro.parquet")
+    write_parquet(random_ir(5, rng), tmp_path / "ir.parquet")
+    data = base_config()
+    data["astrometric"]["columns"]["parallax"] = {"column": "plx", "unit": "mas", "null_values": [-999.0]}
+    data["astrometric"]["columns"]["ra"] = {"column": "ra", "null_values": [-999.0]}
+    data["astrometric"]["magnitudes"][0]["null_values"] = [99.0]
+    cfg = build(data, tmp_path)
+    s = ingest_catalogue(cfg, "astrometric", log=lambda *a: None)
+    assert s.rejected == {"non_finite_position": 1} and s.accepted == 5
+    t = _read_tiles(cfg, "astrometric")
+    by_id = {r["astro_id"]: r for r in t.to_pylist()}
+    assert np.isnan(by_id[1]["parallax_mas"]) and np.isnan(by_id[3]["opt_broad_abmag"])
+    assert np.isnan(by_id[3]["opt_broad_mag_error"]) and np.isfinite(by_id[4]["parallax_mas"])
