@@ -46,7 +46,7 @@ from .config import MATCH_SECTIONS, SELECTION_SECTIONS, Config, config_hash, pla
 from .errors import InputError, SelectorError
 from .io import file_sha256, read_parquet, write_json, write_parquet, write_table, write_text
 from .manifest import Manifest, pid_alive, utc_now
-from .pipeline import rank_candidates, check_accounting, load_tile, match_tile, select_tile, sort_by_score, tile_output_dir
+from .pipeline import check_accounting, load_tile, match_tile, rank_candidates, select_tile, tile_output_dir
 
 #: Files of a tile that depend only on the matching (the feature cache).
 FEATURE_FILES = ("features.parquet", "infrared.parquet")

@@ -675,17 +675,10 @@ def _make_galaxies(rng, scale):
     m220 = m120 - (2.3 + 0.3 * rng.standard_normal(n))
     broad0 = m34 + 3.0 + 2.0 * z + 0.5 * rng.standard_normal(n)
     colour = 1.0 + 0.6 * rng.random(n)
-    broad = broad0 + _EXT_PER_AV["broad"] * av
-    ir = np.stack([m34, m46, m120, m220], axis=1)
-    ir = ir + av[:, None] * np.array([_EXT_PER_AV[b] for b in _IR_BANDS])
-    return _objects(
-        pop=np.full(n, _GALAXY), patch=patch, xyz=xyz, parallax=0.0, pmra=0.0, pmdec=0.0,
-        redshift=z, broad=broad,
-        blue=broad + 0.45 * colour + (_EXT_PER_AV["blue"] - _EXT_PER_AV["broad"]) * av,
-        red=broad - 0.55 * colour + (_EXT_PER_AV["red"] - _EXT_PER_AV["broad"]) * av,
-        ir=ir, fit_excess=10 ** (0.4 + 0.15 * rng.standard_normal(n)),
-        optical_prob=_GALAXY_OPTICAL_FRACTION,
-    )
+    # the fit-quality draw comes last, as in the other galaxy population
+    fit_excess = 10 ** (0.4 + 0.15 * rng.standard_normal(n))
+    return _galaxy_objects(patch, xyz, av, z, broad0, colour, (m34, m46, m120, m220), fit_excess,
+                           _GALAXY_OPTICAL_FRACTION)
 
 
 def _make_dusty_galaxies(rng, scale):
@@ -710,16 +703,21 @@ def _make_dusty_galaxies(rng, scale):
     z = np.clip(0.3 + 0.25 * (m46 - 13.8) + 0.1 * rng.standard_normal(n), 0.05, 1.5)
     broad0 = m34 + 3.3 + 0.5 * rng.standard_normal(n)
     colour = 0.9 + 0.5 * rng.random(n)
+    fit_excess = 10 ** (0.18 + 0.12 * rng.standard_normal(n))
+    return _galaxy_objects(patch, xyz, av, z, broad0, colour, (m34, m46, m120, m220), fit_excess,
+                           _DUSTY_GALAXY_OPTICAL_FRACTION)
+
+
+def _galaxy_objects(patch, xyz, av, z, broad0, colour, ir_mags, fit_excess, optical_prob):
+    """Galaxies at rest from their unreddened magnitudes: extinction applied, optical colours set."""
     broad = broad0 + _EXT_PER_AV["broad"] * av
-    ir = np.stack([m34, m46, m120, m220], axis=1)
-    ir = ir + av[:, None] * np.array([_EXT_PER_AV[b] for b in _IR_BANDS])
+    ir = np.stack(ir_mags, axis=1) + av[:, None] * np.array([_EXT_PER_AV[b] for b in _IR_BANDS])
     return _objects(
-        pop=np.full(n, _GALAXY), patch=patch, xyz=xyz, parallax=0.0, pmra=0.0, pmdec=0.0,
+        pop=np.full(len(patch), _GALAXY), patch=patch, xyz=xyz, parallax=0.0, pmra=0.0, pmdec=0.0,
         redshift=z, broad=broad,
         blue=broad + 0.45 * colour + (_EXT_PER_AV["blue"] - _EXT_PER_AV["broad"]) * av,
         red=broad - 0.55 * colour + (_EXT_PER_AV["red"] - _EXT_PER_AV["broad"]) * av,
-        ir=ir, fit_excess=10 ** (0.18 + 0.12 * rng.standard_normal(n)),
-        optical_prob=_DUSTY_GALAXY_OPTICAL_FRACTION,
+        ir=ir, fit_excess=fit_excess, optical_prob=optical_prob,
     )
 
 

@@ -30,7 +30,7 @@ import pyarrow.compute as pc
 from . import __version__, schema, tiles
 from .config import CatalogueConfig, Config, config_hash
 from .errors import InputError, SelectorError
-from .io import expand_files, fingerprint, iter_chunks, read_parquet, write_json, write_parquet
+from .io import expand_files, fingerprint, iter_chunks, write_json, write_parquet
 from .photometry import VEGA_TO_AB_MAG
 
 #: Reason codes, in the order they are tested; a row is rejected for the first that applies.
@@ -586,15 +586,3 @@ def ingest(cfg: Config, log=print) -> dict[str, IngestSummary]:
             + (f", {len(s.rows_per_tile)} tiles" if kind != "known" else ""))
         out[kind] = s
     return out
-
-
-def load_summary(cfg: Config, kind: str) -> dict:
-    path = catalogue_dir(cfg, kind) / "summary.json"
-    if not path.exists():
-        raise SelectorError(f"{path}: not found; run `selector ingest --config ...` first")
-    return json.loads(path.read_text())
-
-
-def read_tile(cfg: Config, kind: str, tile: int) -> pa.Table:
-    """One tile of an ingested catalogue."""
-    return read_parquet(tiles.tile_file(cfg.tiles_dir, kind, cfg.tiling.order, tile))

@@ -1,7 +1,7 @@
 """One tile through every stage: load with margins, propagate, cross-match, select, rank.
 
 The stages are pure functions over columnar tables (:func:`match_tile`, :func:`select`,
-:func:`rank`); :func:`process_tile` does the reading and :func:`write_tile` the writing, so the same
+:func:`rank_candidates`); :func:`process_tile` does the reading and ``batch.run_tile`` the writing, so the same
 code serves a full run, the tuning loop (which re-applies :func:`select` to the cached features)
 and the tests.
 
@@ -18,13 +18,12 @@ from functools import lru_cache
 
 import numpy as np
 import pyarrow as pa
-import pyarrow.compute as pc
 
 from . import schema, tiles
 from .astrometry import propagate, zero_motion
 from .config import Config
-from .crossmatch import count_within, nearest_within, pairs_within, radec_to_xyz
-from .io import read_parquet, write_json, write_parquet
+from .crossmatch import nearest_within, pairs_within, radec_to_xyz
+from .io import read_parquet
 from .photometry import LinearCut, apply_criteria, apply_linear_cut, vega_to_ab
 
 _ARCSEC_PER_RAD = 180.0 / np.pi * 3600.0
@@ -47,12 +46,7 @@ def _disc_filter(table: pa.Table, tile: int, order: int, margin_arcsec: float) -
     """
     if table.num_rows == 0:
         return table
-    ns = tiles.nside(order)
-    import healpy as hp
-
-    centre = np.asarray(hp.pix2vec(ns, int(tile), nest=True))
-    corners = hp.boundaries(ns, int(tile), step=1, nest=True).T
-    reach = np.max(np.arccos(np.clip(corners @ centre, -1, 1)))
+    centre, reach = tiles.circumscribed_disc(tile, order)
     cos_limit = np.cos(min(np.pi, reach + margin_arcsec / _ARCSEC_PER_RAD))
     xyz = radec_to_xyz(table.column("ra_deg").to_numpy(), table.column("dec_deg").to_numpy(), workers=1)
     return table.filter(pa.array(xyz @ centre >= cos_limit))
@@ -480,18 +474,6 @@ def select_tile(cfg: Config, tile: int, n_rows: int, features: pa.Table, scorer=
 
 def tile_output_dir(cfg: Config, tile: int):
     return cfg.run_dir / "tiles" / f"tile{int(tile):08d}"
-
-
-def write_tile(cfg: Config, result: TileResult, provenance: dict) -> None:
-    """Write a tile's feature cache, candidates, rejects and cut-flow (each atomically)."""
-    out = tile_output_dir(cfg, result.tile)
-    write_parquet(result.features, out / "features.parquet", {"provenance": provenance})
-    if result.infrared is not None:
-        write_parquet(result.infrared, out / "infrared.parquet", {"provenance": provenance})
-    write_parquet(result.candidates, out / "candidates.parquet", {"provenance": provenance})
-    write_parquet(result.rejects, out / "rejects.parquet")
-    write_json({"tile": result.tile, "rows": result.n_rows, "rejects": result.rejects.num_rows,
-                "cutflow": result.cutflow}, out / "cutflow.json")
 
 
 def read_tile_cutflow(cfg: Config, tile: int) -> dict:

@@ -59,6 +59,14 @@ def max_margin_arcsec(order: int) -> float:
     return resolution_arcsec(order) / 3.0
 
 
+def circumscribed_disc(tile: int, order: int) -> tuple[np.ndarray, float]:
+    """Centre unit vector of a tile and its largest centre-to-corner distance (rad)."""
+    ns = nside(order)
+    centre = np.asarray(hp.pix2vec(ns, int(tile), nest=True))
+    corners = hp.boundaries(ns, int(tile), step=1, nest=True).T
+    return centre, float(np.max(np.arccos(np.clip(corners @ centre, -1.0, 1.0))))
+
+
 def tiles_near(tile: int, order: int, margin_arcsec: float) -> np.ndarray:
     """Every tile that holds points within ``margin_arcsec`` of ``tile`` (including itself), sorted.
 
@@ -66,12 +74,9 @@ def tiles_near(tile: int, order: int, margin_arcsec: float) -> np.ndarray:
     contains the whole dilated tile, and ``inclusive=True`` returns every pixel that overlaps the disc,
     so the set is complete at any margin; it may hold a few extra tiles, which cost only reading.
     """
-    ns = nside(order)
-    vec = hp.pix2vec(ns, int(tile), nest=True)
-    corners = hp.boundaries(ns, int(tile), step=1, nest=True).T
-    reach = np.max(np.arccos(np.clip(corners @ np.asarray(vec), -1.0, 1.0)))
+    vec, reach = circumscribed_disc(tile, order)
     radius = reach + margin_arcsec / _ARCSEC_PER_RAD
-    near = hp.query_disc(ns, vec, radius, inclusive=True, nest=True)
+    near = hp.query_disc(nside(order), vec, radius, inclusive=True, nest=True)
     return np.unique(np.append(near, tile)).astype(np.int64)
 
 
