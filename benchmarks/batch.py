@@ -31,10 +31,11 @@ from pathlib import Path
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
-from selector import batch, demo  # noqa: E402
-from selector.config import load_config  # noqa: E402
-from selector.ingest import ingest  # noqa: E402
-from selector.manifest import Manifest  # noqa: E402
+from selector.jobs.run import batch  # noqa: E402
+from selector.demo import mocksky as demo
+from selector.settings.config import load_config  # noqa: E402
+from selector.jobs.ingest import ingest  # noqa: E402
+from selector.store.manifest import Manifest  # noqa: E402
 
 
 def _quiet(*args, **kwargs):

@@ -33,11 +33,12 @@ import pyarrow as pa
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
-from selector import classify, demo  # noqa: E402
-from selector.batch import run  # noqa: E402
-from selector.config import load_config  # noqa: E402
-from selector.ingest import ingest  # noqa: E402
-from selector.io import read_parquet  # noqa: E402
+from selector.jobs import classify  # noqa: E402
+from selector.demo import mocksky as demo
+from selector.jobs.run.batch import run  # noqa: E402
+from selector.settings.config import load_config  # noqa: E402
+from selector.jobs.ingest import ingest  # noqa: E402
+from selector.store.io import read_parquet  # noqa: E402
 
 
 def _quiet(*args):

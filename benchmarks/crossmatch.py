@@ -23,7 +23,7 @@ import numpy as np
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
-from selector.crossmatch import count_within, nearest_within, pairs_within  # noqa: E402
+from selector.core.crossmatch import count_within, nearest_within, pairs_within  # noqa: E402
 
 
 def _cap(rng, n, centre_ra_deg, centre_dec_deg, radius_deg):

@@ -95,7 +95,7 @@ def write_catalogue(path: Path, rows: int, sky: str, patch_deg2: float, seed: in
 
 
 def _config(folder: Path, chunk_rows: int, order: int):
-    from selector.config import from_dict
+    from selector.settings.config import from_dict
 
     return from_dict({
         "project": {"output_dir": "out"},
@@ -131,7 +131,7 @@ def child(mode: str, folder: Path, chunk_rows: int, order: int, profile: bool) -
         for batch in pf.iter_batches(batch_size=chunk_rows, columns=COLUMNS):
             rows += batch.num_rows
     elif mode == "ingest":
-        from selector.ingest import ingest_catalogue
+        from selector.jobs.ingest import ingest_catalogue
 
         cfg = _config(folder, chunk_rows, order)
         if profile:
@@ -191,7 +191,7 @@ def main(argv=None):
           f"order {args.order}, chunk_rows {args.chunk_rows:,}")
     print("ingest is single-process: its rows/s are rows/s per core; 'per CPU-s' divides by the CPU time of all\n"
           "its threads (pyarrow decodes in a few), which is steadier than wall time on a shared machine")
-    from selector.ingest import _SPOOL_ROWS
+    from selector.jobs.ingest import _SPOOL_ROWS
 
     print(f"ingest keeps up to {_SPOOL_ROWS:,} rows in memory before spooling to disk; "
           "sizes below that never touch the spool")

@@ -27,7 +27,7 @@ import pyarrow.parquet as pq
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
-from selector.config import from_dict  # noqa: E402
+from selector.settings.config import from_dict  # noqa: E402
 
 
 def cap_points(rng, n, area_deg2, centre_dec=30.0):
@@ -96,8 +96,8 @@ def config(folder: Path, order: int, workers: int, out: str):
 
 
 def measure(n: int, area: float, order: int, workers: int):
-    from selector.batch import run
-    from selector.ingest import ingest
+    from selector.jobs.run.batch import run
+    from selector.jobs.ingest import ingest
 
     with tempfile.TemporaryDirectory() as tmp:
         folder = Path(tmp)

@@ -24,8 +24,8 @@ import numpy as np
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
-from selector import followup as fu  # noqa: E402
-from selector.config import SiteConfig  # noqa: E402
+from selector.jobs import followup as fu  # noqa: E402
+from selector.settings.config import SiteConfig  # noqa: E402
 
 
 def main(argv=None) -> int:

@@ -39,8 +39,9 @@ import pyarrow.parquet as pq
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
-from selector import batch, ingest, tune  # noqa: E402
-from selector.config import load_config  # noqa: E402
+from selector.jobs.run import batch  # noqa: E402
+from selector.jobs import ingest, tune
+from selector.settings.config import load_config  # noqa: E402
 
 _PIECE = 1_000_000
 

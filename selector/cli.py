@@ -11,8 +11,8 @@ import argparse
 import sys
 from pathlib import Path
 
-from . import __version__
-from .errors import SelectorError
+from selector import __version__
+from selector.errors import SelectorError
 
 
 def _config_arg(p: argparse.ArgumentParser) -> None:
@@ -20,27 +20,70 @@ def _config_arg(p: argparse.ArgumentParser) -> None:
 
 
 def _cmd_ingest(args) -> int:
-    from .config import load_config
-    from .ingest import ingest
+    from selector import api
+    from selector.store.layout import layout_of
 
-    cfg = load_config(args.config)
-    ingest(cfg, log=print)
-    print(f"tiles written below {cfg.tiles_dir}")
+    cfg = api.load_config(args.config)
+    api.ingest(cfg, log=print)
+    print(f"tiles written below {layout_of(cfg).tiles_dir}")
     return 0
 
 
 def _cmd_run(args) -> int:
-    from .batch import run
-    from .config import load_config
+    from selector import api
 
-    cfg = load_config(args.config)
-    result = run(cfg, workers=args.workers, executor=args.executor, scheduler=args.scheduler,
-                 quiet=args.quiet, verbose=args.verbose, force=args.force, config_path=args.config)
+    result = api.run(args.config, workers=args.workers, executor=args.executor, scheduler=args.scheduler,
+                     quiet=args.quiet, verbose=args.verbose, force=args.force)
     return 0 if result.ok else 1
 
 
+def _cmd_status(args) -> int:
+    from selector import api
+
+    print(api.status(args.config, runs=args.runs, failed_only=args.failed))
+    return 0
+
+
+def _cmd_train(args) -> int:
+    from selector import api
+
+    api.train(args.config, log=print)
+    return 0
+
+
+def _cmd_tune(args) -> int:
+    from selector import api
+
+    api.tune(args.config, settings=args.set or (), truth=args.truth, plots_dir=args.plots, write=args.write,
+             log=print)
+    return 0
+
+
+def _cmd_report(args) -> int:
+    from selector import api
+
+    if args.top < 1:
+        raise SelectorError(f"--top {args.top}: give at least 1 row")
+    api.report(args.run, out=args.out, top=args.top, log=print)
+    return 0
+
+
+def _cmd_targets(args) -> int:
+    from selector import api
+
+    api.targets(args.config, new_only=args.new_only, log=print)
+    return 0
+
+
+def _cmd_outcome(args) -> int:
+    from selector import api
+
+    api.outcomes(args.config, args.file, log=print)
+    return 0
+
+
 def _cmd_demo(args) -> int:
-    from .demo import run_demo
+    from selector.demo.mocksky import run_demo
 
     run_demo(Path(args.out), seed=args.seed, scale=args.scale, workers=args.workers)
     return 0
@@ -76,24 +119,55 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--workers", type=int, default=None, help="worker processes (default: one per core)")
     p.set_defaults(func=_cmd_demo)
 
-    _add_optional_commands(sub)
+    p = sub.add_parser("status", help="show the run manifest: runs, tiles done, failed and pending, rows, timings")
+    _config_arg(p)
+    p.add_argument("--runs", type=int, default=10, metavar="N", help="show the last N runs (default 10)")
+    p.add_argument("--failed", action="store_true", help="list only the failed tiles and their errors")
+    p.set_defaults(func=_cmd_status)
+
+    p = sub.add_parser("train", help="train the quasar classifier on labelled sources of the feature cache; write "
+                                     "the model, its card and a held-out evaluation")
+    _config_arg(p)
+    p.set_defaults(func=_cmd_train)
+
+    p = sub.add_parser("targets", help="follow-up list: known objects out, observability from a site, priorities")
+    _config_arg(p)
+    p.add_argument("--new-only", action="store_true",
+                   help="list only candidates that are new since the previous run")
+    p.set_defaults(func=_cmd_targets)
+
+    p = sub.add_parser("outcome", help="record follow-up outcomes (spectroscopic class, redshift) of candidates")
+    _config_arg(p)
+    p.add_argument("--file", required=True, metavar="FILE",
+                   help="CSV, ECSV, VOTable, FITS or Parquet with columns astro_id (or candidate_id, id), "
+                        "spec_class (or spectroscopic_class, class: quasar, star, galaxy) and optionally redshift (or z)")
+    p.set_defaults(func=_cmd_outcome)
+
+    p = sub.add_parser(
+        "tune", help="re-apply changed cuts to the run's feature cache in seconds; cut-flow before and after",
+        description="Compare the run's selection with the config file's (plus --set changes) on the cached "
+                    "features, without matching again. Writes nothing unless --plots or --write is given.")
+    _config_arg(p)
+    p.add_argument("--set", action="append", metavar="KEY=VALUE",
+                   help="change a selection setting, e.g. motion.parallax_snr_max=4, "
+                        "colours.criteria='[\"assef2018_r75\"]', classifier.threshold=0.7 (repeatable; "
+                        "KEY= restores the default)")
+    p.add_argument("--truth", metavar="FILE", default=None,
+                   help="truth labels (columns id and population or label) for completeness and purity; "
+                        "default: catalogues/truth.parquet beside the config, if present")
+    p.add_argument("--plots", metavar="DIR", default=None, help="write PNG diagnostics of the new selection here")
+    p.add_argument("--write", action="store_true",
+                   help="make the new selection the run's result (rewrites the run's candidates and cut-flows)")
+    p.set_defaults(func=_cmd_tune)
+
+    p = sub.add_parser("report", help="one self-contained HTML page of a run: provenance, cut-flow, plots, top targets",
+                       formatter_class=argparse.ArgumentDefaultsHelpFormatter)
+    p.add_argument("--run", required=True, metavar="DIR",
+                   help="the run folder (project.output_dir/run), which holds provenance.json")
+    p.add_argument("--out", default=None, metavar="FILE", help="where to write the page (default: DIR/report.html)")
+    p.add_argument("--top", type=int, default=50, help="rows of the top-targets table")
+    p.set_defaults(func=_cmd_report)
     return parser
-
-
-def _add_optional_commands(sub) -> None:
-    """Subcommands that live beside their own modules (each module exposes ``add_command(sub)``)."""
-    import importlib
-
-    for name in ("selector.batch", "selector.classify", "selector.followup", "selector.report"):
-        try:
-            module = importlib.import_module(name)
-        except ImportError as exc:
-            if exc.name == name:
-                continue
-            raise
-        hook = getattr(module, "add_commands", None)
-        if hook is not None:
-            hook(sub, _config_arg)
 
 
 def main(argv=None) -> int:

@@ -11,7 +11,7 @@ import pytest
 
 os.environ.setdefault("MPLBACKEND", "Agg")
 
-from selector.config import from_dict  # noqa: E402
+from selector.settings.config import from_dict  # noqa: E402
 
 #: A minimal valid configuration as plain data; tests copy and edit it.
 BASE = {

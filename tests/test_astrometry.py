@@ -12,7 +12,7 @@ from astropy.time import Time
 from erfa import ErfaWarning
 from scipy import stats
 
-from selector import astrometry as am
+from selector.core import astrometry as am
 
 
 def _sky(rng, n):

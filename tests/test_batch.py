@@ -16,16 +16,18 @@ import subprocess
 import sys
 from pathlib import Path
 
-import pyarrow as pa
 import pyarrow.compute as pc
 import pyarrow.parquet as pq
 import pytest
 
-from selector import batch, cli, demo, tiles
-from selector.config import load_config
+from selector.jobs.run import batch
+from selector import cli
+from selector.demo import mocksky as demo
+from selector.core import tiles
+from selector.settings.config import load_config
 from selector.errors import SelectorError
-from selector.ingest import ingest
-from selector.manifest import Manifest
+from selector.jobs.ingest import ingest
+from selector.store.manifest import Manifest
 
 MERGED = ("candidates.ecsv", "candidates.csv", "candidates.parquet", "cutflow.csv", "provenance.json")
 

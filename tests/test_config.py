@@ -8,9 +8,9 @@ from pathlib import Path
 
 import pytest
 
-from selector import config as cfgmod
-from selector._validate import to_plain
-from selector.config import config_hash, load_config
+from selector.settings import config as cfgmod
+from selector.settings.validate import to_plain
+from selector.settings.config import config_hash, load_config
 from selector.errors import ConfigError
 
 from conftest import base_config, build

@@ -10,7 +10,7 @@ from astropy.coordinates import Angle, SkyCoord, UnitSphericalRepresentation, se
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from selector import crossmatch as cm
+from selector.core import crossmatch as cm, frames
 
 pytestmark = pytest.mark.filterwarnings("error")  # NaN rows and empty inputs must stay silent
 
@@ -73,8 +73,8 @@ def _assert_sorted(pairs):
 
 def _brute_separation_arcsec(ra_a, dec_a, ra_b, dec_b):
     """All-pairs angles by atan2(|u x v|, u.v) (common practice: the stable form at every angle)."""
-    ua = cm.radec_to_xyz(ra_a, dec_a)
-    ub = cm.radec_to_xyz(ra_b, dec_b)
+    ua = frames.radec_to_xyz(ra_a, dec_a)
+    ub = frames.radec_to_xyz(ra_b, dec_b)
     cross = np.linalg.norm(np.cross(ua[:, None, :], ub[None, :, :]), axis=-1)
     return np.degrees(np.arctan2(cross, ua @ ub.T)) * 3600.0
 
@@ -117,19 +117,19 @@ def test_unit_vectors_are_bit_identical_to_reference():
     # reference: astropy UnitSphericalRepresentation -> Cartesian
     ref = SkyCoord(ra * u.deg, dec * u.deg).data.represent_as(UnitSphericalRepresentation)
     ref = ref.to_cartesian().xyz.value.T
-    xyz = cm.radec_to_xyz(ra, dec)
+    xyz = frames.radec_to_xyz(ra, dec)
     assert xyz.shape == (ra.size, 3) and xyz.flags.c_contiguous
     np.testing.assert_array_equal(xyz, ref)
-    np.testing.assert_array_equal(cm.radec_to_xyz(ra, dec, workers=1), xyz)  # threads change nothing
+    np.testing.assert_array_equal(frames.radec_to_xyz(ra, dec, workers=1), xyz)  # threads change nothing
 
 
 def test_unit_vectors_wrap_ra_and_reject_bad_dec():
     ra = np.array([-10.0, 370.0, 720.0, 0.0])
-    np.testing.assert_allclose(cm.radec_to_xyz(ra, np.zeros(4)), cm.radec_to_xyz(np.mod(ra, 360), np.zeros(4)),
+    np.testing.assert_allclose(frames.radec_to_xyz(ra, np.zeros(4)), frames.radec_to_xyz(np.mod(ra, 360), np.zeros(4)),
                                rtol=0, atol=1e-15)
     with pytest.raises(ValueError, match="dec_deg"):
-        cm.radec_to_xyz([0.0, 1.0], [0.0, 90.0001])
-    nan = cm.radec_to_xyz([np.nan, 1.0], [0.0, np.nan])
+        frames.radec_to_xyz([0.0, 1.0], [0.0, 90.0001])
+    nan = frames.radec_to_xyz([np.nan, 1.0], [0.0, np.nan])
     assert np.isnan(nan).all()
 
 
@@ -189,7 +189,7 @@ def _near_boundary(rng, radius_arcsec, n_centres, reps, rel, keep_ulps=None):
     ra_b, dec_b = ra_b.ravel(), dec_b.ravel()
     owner = np.repeat(np.arange(n_centres), reps)
     if keep_ulps is not None:
-        d = np.repeat(cm.radec_to_xyz(ra0, dec0), reps, axis=0) - cm.radec_to_xyz(ra_b, dec_b)
+        d = np.repeat(frames.radec_to_xyz(ra0, dec0), reps, axis=0) - frames.radec_to_xyz(ra_b, dec_b)
         sq = d[:, 0] ** 2 + d[:, 1] ** 2 + d[:, 2] ** 2
         r2 = cm.chord_from_arcsec(radius_arcsec) ** 2
         close = np.abs(sq - r2) <= keep_ulps * np.spacing(r2)

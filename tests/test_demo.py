@@ -9,7 +9,7 @@ from astropy.table import Table
 from astropy.time import Time
 import astropy.units as u
 
-from selector import demo
+from selector.demo import mocksky as demo
 
 SCALE = 0.05
 

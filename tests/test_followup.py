@@ -15,10 +15,10 @@ import pyarrow as pa
 import pytest
 from astropy.table import Table
 
-from selector import followup as fu
+from selector.jobs import followup as fu
 from selector.cli import main
 from selector.errors import ConfigError, InputError
-from selector.io import write_parquet
+from selector.store.io import write_parquet
 
 from conftest import base_config, build
 
@@ -204,7 +204,7 @@ def test_airmass_limit_is_the_altitude_of_sec_z(tmp_path):
 # --- priorities ---------------------------------------------------------------------------------
 
 def test_priority_rule():
-    from selector.config import PriorityConfig
+    from selector.settings.config import PriorityConfig
 
     p = PriorityConfig(class1_score_top_fraction=0.2, class1_mag_max=14.0, class1_hours_min=2.0,
                        class2_score_top_fraction=0.6, class2_mag_max=15.0, class2_hours_min=1.0)
@@ -477,7 +477,7 @@ def test_missing_candidates_is_one_line(tmp_path):
 def test_demo_config_has_a_semester_for_the_demo_site():
     from pathlib import Path
 
-    from selector.config import load_config
+    from selector.settings.config import load_config
 
     cfg = load_config(Path(__file__).resolve().parents[1] / "configs" / "demo.toml")
     t = cfg.targets

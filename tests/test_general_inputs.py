@@ -9,12 +9,12 @@ import pytest
 from astropy.table import Table
 import astropy.units as u
 
-from selector import demo
-from selector.batch import run
-from selector.config import from_dict, load_config
-from selector.ingest import ingest
-from selector.io import read_parquet
-from selector.photometry import VEGA_TO_AB_MAG
+from selector.demo import mocksky as demo
+from selector.jobs.run.batch import run
+from selector.settings.config import from_dict, load_config
+from selector.jobs.ingest import ingest
+from selector.store.io import read_parquet
+from selector.core.photometry import VEGA_TO_AB_MAG
 
 
 def _col(t: pa.Table, name: str) -> np.ndarray:

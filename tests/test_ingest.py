@@ -9,9 +9,9 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
 
-from selector import tiles
+from selector.core import tiles
 from selector.errors import InputError
-from selector.ingest import ingest, ingest_catalogue
+from selector.jobs.ingest import ingest, ingest_catalogue
 
 from conftest import base_config, build, random_astro, random_ir, write_parquet
 
@@ -112,7 +112,7 @@ def test_unparsable_csv_value_rejects_its_row_only(tmp_path, rng):
 
 
 def test_chunked_spooled_reading_gives_the_same_tiles(tmp_path, rng, monkeypatch):
-    import selector.ingest as ingest_module
+    import selector.jobs.ingest as ingest_module
 
     a = random_astro(5000, rng)
     a["sid"][4500] = a["sid"][10]  # a duplicate that lands in another chunk and another spool flush

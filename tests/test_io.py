@@ -17,9 +17,10 @@ import pyarrow.parquet as pq
 import pytest
 from astropy.table import MaskedColumn, Table
 
-from selector import io, tiles
+from selector.store import io
+from selector.core import tiles
 from selector.errors import InputError
-from selector.ingest import ingest_catalogue
+from selector.jobs.ingest import ingest_catalogue
 
 from conftest import base_config, build, random_astro
 
@@ -334,7 +335,7 @@ def test_atomic_outputs_follow_the_umask(tmp_path):
     import os
     import stat
 
-    from selector.io import write_text
+    from selector.store.io import write_text
 
     path = write_text("x", tmp_path / "out.txt")
     mask = os.umask(0)

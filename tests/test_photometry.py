@@ -7,7 +7,7 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from selector import photometry as ph
+from selector.core import photometry as ph
 
 pytestmark = pytest.mark.filterwarnings("error")  # NaN and overflow must stay silent
 

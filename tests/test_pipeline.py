@@ -8,13 +8,15 @@ import pyarrow as pa
 import pyarrow.compute as pc
 import pytest
 
-from selector import demo, tiles
-from selector.astrometry import propagate
-from selector.batch import run
-from selector.config import load_config
-from selector.ingest import ingest
-from selector.io import read_parquet
-from selector.pipeline import check_accounting, process_tile
+from selector.demo import mocksky as demo
+from selector.core import tiles
+from selector.core.astrometry import propagate
+from selector.jobs.run.batch import run
+from selector.settings.config import load_config
+from selector.jobs.ingest import ingest
+from selector.store.io import read_parquet
+from selector.core.selection import check_accounting
+from selector.jobs.run.tile import process_tile
 
 from conftest import base_config, build, write_parquet
 

@@ -13,9 +13,13 @@ import numpy as np
 import pytest
 from PIL import Image
 
-from selector import batch, demo, ingest, photometry as ph, plots, report, tune
+from selector.jobs.run import batch
+from selector.demo import mocksky as demo
+from selector.jobs import ingest, tune
+from selector.core import photometry as ph
+from selector.present import plots, report
 from selector.cli import main
-from selector.config import load_config
+from selector.settings.config import load_config
 
 PNG_MAGIC = b"\x89PNG\r\n\x1a\n"
 
@@ -200,7 +204,7 @@ def test_report_is_self_contained_and_complete(demo_run, moved_run):
 
 
 def load_config_candidates(cfg) -> int:
-    from selector.io import read_parquet
+    from selector.store.io import read_parquet
 
     return read_parquet(cfg.run_dir / "candidates.parquet").num_rows
 

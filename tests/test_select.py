@@ -6,7 +6,8 @@ import numpy as np
 import pyarrow as pa
 import pytest
 
-from selector.pipeline import criteria_score, galactic, select
+from selector.core.selection import criteria_score, select
+from selector.core.frames import galactic
 
 from conftest import base_config, build
 

@@ -6,7 +6,6 @@ import hashlib
 import json
 import shutil
 import sys
-import types
 from pathlib import Path
 
 import numpy as np
@@ -14,11 +13,14 @@ import pyarrow as pa
 import pyarrow.csv as pacsv
 import pytest
 
-from selector import batch, demo, ingest, pipeline, tune
+from selector.jobs.run import batch, tile as tile_job
+from selector.demo import mocksky as demo
+from selector.jobs import ingest, tune
+from selector.core import selection
 from selector.cli import main
-from selector.config import from_dict, load_config, plain
+from selector.settings.config import from_dict, load_config, plain
 from selector.errors import ConfigError, SelectorError
-from selector.io import read_parquet
+from selector.store.io import read_parquet
 
 ROOT = Path(__file__).resolve().parents[1]
 
@@ -130,7 +132,7 @@ def test_tune_equals_a_full_rerun(demo_run, reruns, name, block_rows, monkeypatc
     prov = json.loads((new.run_dir / "provenance.json").read_text())
     assert [list(x) for x in ev.cutflow] == prov["cutflow"]
     for i, tile in enumerate(cache.tiles):
-        recorded = pipeline.read_tile_cutflow(new, int(tile))
+        recorded = tile_job.read_tile_cutflow(new, int(tile))
         assert [list(x) for x in ev.tile_cutflow(i)] == recorded["cutflow"], tile
         assert cache.rejects_per_tile[i] == recorded["rejects"]
     # the "before" side is the run as recorded
@@ -152,16 +154,16 @@ def test_tile_rejects_are_counted_as_the_run_counts_them(demo_run, tmp_path):
     err[[0, 2]] = 0.0
     features = features.set_column(features.schema.get_field_index("parallax_error_mas"),
                                    features.schema.field("parallax_error_mas"), pa.array(err))
-    from selector.io import write_parquet
+    from selector.store.io import write_parquet
 
     write_parquet(features, path)
     cache = tune.load_cache(moved)
     assert cache.rejects_per_tile[i] == 2 and cache.rejects_per_tile.sum() == 2
     ev = tune.evaluate(cache, moved)
-    res = pipeline.select_tile(moved, int(cache.tiles[i]), int(cache.rows_per_tile[i]), features)
+    res = tile_job.select_tile(moved, int(cache.tiles[i]), int(cache.rows_per_tile[i]), features)
     assert res.rejects.num_rows == 2
     assert [list(x) for x in ev.tile_cutflow(i)] == [list(x) for x in res.cutflow]
-    pipeline.check_accounting(int(cache.rows_per_tile[i]), 2, ev.tile_cutflow(i))
+    selection.check_accounting(int(cache.rows_per_tile[i]), 2, ev.tile_cutflow(i))
 
 
 def test_stage_list_follows_the_config(demo_run):
@@ -181,7 +183,7 @@ def test_classifier_scores_are_applied_like_select_tile(demo_run):
     changed = tune.with_settings(cfg, ["classifier.threshold=0.6"])
 
     def scorer(table):  # any per-row function of the features will do
-        c = pipeline._col(table, "ir_3p4_vegamag") - pipeline._col(table, "ir_4p6_vegamag")
+        c = selection._col(table, "ir_3p4_vegamag") - selection._col(table, "ir_4p6_vegamag")
         return 1.0 / (1.0 + np.exp(-4.0 * (np.nan_to_num(c) - 0.7)))
 
     cache = tune.load_cache(changed, columns=None)
@@ -191,12 +193,12 @@ def test_classifier_scores_are_applied_like_select_tile(demo_run):
     parts = []
     for i, tile in enumerate(cache.tiles):
         features = read_parquet(cache.folders[i] / "features.parquet")
-        res = pipeline.select_tile(changed, int(tile), int(cache.rows_per_tile[i]), features, scorer)
+        res = tile_job.select_tile(changed, int(tile), int(cache.rows_per_tile[i]), features, scorer)
         assert [list(x) for x in ev.tile_cutflow(i)] == [list(x) for x in res.cutflow]
         if res.candidates.num_rows:
             parts.append(res.candidates)
     assert _same(tune.candidates(cache, ev),
-                 pipeline.rank_candidates(pa.concat_tables(parts, promote_options="permissive")))
+                 selection.rank_candidates(pa.concat_tables(parts, promote_options="permissive")))
 
 
 def test_model_in_config_is_loaded_once_through_classify(demo_run, monkeypatch):
@@ -207,17 +209,16 @@ def test_model_in_config_is_loaded_once_through_classify(demo_run, monkeypatch):
         calls.append(model_path)
         return lambda table: np.linspace(0.0, 1.0, table.num_rows)
 
-    monkeypatch.setitem(sys.modules, "selector.classify", types.SimpleNamespace(load_scorer=load_scorer))
+    monkeypatch.setattr(tune, "load_scorer", load_scorer)
     out = tune.tune(path, ["classifier.model=model.skops", "classifier.threshold=0.9"])
     assert len(calls) == 1 and calls[0].endswith("model.skops")
     p = out.after.selection.derived["p_quasar"]
     assert out.after.cutflow[-1] == ("classifier", int(((p >= 0.9) & out.after.stage_mask("infrared_colour")).sum()))
 
 
-def test_missing_classifier_module_is_a_clear_error(demo_run, monkeypatch):
+def test_missing_model_file_is_a_clear_error(demo_run):
     _, path, _ = demo_run
-    monkeypatch.setitem(sys.modules, "selector.classify", None)  # as if the module were not installed
-    with pytest.raises(SelectorError, match="classifier.model = 'model.skops' is set but"):
+    with pytest.raises(SelectorError, match="model.skops"):
         tune.tune(path, ["classifier.model=model.skops"])
 
 
@@ -320,7 +321,7 @@ def test_write_makes_the_tuned_selection_the_run_result(demo_run, reruns, tmp_pa
 def test_plots_option_writes_every_picture(demo_run, tmp_path, capsys):
     _, path, _ = demo_run
     assert main(["tune", "--config", str(path), "--set", "motion.parallax_snr_max=4", "--plots", str(tmp_path)]) == 0
-    from selector.plots import PLOTS
+    from selector.present.plots import PLOTS
 
     for name, _, _ in PLOTS:
         assert (tmp_path / f"{name}.png").read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"

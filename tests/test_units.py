@@ -16,9 +16,9 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
 
-from selector import schema, tiles
+from selector.core import schema, tiles
 from selector.errors import ConfigError
-from selector.ingest import ingest_catalogue
+from selector.jobs.ingest import ingest_catalogue
 
 from conftest import base_config, build
 

@@ -17,7 +17,7 @@ import astropy.units as u
 import numpy as np
 import pytest
 
-from selector import photometry as ph
+from selector.core import photometry as ph
 
 EPS = 1e-6  # mag (or dex for the wedge): far above float64 rounding at m ~ 20
 

@@ -13,7 +13,7 @@ import numpy as np
 import pytest
 from astropy_healpix import HEALPix
 
-from selector import tiles
+from selector.core import tiles
 
 ORDERS = [0, 1, 2, 5, 8, 12, 29]
 #: Latitude where three base pixels meet, z = ±2/3 (Górski et al. 2005): tiles there have 7 neighbours.

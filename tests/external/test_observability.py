@@ -18,8 +18,8 @@ from astropy.coordinates import AltAz, SkyCoord, get_body, get_sun
 from astropy.coordinates.errors import NonRotationTransformationWarning
 from astropy.time import Time
 
-from selector import followup as fu
-from selector.config import SiteConfig
+from selector.jobs import followup as fu
+from selector.settings.config import SiteConfig
 
 SITE = SiteConfig(latitude_deg=-29.0, longitude_deg=-70.0, height_m=2400.0, name="test site")
 MJD_2027_04_01 = 61496.0  # 2027-04-01T00:00 UTC (astropy Time("2027-04-01").mjd)

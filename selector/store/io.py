@@ -23,7 +23,7 @@ import pyarrow as pa
 import pyarrow.csv as pacsv
 import pyarrow.parquet as pq
 
-from .errors import InputError
+from selector.errors import InputError
 
 _ENDINGS = {
     ".parquet": "parquet", ".pq": "parquet", ".fits": "fits", ".fit": "fits", ".fits.gz": "fits",
@@ -77,17 +77,40 @@ def guess_format(path: Path) -> str:
     raise InputError(f"{path}: cannot tell the format from the file name; set format = parquet, fits, csv, ecsv or votable")
 
 
-def iter_chunks(paths: Sequence[Path], fmt: str, columns: Sequence[str], chunk_rows: int) -> Iterator[Chunk]:
-    """Yield the requested columns of every file in chunks of at most ``chunk_rows`` rows."""
+def iter_chunks(paths: Sequence[Path], fmt: str, columns: Sequence[str] | None, chunk_rows: int) -> Iterator[Chunk]:
+    """Yield the requested columns (None: all) of every file in chunks of at most ``chunk_rows`` rows.
+
+    CSV columns come as text, so that an unparsable value can reject its own row.
+    """
     for path in paths:
         kind = guess_format(path) if fmt == "auto" else fmt
         reader = {"parquet": _parquet, "csv": _csv}.get(kind, _astropy)
         try:
-            yield from reader(path, kind, list(columns), chunk_rows)
+            yield from reader(path, kind, None if columns is None else list(columns), chunk_rows)
         except InputError:
             raise
         except (OSError, ValueError, pa.ArrowException, TypeError) as exc:
             raise InputError(f"{path}: cannot read as {kind} ({_first_line(exc)})") from None
+
+
+def read_table(path: Path, columns: Sequence[str] | None = None, fmt: str = "auto",
+               what: str = "table") -> tuple[pa.Table, dict[str, str]]:
+    """A whole small file (labels, truth, outcomes) in any supported format, with its column units.
+
+    The one reader for small side tables, built on :func:`iter_chunks`, so every format behaves as
+    it does at ingest (CSV values come as text). ``what`` names the file in the error when it is
+    missing.
+    """
+    path = Path(path)
+    if not path.is_file():
+        raise InputError(f"{path}: {what} not found")
+    parts, units = [], {}
+    for chunk in iter_chunks([path], fmt, columns, 1 << 20):
+        parts.append(chunk.table)
+        units.update(chunk.units)
+    if not parts:
+        return pa.table({c: pa.array([], pa.string()) for c in columns or ()}), units
+    return pa.concat_tables(parts, promote_options="permissive"), units
 
 
 def _first_line(exc) -> str:
@@ -109,6 +132,7 @@ def _parquet(path, kind, columns, chunk_rows):
     # pre_buffer (on by default) keeps the bytes of every row group read so far until the file is
     # closed, so memory would grow with the file's size; streaming needs it off.
     pf = pq.ParquetFile(path, pre_buffer=False)
+    columns = pf.schema_arrow.names if columns is None else columns
     _missing(path, pf.schema_arrow.names, columns)
     units = _arrow_units(pf.schema_arrow)
     first = 0
@@ -140,6 +164,7 @@ def _csv(path, kind, columns, chunk_rows):
             head += block
     header = head.split(b"\n", 1)[0].decode("utf-8-sig", "replace").strip().split(",")
     header = [h.strip().strip('"') for h in header]
+    columns = header if columns is None else columns
     _missing(path, header, columns)
     convert = pacsv.ConvertOptions(include_columns=columns, column_types={c: pa.string() for c in columns},
                                    strings_can_be_null=True, quoted_strings_can_be_null=True)
@@ -170,6 +195,7 @@ def _astropy(path, kind, columns, chunk_rows):
         tab = Table.read(path, format=fmt, **kwargs)
     except Exception as exc:  # astropy raises many types for unreadable files
         raise InputError(f"{path}: cannot read as {kind} ({_first_line(exc)})") from None
+    columns = tab.colnames if columns is None else columns
     _missing(path, tab.colnames, columns)
     units = {c: str(tab[c].unit) for c in columns if tab[c].unit is not None}
     for first in range(0, max(len(tab), 1), chunk_rows):

@@ -18,9 +18,9 @@ from typing import Optional
 
 import astropy.units as u
 
-from . import schema
-from ._validate import build, convert, setting, suggest, to_plain
-from .errors import ConfigError
+from selector.core import schema
+from selector.settings.validate import build, convert, setting, suggest, to_plain
+from selector.errors import ConfigError
 
 _BAND_NAME = re.compile(r"^[a-z][a-z0-9]{0,15}$")
 FORMATS = ("auto", "parquet", "fits", "csv", "ecsv", "votable")
@@ -431,7 +431,7 @@ def _quantity_names(cfg: Config) -> set[str]:
 
 
 def _check_selection(cfg: Config) -> None:
-    from .photometry import CRITERIA
+    from selector.core.photometry import CRITERIA
 
     for i, name in enumerate(cfg.colours.criteria):
         if name not in CRITERIA:
@@ -474,7 +474,7 @@ def _check_targets(cfg: Config) -> None:
 
 
 def _check_margin(cfg: Config) -> None:
-    from .tiles import max_margin_arcsec
+    from selector.core.tiles import max_margin_arcsec
 
     shift = cfg.match.max_proper_motion_mas_yr * abs(cfg.epoch_difference_yr) / 1000.0
     need = cfg.match.radius_arcsec + shift

@@ -14,7 +14,7 @@ import types
 import typing
 from typing import Any, Union, get_args, get_origin, get_type_hints
 
-from .errors import ConfigError
+from selector.errors import ConfigError
 
 
 def setting(default=dataclasses.MISSING, *, doc: str = "", default_factory=dataclasses.MISSING, **rules):

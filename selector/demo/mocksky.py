@@ -1287,9 +1287,9 @@ def write_demo_config(out_dir) -> pathlib.Path:
 
 def evaluate_run(cfg, truth_path) -> "object":
     """Completeness and contamination of a finished run against the mock truth."""
-    from . import tiles
-    from .io import read_parquet
-    from .truth import compare
+    from selector.core import tiles
+    from selector.store.io import read_parquet
+    from selector.core.truth import compare
 
     def whole(kind):
         parts = [read_parquet(tiles.tile_file(cfg.tiles_dir, kind, cfg.tiling.order, t))
@@ -1304,11 +1304,11 @@ def evaluate_run(cfg, truth_path) -> "object":
 def run_demo(out_dir, seed: int = 1, scale: float = 1.0, workers=None, log=print):
     """Write the mock sky and its config into ``out_dir``, ingest, run, score against the truth,
     then make the follow-up list for the demo site and the HTML report."""
-    from .batch import run
-    from .config import load_config
-    from .followup import make_targets
-    from .ingest import ingest
-    from .report import write_report
+    from selector.jobs.run.batch import run
+    from selector.settings.config import load_config
+    from selector.jobs.followup import make_targets
+    from selector.jobs.ingest import ingest
+    from selector.present.report import write_report
 
     out = pathlib.Path(out_dir)
     log(f"writing an invented mock sky (seed {seed}, scale {scale}) to {out / 'catalogues'}")

@@ -49,10 +49,12 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
 
-from . import __version__, schema, tiles
-from .config import CLASSIFIER_CLASSES, MATCH_SECTIONS, Config, config_hash, plain
-from .errors import InputError, SelectorError
-from .io import atomic_path, iter_chunks, read_parquet, write_json, write_parquet
+from selector import __version__
+from selector.core import schema, tiles
+from selector.jobs import followup
+from selector.settings.config import CLASSIFIER_CLASSES, MATCH_SECTIONS, Config, config_hash, plain
+from selector.errors import InputError, SelectorError
+from selector.store.io import atomic_path, iter_chunks, read_parquet, write_json, write_parquet
 
 __all__ = [
     "CLASSES",
@@ -61,7 +63,6 @@ __all__ = [
     "LabelledSet",
     "Model",
     "TrainResult",
-    "add_commands",
     "collect_labelled",
     "feature_matrix",
     "feature_specs",
@@ -175,7 +176,7 @@ def _column(table: pa.Table, name: str) -> np.ndarray:
 
 def _zero_motion(table: pa.Table, cfg: Config):
     """Rows that pass the zero-motion test of ``cfg`` and the statistics behind it."""
-    from .pipeline import select
+    from selector.core.selection import select
 
     sel = select(table, cfg)
     passed = dict(sel.stages)["proper_motion"]
@@ -202,7 +203,7 @@ def feature_matrix(table: pa.Table, cfg: Config, names=None, statistics=None) ->
         _, plx_snr, chi2 = _zero_motion(table, cfg)
     else:
         plx_snr, chi2 = statistics
-    from .photometry import vega_to_ab
+    from selector.core.photometry import vega_to_ab
 
     ir_ab = {}
     for b in cfg.infrared_bands():
@@ -348,15 +349,8 @@ def _label_sources(cfg: Config) -> list[_Source]:
     c = cfg.classifier
     order = cfg.tiling.order
     sources = []
-    try:
-        from . import followup
-    except ImportError as exc:
-        if exc.name != "selector.followup":
-            raise
-        followup = None
-    outcomes = getattr(followup, "training_labels", None) if followup is not None else None
-    if outcomes is not None:
-        t = outcomes(cfg)
+    if cfg.targets is not None:
+        t = followup.training_labels(cfg)
         if t.num_rows:
             sources.append(_id_source("follow-up outcomes", 0, t.column("astro_id"), t.column("label"),
                                       c.class_map))
@@ -448,9 +442,9 @@ def collect_labelled(cfg: Config) -> LabelledSet:
     within ``classifier.known_radius_arcsec`` only (so a neighbour of a known star is not called a
     star too).
     """
-    from .batch import match_key
-    from .crossmatch import nearest_within, pairs_within
-    from .pipeline import tile_rejects
+    from selector.store.keys import match_key
+    from selector.core.crossmatch import nearest_within, pairs_within
+    from selector.core.selection import tile_rejects
 
     files = _feature_files(cfg)
     sources = _label_sources(cfg)
@@ -738,8 +732,8 @@ def _calibration_curve(p: np.ndarray, positive: np.ndarray, n_bins: int = 10) ->
 
 
 def _criteria_scores(table: pa.Table, cfg: Config) -> dict:
-    from .photometry import CRITERIA, CRITERION_BANDS
-    from .pipeline import infrared_mags
+    from selector.core.photometry import CRITERIA, CRITERION_BANDS
+    from selector.core.selection import infrared_mags
 
     mags = infrared_mags(table, cfg.infrared_bands())
     out = {}
@@ -1372,18 +1366,3 @@ def train(cfg: Config, log=print) -> TrainResult:
         pass
     log(f"to score candidates with it, set classifier.model = \"{shown}\" and run `selector run`")
     return result
-
-
-def _cmd_train(args) -> int:
-    from .config import load_config
-
-    train(load_config(args.config), log=print)
-    return 0
-
-
-def add_commands(sub, config_arg) -> None:
-    """Register ``selector train``."""
-    p = sub.add_parser("train", help="train the quasar classifier on labelled sources of the feature cache; write "
-                                     "the model, its card and a held-out evaluation")
-    config_arg(p)
-    p.set_defaults(func=_cmd_train)

@@ -20,7 +20,7 @@ from pathlib import Path
 
 import numpy as np
 
-from . import photometry as ph
+from selector.core import photometry as ph
 
 __all__ = ["PLOTS", "PlotData", "colour_colour", "colour_magnitude", "cutflow_funnel", "figure_png",
            "motion_statistics", "render_plots", "score_distribution", "sky_map", "write_plots"]
@@ -462,7 +462,7 @@ def render_plots(data: PlotData) -> dict[str, bytes]:
 
 def write_plots(data: PlotData, folder: Path) -> dict[str, Path]:
     """Write every picture as ``<folder>/<name>.png`` (atomically); returns the paths."""
-    from .io import atomic_path
+    from selector.store.io import atomic_path
 
     folder = Path(folder)
     out = {}

@@ -25,7 +25,6 @@ A run goes through four steps, all recorded in the run manifest (:mod:`selector.
 from __future__ import annotations
 
 import fcntl
-import hashlib
 import json
 import os
 import shutil
@@ -37,28 +36,39 @@ import traceback
 from concurrent.futures import ProcessPoolExecutor, ThreadPoolExecutor, as_completed
 from dataclasses import dataclass, field
 from pathlib import Path
-
 import numpy as np
 import pyarrow as pa
+from selector import __version__
+from selector.core import schema, tiles
+from selector.core.frames import galactic_matrix
+from selector.settings.config import MATCH_SECTIONS, SELECTION_SECTIONS, Config, config_hash
+from selector.errors import InputError, SelectorError
+from selector.store.io import file_sha256, read_parquet, write_json, write_parquet, write_table, write_text
+from selector.store.keys import combined_digest, digest, match_key, model_key, model_path, model_sha, result_config, selection_key, table_digest
+from selector.store.manifest import Manifest, pid_alive, utc_now
+from selector.core.selection import check_accounting, rank_candidates
+from selector.store.tilereader import load_tile
+from selector.core.tilematch import match_tile
+from selector.jobs.run.tile import select_tile, tile_output_dir
 
-from . import __version__, schema, tiles
-from .config import MATCH_SECTIONS, SELECTION_SECTIONS, Config, config_hash, plain
-from .errors import InputError, SelectorError
-from .io import file_sha256, read_parquet, write_json, write_parquet, write_table, write_text
-from .manifest import Manifest, pid_alive, utc_now
-from .pipeline import check_accounting, load_tile, match_tile, rank_candidates, select_tile, tile_output_dir
 
 #: Files of a tile that depend only on the matching (the feature cache).
 FEATURE_FILES = ("features.parquet", "infrared.parquet")
+
+
 #: Files of a tile that the selection writes.
 SELECTION_FILES = ("candidates.parquet", "rejects.parquet", "cutflow.json")
+
+
 #: Merged outputs, in the order they are written.
 MERGED_FILES = ("ecsv", "csv", "parquet", "cutflow", "provenance")
+
 
 #: Environment variable naming a moment at which the run kills itself with SIGKILL (tests only):
 #: ``planned``, ``tile@N`` (N-th tile result received, not yet recorded), ``recorded@N``,
 #: ``merge:<ecsv|csv|parquet|cutflow|provenance>`` (after writing that merged file) or ``merged``.
 KILL_AT_ENV = "SELECTOR_TEST_KILL_AT"
+
 
 # a file modified this recently may still change within the file system's timestamp resolution,
 # so its fingerprint is re-read next time instead of being trusted from size and time
@@ -108,78 +118,9 @@ class RunResult:
     log_file: Path | None = None
 
 
-# --- keys ---------------------------------------------------------------------------------------
-
-def _sha(*parts) -> str:
-    return hashlib.sha256(json.dumps(parts, sort_keys=True, separators=(",", ":")).encode()).hexdigest()
-
-
-def result_config(cfg: Config) -> dict:
-    """The configuration as recorded with results: every section except ``[run]``.
-
-    How a run is executed (workers, executor, progress) never changes its results, so it is kept
-    out of the hash and the record; the same selection run locally or on a cluster gives the same
-    bytes.
-    """
-    data = plain(cfg)
-    data.pop("run", None)
-    return data
-
-
-def _model_path(cfg: Config) -> Path | None:
-    return cfg.path(cfg.classifier.model) if cfg.classifier.model else None
-
-
-def _model_sha(cfg: Config) -> str | None:
-    path = _model_path(cfg)
-    if path is None:
-        return None
-    if not path.is_file():
-        raise SelectorError(f"classifier.model = {cfg.classifier.model!r}: no such file ({path}); train one with "
-                            "`selector train` or remove the key")
-    return file_sha256(path)
-
-
-def _model_key(cfg: Config, model_sha: str | None) -> str | None:
-    """The model file's digest, with its card's when there is one (the card is read when scoring)."""
-    if model_sha is None:
-        return None
-    try:
-        from .classify import card_path
-    except ImportError:
-        return model_sha
-    card = card_path(_model_path(cfg))
-    return _sha(model_sha, file_sha256(card)) if card.is_file() else model_sha
-
-
-def match_key(cfg: Config) -> str:
-    """What a tile's feature cache depends on besides its input rows."""
-    return _sha("match", config_hash(cfg, MATCH_SECTIONS), __version__)
-
-
-def selection_key(cfg: Config, model_key: str | None) -> str:
-    """What a tile's selection depends on besides its feature cache."""
-    return _sha("selection", config_hash(cfg, SELECTION_SECTIONS), model_key, __version__)
-
-
-def table_digest(table: pa.Table) -> str:
-    """SHA-256 of a table's columns, types, field metadata and values (schema metadata ignored)."""
-    t = table.replace_schema_metadata(None).combine_chunks()
-    sink = pa.BufferOutputStream()
-    with pa.ipc.new_stream(sink, t.schema) as writer:
-        writer.write_table(t)
-    return hashlib.sha256(sink.getvalue()).hexdigest()[:32]
-
-
-def _combined(items: dict) -> str:
-    return hashlib.sha256("".join(f"{k}={v or '-'}\n" for k, v in sorted(items.items())).encode()).hexdigest()
-
-
 def _rel(cfg: Config, kind: str, tile: int) -> str:
     return f"{kind}/order{cfg.tiling.order:02d}/tile{int(tile):08d}.parquet"
 
-
-# --- provenance ---------------------------------------------------------------------------------
 
 def _ingest_summaries(cfg: Config) -> dict:
     out = {}
@@ -205,13 +146,11 @@ def provenance(cfg: Config) -> dict:
         "config_hash": config_hash(cfg, tuple(result_config(cfg))),
         "match_config_hash": config_hash(cfg, MATCH_SECTIONS),
         "selection_config_hash": config_hash(cfg, SELECTION_SECTIONS),
-        "classifier_model_sha256": _model_sha(cfg),
+        "classifier_model_sha256": model_sha(cfg),
         "input_fingerprints": {k: s["input_fingerprints"] for k, s in summaries.items()},
         "selector_version": __version__,
     }
 
-
-# --- the lock -----------------------------------------------------------------------------------
 
 _LOCK_FD: int | None = None
 
@@ -268,8 +207,6 @@ def run_lock(cfg: Config) -> RunLock:
     return RunLock(cfg.run_dir)
 
 
-# --- one tile -----------------------------------------------------------------------------------
-
 _SCORERS: dict = {}
 
 
@@ -277,7 +214,7 @@ def _scorer(cfg: Config, model: tuple[str, str] | None):
     if model is None:
         return None
     if model not in _SCORERS:
-        from .classify import load_scorer
+        from selector.jobs.classify import load_scorer
 
         _SCORERS.clear()
         _SCORERS[model] = load_scorer(model[0], cfg)
@@ -344,10 +281,10 @@ def run_tile(cfg: Config, tile: int, plan: dict | None = None) -> dict:
     """
     t0 = time.perf_counter()
     if plan is None:
-        model_sha = _model_sha(cfg)
+        sha = model_sha(cfg)
         plan = {"mode": "compute", "match_key": match_key(cfg),
-                "selection_key": selection_key(cfg, _model_key(cfg, model_sha)),
-                "model": (str(_model_path(cfg)), model_sha) if model_sha else None}
+                "selection_key": selection_key(cfg, model_key(cfg, sha)),
+                "model": (str(model_path(cfg)), sha) if sha else None}
     try:
         out = _work(cfg, int(tile), plan)
     except Exception as exc:  # a tile's failure must not end the run: it is recorded instead
@@ -376,7 +313,7 @@ def _work(cfg: Config, tile: int, plan: dict) -> dict:
                 digests[rel] = table_digest(part)
 
         own, neighbours, infrared = load_tile(cfg, tile, on_input)
-        content_key = _combined(digests)
+        content_key = combined_digest(digests)
         rows = own.num_rows
         out.update(inputs=sorted(consulted.items()), content_key=content_key, rows=rows)
         if mode == "check" and content_key == plan.get("content_key"):
@@ -412,8 +349,6 @@ def _work(cfg: Config, tile: int, plan: dict) -> dict:
     return out
 
 
-# --- executors ----------------------------------------------------------------------------------
-
 def _worker_count(cfg: Config, workers: int | None) -> int:
     n = cfg.run.workers if workers is None else workers
     return n if n and n > 0 else (os.cpu_count() or 1)
@@ -447,9 +382,7 @@ def _local_pool(cfg: Config, items: list, n: int):
 
     ctx = mp.get_context("fork") if "fork" in mp.get_all_start_methods() else None
     if ctx is not None:
-        from . import pipeline
-
-        pipeline._galactic_matrix()  # built once here (astropy frames are slow to start); forked workers inherit it
+        galactic_matrix()  # built once here (astropy frames are slow to start); forked workers inherit it
     pool = ProcessPoolExecutor(max_workers=min(n, len(items)), mp_context=ctx, initializer=_worker_init,
                                initargs=(os.getpid(),))
     try:
@@ -522,8 +455,6 @@ def _execute(cfg: Config, items: list, executor: str, n: int, scheduler: str | N
         yield from _local_pool(cfg, items, n)
 
 
-# --- fault injection (tests) --------------------------------------------------------------------
-
 _FAULT_COUNTS: dict = {}
 
 
@@ -541,8 +472,6 @@ def _fault(event: str) -> None:
         sys.stderr.flush()
         os.kill(os.getpid(), signal.SIGKILL)
 
-
-# --- progress and logging -----------------------------------------------------------------------
 
 class _Reporter:
     """Messages to the user, a progress display on a terminal (plain lines otherwise), the run log."""
@@ -628,8 +557,6 @@ def _clock(seconds: float) -> str:
     return f"{s // 3600}:{s % 3600 // 60:02d}:{s % 60:02d}" if s >= 3600 else f"{s // 60}:{s % 60:02d}"
 
 
-# --- planning -----------------------------------------------------------------------------------
-
 def _scan_inputs(cfg: Config, man: Manifest, extra: set, threads: int) -> dict:
     """SHA-256 of every tile file (relative path → digest, None if absent); unchanged files are not read."""
     root = cfg.tiles_dir
@@ -654,12 +581,12 @@ def _scan_inputs(cfg: Config, man: Manifest, extra: set, threads: int) -> dict:
     with ThreadPoolExecutor(max_workers=max(1, threads)) as pool:  # hashlib releases the GIL
         digests = list(pool.map(lambda item: _file_digest(root / item[0]), todo))
     rows = []
-    for (rel, st), digest in zip(todo, digests):
-        out[rel] = digest
-        if digest == _UNREADABLE:
+    for (rel, st), file_digest in zip(todo, digests):
+        out[rel] = file_digest
+        if file_digest == _UNREADABLE:
             continue  # the tiles that read it will fail on it, each with the reason
         mtime = -1 if now_ns - st.st_mtime_ns < _FRESH_NS else st.st_mtime_ns
-        rows.append((rel, st.st_size, mtime, digest))
+        rows.append((rel, st.st_size, mtime, file_digest))
     man.store_files(rows, [p for p in cache if out.get(p) in (None, _UNREADABLE)])
     return out
 
@@ -695,7 +622,7 @@ def _outputs_intact(cfg: Config, rec: dict, names) -> bool:
 
 
 def _inputs_key(inputs: list, shas: dict) -> str:
-    return _combined({rel: shas.get(rel) for rel in inputs})
+    return combined_digest({rel: shas.get(rel) for rel in inputs})
 
 
 def _plan(cfg: Config, records: dict, tile_ids: list, shas: dict, mkey: str, skey: str, model, force: bool):
@@ -716,8 +643,6 @@ def _plan(cfg: Config, records: dict, tile_ids: list, shas: dict, mkey: str, ske
             reused.append(t)
     return plans, reused
 
-
-# --- the run ------------------------------------------------------------------------------------
 
 def run(cfg: Config, workers: int | None = None, executor: str | None = None, scheduler: str | None = None,
         quiet: bool = False, verbose: bool = False, log=print, *, force: bool = False,
@@ -800,9 +725,9 @@ def _run(cfg, man, run_id, rep, executor, n, scheduler, force, config_path) -> R
                       | {t for t, n_rows in expected_rows.items() if n_rows})
     records = man.tiles()
     mkey = match_key(cfg)
-    model_sha = prov["classifier_model_sha256"]
-    skey = selection_key(cfg, _model_key(cfg, model_sha))
-    model = (str(_model_path(cfg)), model_sha) if model_sha else None
+    sha = prov["classifier_model_sha256"]
+    skey = selection_key(cfg, model_key(cfg, sha))
+    model = (str(model_path(cfg)), sha) if sha else None
     recorded_inputs = {rel for rec in records.values() for rel in (rec.get("inputs") or [])}
     shas = _scan_inputs(cfg, man, recorded_inputs, n)
     plans, reused = _plan(cfg, records, tile_ids, shas, mkey, skey, model, force)
@@ -855,7 +780,7 @@ def _run(cfg, man, run_id, rep, executor, n, scheduler, force, config_path) -> R
     complete = not failed
     merge_prov = {**prov, "complete": complete, "failed_tiles": sorted(failed)}
     outputs = _merged_paths(cfg)
-    mkey_now = _sha("merge", merge_prov, [(t, records[t]["match_key"], records[t]["content_key"],
+    mkey_now = digest("merge", merge_prov, [(t, records[t]["match_key"], records[t]["content_key"],
                                            records[t]["selection_key"]) for t in finished])
     state = man.get("merge") or {}
     up_to_date = (state.get("key") == mkey_now and state.get("outputs") == _file_stats(outputs.values()))
@@ -956,8 +881,6 @@ def _summarise(cfg, rep, run_id, result: RunResult, work_s: float, config_path) 
                    f"run `selector run {where}`: only the failed tiles are recomputed")
     rep.info(f"run log: {result.log_file or cfg.run_dir / 'logs' / f'run-{run_id}.log'}")
 
-
-# --- merging and accounting ---------------------------------------------------------------------
 
 def total_cutflow(summaries: list[dict]) -> list[tuple[str, int]]:
     """Sum per-tile cut-flows stage by stage (every tile runs the same stages)."""
@@ -1104,8 +1027,6 @@ def merge(cfg: Config, summaries: list[dict], prov: dict, fault=None) -> RunResu
     return RunResult(True, len(summaries), len(table), flow, outputs)
 
 
-# --- `selector status` --------------------------------------------------------------------------
-
 def status_text(cfg: Config, runs: int = 10, failed_only: bool = False) -> str:
     """A plain-text view of the manifest: recent runs, tiles by state, rows and timings, failures."""
     path = cfg.run_dir / "manifest.sqlite"
@@ -1157,20 +1078,3 @@ def _duration(start: str, end: str) -> float:
     import datetime
 
     return (datetime.datetime.fromisoformat(end) - datetime.datetime.fromisoformat(start)).total_seconds()
-
-
-def _cmd_status(args) -> int:
-    from .config import load_config
-
-    cfg = load_config(args.config)
-    print(status_text(cfg, runs=args.runs, failed_only=args.failed))
-    return 0
-
-
-def add_commands(sub, config_arg) -> None:
-    """Register ``selector status`` (``selector run`` itself is defined in :mod:`selector.cli`)."""
-    p = sub.add_parser("status", help="show the run manifest: runs, tiles done, failed and pending, rows, timings")
-    config_arg(p)
-    p.add_argument("--runs", type=int, default=10, metavar="N", help="show the last N runs (default 10)")
-    p.add_argument("--failed", action="store_true", help="list only the failed tiles and their errors")
-    p.set_defaults(func=_cmd_status)

@@ -4,7 +4,7 @@ The feature cache (``run/tiles/tile<N>/features.parquet``) holds every matched o
 depends only on the matching sections of the configuration (:data:`~selector.config.MATCH_SECTIONS`).
 Changing a zero-motion threshold, a colour criterion, the ranking or the classifier threshold
 therefore needs no new cross-match: :func:`load_cache` reads the columns the selection needs from
-every tile at once, and :func:`evaluate` runs :func:`selector.pipeline.select` over all rows,
+every tile at once, and :func:`evaluate` runs :func:`selector.selection.select` over all rows,
 vectorised, in blocks of rows that are not aligned with tiles. The per-tile cut-flow comes from
 ``np.bincount`` over each row's tile, one per stage. Because ``select`` is a row-by-row function,
 the result is exactly what ``selector run`` gives with the same configuration
@@ -37,11 +37,21 @@ import pyarrow as pa
 import pyarrow.compute as pc
 import pyarrow.parquet as pq
 
-from . import pipeline, schema, tiles
-from ._validate import suggest
-from .config import MATCH_SECTIONS, SELECTION_SECTIONS, Config, config_hash, from_dict, load_config, plain
-from .errors import ConfigError, InputError, SelectorError
-from .io import read_parquet
+from selector.core import selection, schema, tiles
+from selector.jobs.run import tile as tile_job
+from selector.settings.validate import suggest
+from selector.jobs.classify import load_scorer
+from selector.settings.config import (
+    MATCH_SECTIONS,
+    SELECTION_SECTIONS,
+    Config,
+    config_hash,
+    from_dict,
+    load_config,
+    plain,
+)
+from selector.errors import ConfigError, InputError, SelectorError
+from selector.store.io import read_parquet
 
 __all__ = [
     "FeatureCache",
@@ -50,7 +60,6 @@ __all__ = [
     "TruthLabels",
     "TruthScore",
     "TuneOutcome",
-    "add_commands",
     "apply_settings",
     "candidates",
     "compare",
@@ -263,7 +272,7 @@ def _needed_bands(cfg: Config) -> list[str]:
 
     A band left out reads as missing, which changes nothing for criteria that do not use it.
     """
-    from .photometry import CRITERION_BANDS
+    from selector.core.photometry import CRITERION_BANDS
 
     labels = {b for name in cfg.colours.criteria for b in CRITERION_BANDS.get(name, ())}
     wanted = {cfg.ranking.brightness_band}
@@ -304,7 +313,7 @@ def _tile_dirs(cfg: Config) -> tuple[np.ndarray, list[Path]]:
         # the run folder may have been moved without the ingested tiles: the run's own tile folders
         # are then the record of what was processed
         ids = sorted(int(p.name[4:]) for p in (cfg.run_dir / "tiles").glob("tile*") if p.is_dir())
-    return np.asarray(ids, np.int64), [pipeline.tile_output_dir(cfg, t) for t in ids]
+    return np.asarray(ids, np.int64), [tile_job.tile_output_dir(cfg, t) for t in ids]
 
 
 def _open(path: Path) -> pq.ParquetFile:
@@ -411,7 +420,7 @@ def load_cache(cfg: Config, columns: Sequence[str] | None = ("auto",), plots: bo
     with ThreadPoolExecutor(max_workers=n_threads) as pool:
         rows = np.array(list(pool.map(_read_counts, folders)), np.int64)
     starts = np.concatenate([[0], np.cumsum(sizes)])
-    bad = pipeline.tile_rejects(table)
+    bad = selection.tile_rejects(table)
     rejects = np.zeros(len(ids), np.int64)
     if bad.any():
         seen = np.concatenate([[0], np.cumsum(bad)])
@@ -436,7 +445,7 @@ class Evaluation:
         Cut-flow stages: ``input``, ``matched``, then the selection stages.
     tile_counts : numpy.ndarray
         ``(n_tiles, n_stages)`` rows left after each stage in each tile.
-    blocks : list of selector.pipeline.Selection
+    blocks : list of selector.selection.Selection
         The selection of consecutive blocks of cache rows; :attr:`selection` joins them (on
         first use, so a cut-flow alone costs no copy of the derived columns).
     seconds : float
@@ -451,13 +460,13 @@ class Evaluation:
     _joined: dict = field(default_factory=dict, repr=False)
 
     @property
-    def selection(self) -> pipeline.Selection:
+    def selection(self) -> selection.Selection:
         """Cumulative stage masks and derived columns over every cache row."""
         if "selection" not in self._joined:
             stages = [(name, self.stage_mask(name)) for name, _ in self.blocks[0].stages]
             derived = {k: np.concatenate([np.asarray(b.derived[k]) for b in self.blocks])
                        for k in self.blocks[0].derived}
-            self._joined["selection"] = pipeline.Selection(stages, derived)
+            self._joined["selection"] = selection.Selection(stages, derived)
         return self._joined["selection"]
 
     def stage_mask(self, name: str) -> np.ndarray:
@@ -488,16 +497,7 @@ class Evaluation:
 
 
 def _scorer(cfg: Config):
-    from importlib import import_module
-
-    try:
-        classify = import_module("selector.classify")
-    except ImportError as exc:
-        if exc.name == "selector.classify":
-            raise SelectorError(f"classifier.model = {cfg.classifier.model!r} is set but this installation has no "
-                                "classifier (selector.classify); remove classifier.model to tune without it") from None
-        raise
-    return classify.load_scorer(str(cfg.path(cfg.classifier.model)), cfg)
+    return load_scorer(str(cfg.path(cfg.classifier.model)), cfg)
 
 
 def evaluate(cache: FeatureCache, cfg: Config, p_quasar: np.ndarray | None = None,
@@ -535,7 +535,7 @@ def evaluate(cache: FeatureCache, cfg: Config, p_quasar: np.ndarray | None = Non
 
     def block(lo):
         hi = min(lo + _BLOCK_ROWS, n)
-        part = pipeline.select(cache.table.slice(lo, hi - lo), cfg, None if p_quasar is None else p_quasar[lo:hi])
+        part = selection.select(cache.table.slice(lo, hi - lo), cfg, None if p_quasar is None else p_quasar[lo:hi])
         idx = cache.tile_index(lo, hi)
         return part, np.stack([np.bincount(idx[mask], minlength=n_tiles) for _, mask in part.stages], axis=1)
 
@@ -553,28 +553,28 @@ def _tile_features(cache: FeatureCache, i: int) -> pa.Table:
     """The full usable feature rows of one tile, in cache order."""
     path = cache.folders[i] / "features.parquet"
     full = read_parquet(path)
-    return full.filter(pa.array(~pipeline.tile_rejects(full)))
+    return full.filter(pa.array(~selection.tile_rejects(full)))
 
 
-def _tile_selection(ev: Evaluation, s: slice) -> pipeline.Selection:
-    return pipeline.Selection([(n, m[s]) for n, m in ev.selection.stages],
+def _tile_selection(ev: Evaluation, s: slice) -> selection.Selection:
+    return selection.Selection([(n, m[s]) for n, m in ev.selection.stages],
                               {k: np.asarray(v)[s] for k, v in ev.selection.derived.items()})
 
 
 def candidates(cache: FeatureCache, ev: Evaluation) -> pa.Table:
     """Every column of the candidates of ``ev``, as the run's merged ``candidates.parquet`` holds them.
 
-    Ranked over all tiles by score then id (:func:`selector.pipeline.rank_candidates`, as the
+    Ranked over all tiles by score then id (:func:`selector.selection.rank_candidates`, as the
     merge does); full rows are read only for tiles that have candidates.
     """
     passed_tiles = np.unique(np.searchsorted(cache.offsets, np.flatnonzero(ev.passed), side="right") - 1)
     parts = []
     for i in passed_tiles:
         s = cache.tile_slice(int(i))
-        parts.append(pipeline.candidates_table(_tile_features(cache, int(i)), _tile_selection(ev, s)))
+        parts.append(selection.candidates_table(_tile_features(cache, int(i)), _tile_selection(ev, s)))
     if not parts:
         return pa.table({"astro_id": pa.array([], pa.int64())})
-    return pipeline.rank_candidates(pa.concat_tables(parts, promote_options="permissive"))
+    return selection.rank_candidates(pa.concat_tables(parts, promote_options="permissive"))
 
 
 def write_results(ev: Evaluation, config_path=None, log=print):
@@ -585,7 +585,7 @@ def write_results(ev: Evaluation, config_path=None, log=print):
     then holds exactly what ``selector run`` with ``ev.cfg`` writes, and a later ``selector run``
     with another configuration re-selects from it as usual.
     """
-    from . import batch
+    from selector.jobs.run import batch
 
     result = batch.run(ev.cfg, quiet=True, log=log, config_path=config_path)
     log(f"wrote the tuned selection as the run's result: {result.candidates:,} candidates in "
@@ -640,7 +640,7 @@ class TruthScore:
 
 
 def _read_any(path: Path) -> pa.Table:
-    from .io import guess_format
+    from selector.store.io import guess_format
 
     fmt = guess_format(path)
     try:
@@ -659,7 +659,7 @@ def _read_any(path: Path) -> pa.Table:
 
 
 def _is_quasar(values: pa.ChunkedArray) -> np.ndarray:
-    from .truth import QUASAR_POPULATIONS
+    from selector.core.truth import QUASAR_POPULATIONS
 
     if pa.types.is_boolean(values.type):
         return np.asarray(values.fill_null(False).to_numpy(zero_copy_only=False), bool)
@@ -935,36 +935,3 @@ def format_outcome(out: TuneOutcome) -> str:
 
 
 # --- the command ----------------------------------------------------------------------------------
-
-def _cmd_tune(args) -> int:
-    out = tune(args.config, args.set or (), truth=args.truth, plots=bool(args.plots))
-    print(format_outcome(out))
-    if args.plots:
-        from . import plots
-
-        data = plots.PlotData.from_evaluation(out.cache, out.after)
-        paths = plots.write_plots(data, Path(args.plots))
-        print(f"plots of the new selection: {len(paths)} PNG files in {args.plots}")
-    if args.write:
-        write_results(out.after, config_path=args.config)
-    return 0
-
-
-def add_commands(sub, config_arg) -> None:
-    """Register ``selector tune``."""
-    p = sub.add_parser(
-        "tune", help="re-apply changed cuts to the run's feature cache in seconds; cut-flow before and after",
-        description="Compare the run's selection with the config file's (plus --set changes) on the cached "
-                    "features, without matching again. Writes nothing unless --plots or --write is given.")
-    config_arg(p)
-    p.add_argument("--set", action="append", metavar="KEY=VALUE",
-                   help="change a selection setting, e.g. motion.parallax_snr_max=4, "
-                        "colours.criteria='[\"assef2018_r75\"]', classifier.threshold=0.7 (repeatable; "
-                        "KEY= restores the default)")
-    p.add_argument("--truth", metavar="FILE", default=None,
-                   help="truth labels (columns id and population or label) for completeness and purity; "
-                        "default: catalogues/truth.parquet beside the config, if present")
-    p.add_argument("--plots", metavar="DIR", default=None, help="write PNG diagnostics of the new selection here")
-    p.add_argument("--write", action="store_true",
-                   help="make the new selection the run's result (rewrites the run's candidates and cut-flows)")
-    p.set_defaults(func=_cmd_tune)

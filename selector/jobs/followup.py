@@ -42,10 +42,11 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.csv as pacsv
 
-from . import __version__, schema
-from .config import Config, SiteConfig, config_hash
-from .errors import ConfigError, InputError, SelectorError, describe_rows
-from .io import atomic_path, file_sha256, fingerprint, guess_format, read_parquet
+from selector import __version__
+from selector.core import schema
+from selector.settings.config import Config, SiteConfig, config_hash
+from selector.errors import ConfigError, InputError, SelectorError, describe_rows
+from selector.store.io import atomic_path, file_sha256, fingerprint, guess_format, read_parquet
 
 from astropy.utils import iers  # noqa: E402  (configured before any time or coordinate work)
 
@@ -57,7 +58,6 @@ __all__ = [
     "Observability",
     "STATUSES",
     "TargetsResult",
-    "add_commands",
     "altitude_deg",
     "make_targets",
     "night_grid",
@@ -541,7 +541,7 @@ def _read_candidates(cfg: Config):
     if "rank" in table.column_names:
         table = table.sort_by([("rank", "ascending")])
     else:
-        from .pipeline import sort_by_score
+        from selector.core.selection import sort_by_score
 
         table = sort_by_score(table)
         table = table.add_column(0, "rank", pa.array(np.arange(1, table.num_rows + 1, dtype=np.int64)))
@@ -596,8 +596,8 @@ def _read_known(cfg: Config) -> _Known | None:
 
 
 def _read_known_files(cfg: Config, cat) -> _Known:
-    from . import ingest
-    from .io import expand_files, iter_chunks
+    from selector.jobs import ingest
+    from selector.store.io import expand_files, iter_chunks
 
     fields = ingest.plan_fields(cat, "known")
     sources = list(dict.fromkeys(f.source for f in fields))
@@ -624,7 +624,7 @@ def _read_known_files(cfg: Config, cat) -> _Known:
 
 
 def _match_known(ra, dec, known: _Known, radius_arcsec: float):
-    from .crossmatch import nearest_within, pairs_within
+    from selector.core.crossmatch import nearest_within, pairs_within
 
     k = known.table
     pairs = pairs_within(ra, dec, k.column("ra_deg").to_numpy(zero_copy_only=False).astype(float),
@@ -1305,37 +1305,3 @@ def _log_result(result: TargetsResult, log) -> None:
 
 
 # --- commands -----------------------------------------------------------------------------------
-
-def _cmd_targets(args) -> int:
-    from .config import load_config
-
-    cfg = load_config(args.config)
-    if cfg.targets is None:
-        raise ConfigError(f"{args.config}: no [targets] section; add one (every key is in configs/default.toml)")
-    make_targets(cfg, new_only=args.new_only)
-    return 0
-
-
-def _cmd_outcome(args) -> int:
-    from .config import load_config
-
-    cfg = load_config(args.config)
-    if cfg.targets is None:
-        raise ConfigError(f"{args.config}: no [targets] section, so there is no candidate history to record into")
-    record_outcomes(cfg, args.file)
-    return 0
-
-
-def add_commands(sub, config_arg) -> None:
-    """Register ``selector targets`` and ``selector outcome``."""
-    p = sub.add_parser("targets", help="follow-up list: known objects out, observability from a site, priorities")
-    config_arg(p)
-    p.add_argument("--new-only", action="store_true",
-                   help="list only candidates that are new since the previous run")
-    p.set_defaults(func=_cmd_targets)
-    p = sub.add_parser("outcome", help="record follow-up outcomes (spectroscopic class, redshift) of candidates")
-    config_arg(p)
-    p.add_argument("--file", required=True, metavar="FILE",
-                   help="CSV, ECSV, VOTable, FITS or Parquet with columns astro_id (or candidate_id, id), "
-                        "spec_class (or spectroscopic_class, class: quasar, star, galaxy) and optionally redshift (or z)")
-    p.set_defaults(func=_cmd_outcome)

@@ -19,7 +19,7 @@ import os
 import sqlite3
 from pathlib import Path
 
-from .errors import SelectorError
+from selector.errors import SelectorError
 
 #: Bumped when the tables change shape; an older manifest is rebuilt (its tiles are then redone).
 SCHEMA_VERSION = 1

@@ -14,12 +14,13 @@ operations, so the two pair sets agree exactly, boundary cases included.
 
 from __future__ import annotations
 
-import os
 from concurrent.futures import ThreadPoolExecutor
 from typing import NamedTuple
-
 import numpy as np
 from scipy.spatial import cKDTree
+
+from selector.core.frames import as_1d, radec_to_xyz, worker_count
+
 
 __all__ = [
     "NearestMatch",
@@ -32,25 +33,37 @@ __all__ = [
     "radec_to_xyz",
 ]
 
+
 # pi/648000 rounds to the same double as the arcsec->radian scale of astropy.units, which keeps the
 # ball radius bit-identical to the reference (checked in the tests).
 _RAD_PER_ARCSEC = np.pi / 648000.0
+
+
 _ARCSEC_PER_RAD = 648000.0 / np.pi
 
-# Rows per block when computing unit vectors: small enough for the temporaries to stay in cache.
-_XYZ_BLOCK = 1 << 16
+
 # Below this many rows threads and spatial sorting cost more than they save.
 _SMALL = 1 << 15
+
+
 # Query rows per k-d tree call: small blocks balance the threads and keep temporaries in cache.
 _QUERY_BLOCK = 1 << 15
+
+
 # Neighbours asked for in the first pass. Real catalogues rarely have more than one counterpart
 # inside a few arcsec, and k = 2 costs about as much as k = 1.
 _FIRST_K = 2
+
+
 # Largest (rows x k) answer asked of the tree at once when a field is crowded.
 _MAX_ANSWER = 1 << 22
+
+
 # The tree search uses a slightly larger radius; the exact test is then applied to each candidate,
 # so rounding inside the tree traversal can never decide membership.
 _BOUND_SLACK = 1e-8
+
+
 # Beyond a chord of sqrt(2) (90 deg) asin loses accuracy; the cross-product form is used there.
 _CHORD_ASIN_MAX = np.sqrt(2.0)
 
@@ -89,91 +102,6 @@ class NearestMatch(NamedTuple):
     index_b: np.ndarray
     separation_arcsec: np.ndarray
     n_within: np.ndarray
-
-
-def _n_workers(workers: int) -> int:
-    if workers == -1:
-        try:
-            return max(1, len(os.sched_getaffinity(0)))
-        except AttributeError:  # platforms without affinity masks
-            return max(1, os.cpu_count() or 1)
-    if workers < 1:
-        raise ValueError(f"workers = {workers!r} is not allowed; use -1 (all cores) or a positive count")
-    return int(workers)
-
-
-def _as_1d(values, name: str) -> np.ndarray:
-    arr = np.ascontiguousarray(values, dtype=np.float64)
-    if arr.ndim == 0:
-        arr = arr.reshape(1)
-    if arr.ndim != 1:
-        raise ValueError(f"{name} must be one-dimensional; got shape {arr.shape}")
-    return arr
-
-
-def _xyz_block(ra_deg: np.ndarray, dec_deg: np.ndarray, out: np.ndarray) -> None:
-    # Same ufuncs, in the same order, as astropy's unit-spherical to Cartesian conversion:
-    # radians by one multiplication, x = cos(lat) cos(lon), y = cos(lat) sin(lon), z = sin(lat).
-    lon = np.radians(ra_deg)
-    lat = np.radians(dec_deg)
-    cos_lat = np.cos(lat)
-    trig = np.cos(lon)
-    np.multiply(cos_lat, trig, out=out[:, 0])
-    np.sin(lon, out=trig)
-    np.multiply(cos_lat, trig, out=out[:, 1])
-    np.sin(lat, out=out[:, 2])
-    bad_lon = ~np.isfinite(ra_deg)
-    if bad_lon.any():
-        out[bad_lon, 2] = np.nan  # a row without RA has no position at all
-
-
-def radec_to_xyz(ra_deg, dec_deg, *, workers: int = -1) -> np.ndarray:
-    """Unit vectors of ICRS positions.
-
-    Parameters
-    ----------
-    ra_deg, dec_deg : array_like of float
-        Right ascension and declination (deg), one-dimensional and of equal length. RA outside
-        [0, 360) is wrapped. A NaN Dec, or a NaN or infinite RA, gives a NaN vector (a row without
-        a position); |Dec| > 90, infinite Dec included, is an error.
-    workers : int, optional
-        Threads for large inputs; -1 (default) uses every core available to the process.
-
-    Returns
-    -------
-    numpy.ndarray, shape (n, 3)
-        C-contiguous float64 ``(x, y, z)`` with x towards RA = 0, Dec = 0 and z towards the north
-        pole (the usual spherical-to-Cartesian relation, e.g. Green 1985, *Spherical Astronomy*,
-        ch. 1).
-    """
-    ra = _as_1d(ra_deg, "ra_deg")
-    dec = _as_1d(dec_deg, "dec_deg")
-    if ra.shape != dec.shape:
-        raise ValueError(f"ra_deg and dec_deg must have the same length; got {ra.size} and {dec.size}")
-    with np.errstate(invalid="ignore"):
-        if np.any(np.abs(dec) > 90.0):
-            bad = np.flatnonzero(np.abs(dec) > 90.0)
-            raise ValueError(f"dec_deg must lie in [-90, 90]; {bad.size} value(s) outside, first at "
-                             f"index {bad[0]} ({dec[bad[0]]!r})")
-        if np.any((ra < 0.0) | (ra >= 360.0)):
-            # fmod is exact, so values already in range keep their bits (and the reference's)
-            ra = np.mod(ra, 360.0)
-            ra[ra >= 360.0] = 0.0
-    n = ra.size
-    out = np.empty((n, 3), dtype=np.float64)
-    starts = range(0, n, _XYZ_BLOCK)
-    nthreads = min(_n_workers(workers), len(starts))
-    with np.errstate(invalid="ignore"):
-        if nthreads > 1 and n > _SMALL:
-            # numpy ufuncs release the GIL, so blocks run truly in parallel
-            with ThreadPoolExecutor(max_workers=nthreads) as pool:
-                for _ in pool.map(lambda s: _xyz_block(ra[s:s + _XYZ_BLOCK], dec[s:s + _XYZ_BLOCK],
-                                                       out[s:s + _XYZ_BLOCK]), starts):
-                    pass
-        else:
-            for s in starts:
-                _xyz_block(ra[s:s + _XYZ_BLOCK], dec[s:s + _XYZ_BLOCK], out[s:s + _XYZ_BLOCK])
-    return out
 
 
 def chord_from_arcsec(radius_arcsec) -> float:
@@ -400,9 +328,9 @@ def pairs_within(ra_a_deg, dec_a_deg, ra_b_deg, dec_b_deg, radius_arcsec, *, wor
     ``atan2(|u×v|, u·v)`` beyond 90 deg.
     """
     r = chord_from_arcsec(radius_arcsec)
-    nthreads = _n_workers(workers)
-    ra_a, dec_a = _as_1d(ra_a_deg, "ra_a_deg"), _as_1d(dec_a_deg, "dec_a_deg")
-    ra_b, dec_b = _as_1d(ra_b_deg, "ra_b_deg"), _as_1d(dec_b_deg, "dec_b_deg")
+    nthreads = worker_count(workers)
+    ra_a, dec_a = as_1d(ra_a_deg, "ra_a_deg"), as_1d(dec_a_deg, "dec_a_deg")
+    ra_b, dec_b = as_1d(ra_b_deg, "ra_b_deg"), as_1d(dec_b_deg, "dec_b_deg")
     if ra_a.shape != dec_a.shape or ra_b.shape != dec_b.shape:
         raise ValueError(f"positions of equal length needed; got ra_a_deg {ra_a.size}, dec_a_deg {dec_a.size}, "
                          f"ra_b_deg {ra_b.size}, dec_b_deg {dec_b.size}")

@@ -27,11 +27,12 @@ import pandas as pd
 import pyarrow as pa
 import pyarrow.compute as pc
 
-from . import __version__, schema, tiles
-from .config import CatalogueConfig, Config, config_hash
-from .errors import InputError, SelectorError
-from .io import expand_files, fingerprint, iter_chunks, write_json, write_parquet
-from .photometry import VEGA_TO_AB_MAG
+from selector import __version__
+from selector.core import schema, tiles
+from selector.settings.config import CatalogueConfig, Config, config_hash
+from selector.errors import InputError, SelectorError
+from selector.store.io import expand_files, fingerprint, iter_chunks, write_json, write_parquet
+from selector.core.photometry import VEGA_TO_AB_MAG
 
 #: Reason codes, in the order they are tested; a row is rejected for the first that applies.
 REASONS = (

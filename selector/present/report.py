@@ -9,7 +9,6 @@ on a machine without a network. It holds no wall-clock time: the same run gives 
 
 from __future__ import annotations
 
-import argparse
 import base64
 import html
 import json
@@ -18,11 +17,11 @@ from pathlib import Path
 import numpy as np
 import pyarrow as pa
 
-from .config import SELECTION_SECTIONS, plain
-from .errors import InputError
-from .io import read_parquet, write_text
+from selector.settings.config import SELECTION_SECTIONS, plain
+from selector.errors import InputError
+from selector.store.io import read_parquet, write_text
 
-__all__ = ["TABLE_COLUMNS", "add_commands", "build_report", "write_report"]
+__all__ = ["TABLE_COLUMNS", "build_report", "write_report"]
 
 #: Columns of the top-targets table, where present: (column, heading, format).
 TABLE_COLUMNS = (
@@ -86,7 +85,7 @@ def _cell(value, fmt: str) -> str:
 
 
 def _targets_table(cands: pa.Table, top: int) -> str:
-    from .pipeline import rank_candidates
+    from selector.core.selection import rank_candidates
 
     if cands.num_rows == 0:
         return "<p id='no-targets'>No candidates in this run.</p>"
@@ -141,7 +140,8 @@ def build_report(run_dir: Path | str, top: int = 50) -> str:
     top : int
         Rows of the top-targets table.
     """
-    from . import plots, tune
+    from selector.present import plots
+    from selector.jobs import tune
 
     run_dir = Path(run_dir)
     cfg, prov = tune.run_config(run_dir)
@@ -221,27 +221,3 @@ def write_report(run_dir: Path | str, out: Path | str | None = None, top: int = 
     run_dir = Path(run_dir)
     path = Path(out) if out is not None else run_dir / "report.html"
     return write_text(build_report(run_dir, top), path)
-
-
-def _cmd_report(args) -> int:
-    if args.top < 1:
-        from .errors import SelectorError
-
-        raise SelectorError(f"--top {args.top}: give at least 1 row")
-    path = write_report(args.run, args.out, args.top)
-    print(f"report: {path}")
-    return 0
-
-
-def add_commands(sub, config_arg) -> None:
-    """Register ``selector report`` (and ``selector tune``, which lives in :mod:`selector.tune`)."""
-    from . import tune
-
-    tune.add_commands(sub, config_arg)
-    p = sub.add_parser("report", help="one self-contained HTML page of a run: provenance, cut-flow, plots, top targets",
-                       formatter_class=argparse.ArgumentDefaultsHelpFormatter)
-    p.add_argument("--run", required=True, metavar="DIR",
-                   help="the run folder (project.output_dir/run), which holds provenance.json")
-    p.add_argument("--out", default=None, metavar="FILE", help="where to write the page (default: DIR/report.html)")
-    p.add_argument("--top", type=int, default=50, help="rows of the top-targets table")
-    p.set_defaults(func=_cmd_report)

@@ -13,7 +13,11 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
 
+from selector.core.metrics import Score
+
 QUASAR_POPULATIONS = ("quasar", "bright_quasar")
+#: Population name of candidates that have no row in the truth table.
+NO_TRUTH = "(no truth)"
 
 
 @dataclass
@@ -45,10 +49,17 @@ class TruthReport:
         return self.recovered_above_limit / self.quasars_above_limit if self.quasars_above_limit else float("nan")
 
     @property
-    def purity(self) -> float:
+    def score(self) -> Score:
+        """The list scored with the one definition of :mod:`selector.core.metrics` (candidates without a
+        truth row are counted apart, not as contaminants)."""
         total = sum(self.by_population.values())
+        unknown = self.by_population.get(NO_TRUTH, 0)
         good = sum(self.by_population.get(p, 0) for p in QUASAR_POPULATIONS)
-        return good / total if total else float("nan")
+        return Score(total, total - unknown, good, self.quasars_total)
+
+    @property
+    def purity(self) -> float:
+        return self.score.purity
 
     def as_text(self, magnitude_label: str) -> str:
         lines = ["candidates by true population:"]
@@ -98,7 +109,7 @@ def compare(candidate_ids, truth: pa.Table, astro: pa.Table, infrared: pa.Table,
         by_pop[str(pop)] = int(np.sum(is_cand & (pops == pop)))
     unknown = len(cand) - int(is_cand.sum())
     if unknown:
-        by_pop["(no truth)"] = unknown
+        by_pop[NO_TRUTH] = unknown
 
     q = np.isin(pops, QUASAR_POPULATIONS)
     q_ids = ids[q]

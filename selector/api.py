@@ -1,0 +1,93 @@
+"""The public face: one function per job, one call shape.
+
+Every function takes the configuration first (a :class:`~selector.settings.config.Config`, or the path
+of a TOML file), its options by keyword, a ``log`` callable for the lines it prints, and returns a
+result object. ``selector`` re-exports these names, so ``import selector; selector.run(cfg)`` works;
+the command line (:mod:`selector.cli`) only parses, calls them and prints.
+"""
+
+from __future__ import annotations
+
+import os
+from pathlib import Path
+from typing import Callable, Sequence
+
+from selector.errors import ConfigError
+from selector.jobs import classify, followup, ingest as ingest_job, tune as tune_job
+from selector.jobs.run import batch
+from selector.present import plots, report as report_page
+from selector.settings.config import Config, load_config
+
+Log = Callable[[str], None]
+
+__all__ = ["Config", "ingest", "load_config", "outcomes", "report", "run", "status", "targets", "train", "tune"]
+
+
+def _config(config: Config | str | os.PathLike) -> Config:
+    return config if isinstance(config, Config) else load_config(config)
+
+
+def ingest(config, *, log: Log = print) -> dict:
+    """Validate every row of the configured catalogues and split them into HEALPix tiles.
+
+    Returns the ingest summary of each catalogue, by catalogue name.
+    """
+    return ingest_job.ingest(_config(config), log=log)
+
+
+def run(config, *, workers: int | None = None, executor: str | None = None, scheduler: str | None = None,
+        quiet: bool = False, verbose: bool = False, force: bool = False, log: Log = print) -> batch.RunResult:
+    """Bring the run folder up to date: cross-match, test and rank every tile, merge the ranked list."""
+    config_path = None if isinstance(config, Config) else config
+    return batch.run(_config(config), workers=workers, executor=executor, scheduler=scheduler, quiet=quiet,
+                     verbose=verbose, log=log, force=force, config_path=config_path)
+
+
+def status(config, *, runs: int = 10, failed_only: bool = False) -> str:
+    """A plain-text view of the run manifest."""
+    return batch.status_text(_config(config), runs=runs, failed_only=failed_only)
+
+
+def train(config, *, log: Log = print) -> classify.TrainResult:
+    """Train the quasar classifier on the labelled sources of the feature cache; write the model and its card."""
+    return classify.train(_config(config), log=log)
+
+
+def tune(config: str | os.PathLike, *, settings: Sequence[str] = (), truth=None, plots_dir=None,
+         write: bool = False, log: Log = print) -> tune_job.TuneOutcome:
+    """Re-apply the configuration's selection, with ``KEY=VALUE`` changes, to the run's feature cache.
+
+    ``config`` is the path of the TOML file (the changes are applied to the file as written).
+    """
+    out = tune_job.tune(config, settings, truth=truth, plots=plots_dir is not None)
+    log(tune_job.format_outcome(out))
+    if plots_dir is not None:
+        data = plots.PlotData.from_evaluation(out.cache, out.after)
+        paths = plots.write_plots(data, Path(plots_dir))
+        log(f"plots of the new selection: {len(paths)} PNG files in {plots_dir}")
+    if write:
+        tune_job.write_results(out.after, config_path=config, log=log)
+    return out
+
+
+def targets(config, *, new_only: bool = False, log: Log = print) -> followup.TargetsResult:
+    """Build the follow-up target list: known objects out, observability from the site, priorities."""
+    cfg = _config(config)
+    if cfg.targets is None:
+        raise ConfigError(f"{config}: no [targets] section; add one (every key is in configs/default.toml)")
+    return followup.make_targets(cfg, new_only=new_only, log=log)
+
+
+def outcomes(config, file, *, log: Log = print) -> int:
+    """Record follow-up outcomes (spectroscopic class, redshift) of candidates in the candidate history."""
+    cfg = _config(config)
+    if cfg.targets is None:
+        raise ConfigError(f"{config}: no [targets] section, so there is no candidate history to record into")
+    return followup.record_outcomes(cfg, file, log=log)
+
+
+def report(run_dir, *, out=None, top: int = 50, log: Log = print) -> Path:
+    """Write the self-contained HTML report of a run folder."""
+    path = report_page.write_report(run_dir, out, top)
+    log(f"report: {path}")
+    return path

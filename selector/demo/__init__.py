@@ -1,0 +1,1 @@
+"""The invented mock sky and the demo run."""

@@ -1,0 +1,1 @@
+"""The jobs a user runs: ingest, run, train, tune, targets."""

@@ -1,0 +1,1 @@
+"""The nightly run over tiles: plan, execute, merge, progress and status."""

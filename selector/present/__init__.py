@@ -1,0 +1,1 @@
+"""Everything that draws: plots and the HTML report."""

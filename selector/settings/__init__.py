@@ -1,0 +1,1 @@
+"""Settings: the configuration file, its validation, and how catalogue columns map onto roles."""
