@@ -1,0 +1,1 @@
+"""Pure science on arrays and tables: no files, no configuration objects."""
