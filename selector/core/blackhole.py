@@ -26,7 +26,7 @@ import numpy as np
 
 from selector.errors import InputError
 
-from . import luminosity
+from selector.core import luminosity
 
 __all__ = [
     "CALIBRATIONS",
