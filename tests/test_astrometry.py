@@ -135,7 +135,7 @@ def test_pvalue_is_the_two_degree_of_freedom_survival_function():
     chi2 = np.concatenate([[0.0], np.logspace(-8, 2.5, 400)])
     # pm_chi2 = x² for a pure RA motion of x standard errors
     zm = am.zero_motion(np.zeros_like(chi2), np.ones_like(chi2), np.sqrt(chi2), np.zeros_like(chi2),
-                        np.ones_like(chi2), np.ones_like(chi2))
+                        pmra_error_mas_yr=np.ones_like(chi2), pmdec_error_mas_yr=np.ones_like(chi2))
     np.testing.assert_allclose(zm.pm_chi2, chi2, rtol=1e-14)
     # reference: scipy.stats.chi2(2).sf
     np.testing.assert_allclose(zm.pm_pvalue, stats.chi2(2).sf(chi2), rtol=1e-12, atol=0)
@@ -148,7 +148,8 @@ def test_chi2_with_correlation_equals_explicit_solve():
     sig = rng.uniform(0.05, 3.0, (n, 2))
     rho = rng.uniform(-0.98, 0.98, n)
     k = 1.3
-    zm = am.zero_motion(np.zeros(n), np.ones(n), mu[:, 0], mu[:, 1], sig[:, 0], sig[:, 1], rho,
+    zm = am.zero_motion(np.zeros(n), np.ones(n), mu[:, 0], mu[:, 1],
+                        pmra_error_mas_yr=sig[:, 0], pmdec_error_mas_yr=sig[:, 1], pmra_pmdec_corr=rho,
                         error_inflation=k)
     for i in range(n):
         off = rho[i] * sig[i, 0] * sig[i, 1]
@@ -161,10 +162,12 @@ def test_chi2_with_correlation_equals_explicit_solve():
 def test_parallax_snr_uses_zero_point_and_inflation():
     # zero point −0.017 mas for quasars: Lindegren et al. 2021, A&A 649, A4 (from memory);
     # expected values by hand: (0.083 + 0.017) / (2 × 0.05) = 1, (−0.117 + 0.017) / (2 × 0.1) = −0.5
-    zm = am.zero_motion([0.083, -0.117], [0.05, 0.1], [0.0, 0.0], [0.0, 0.0], [1.0, 1.0], [1.0, 1.0],
+    zm = am.zero_motion([0.083, -0.117], [0.05, 0.1], [0.0, 0.0], [0.0, 0.0],
+                        pmra_error_mas_yr=[1.0, 1.0], pmdec_error_mas_yr=[1.0, 1.0],
                         parallax_zero_point_mas=-0.017, error_inflation=2.0)
     np.testing.assert_allclose(zm.parallax_snr, [1.0, -0.5], rtol=1e-12)
-    zero = am.zero_motion([0.3], [0.1], [0.0], [0.0], [1.0], [1.0], parallax_zero_point_mas=0.0)
+    zero = am.zero_motion([0.3], [0.1], [0.0], [0.0],
+                          pmra_error_mas_yr=[1.0], pmdec_error_mas_yr=[1.0], parallax_zero_point_mas=0.0)
     np.testing.assert_allclose(zero.parallax_snr, [3.0], rtol=1e-12)
 
 
@@ -183,8 +186,9 @@ def test_simulated_population_at_rest_passes_at_the_nominal_rate():
     mu_a = k * s_a * z1
     mu_d = k * s_d * (rho * z1 + np.sqrt(1.0 - rho * rho) * z2)
     plx = zp + k * e_plx * z3
-    zm = am.zero_motion(plx, e_plx, mu_a, mu_d, s_a, s_d, rho, parallax_zero_point_mas=zp,
-                        error_inflation=k)
+    zm = am.zero_motion(plx, e_plx, mu_a, mu_d,
+                        pmra_error_mas_yr=s_a, pmdec_error_mas_yr=s_d, pmra_pmdec_corr=rho,
+                        parallax_zero_point_mas=zp, error_inflation=k)
     for alpha in (0.01, 0.05, 0.3):
         rate = np.mean(zm.pm_pvalue >= alpha)
         se = np.sqrt(alpha * (1 - alpha) / n)
@@ -194,8 +198,9 @@ def test_simulated_population_at_rest_passes_at_the_nominal_rate():
     rate = np.mean(np.abs(zm.parallax_snr) < 3.0)
     assert abs(rate - nominal) < 4 * np.sqrt(nominal * (1 - nominal) / n)
     # leaving out the correlation is measurably wrong on the same data, so the test has teeth
-    naive = am.zero_motion(plx, e_plx, mu_a, mu_d, s_a, s_d, None, parallax_zero_point_mas=zp,
-                           error_inflation=k)
+    naive = am.zero_motion(plx, e_plx, mu_a, mu_d,
+                           pmra_error_mas_yr=s_a, pmdec_error_mas_yr=s_d, pmra_pmdec_corr=None,
+                           parallax_zero_point_mas=zp, error_inflation=k)
     assert abs(np.mean(naive.pm_pvalue >= 0.01) - 0.99) > 4 * np.sqrt(0.01 * 0.99 / n)
 
 
@@ -210,23 +215,27 @@ def test_missing_or_invalid_astrometry_gives_nan_without_warnings():
     rho = np.array([nan, 0.0, 0.0, 0.0, 0.0, 0.0, 1.0, 0.2])
     with warnings.catch_warnings():
         warnings.simplefilter("error")
-        zm = am.zero_motion(plx, e_plx, mu_a, mu_d, s_a, s_d, rho)
+        zm = am.zero_motion(plx, e_plx, mu_a, mu_d,
+                            pmra_error_mas_yr=s_a, pmdec_error_mas_yr=s_d, pmra_pmdec_corr=rho)
     snr_nan = np.isnan(zm.parallax_snr)
     chi_nan = np.isnan(zm.pm_chi2)
     np.testing.assert_array_equal(snr_nan, [False, True, True, True, False, False, False, False])
     np.testing.assert_array_equal(chi_nan, [False, False, False, False, True, True, True, False])
     np.testing.assert_array_equal(np.isnan(zm.pm_pvalue), chi_nan)
     # a NaN correlation counts as zero
-    plain = am.zero_motion(plx[:1], e_plx[:1], mu_a[:1], mu_d[:1], s_a[:1], s_d[:1], None)
+    plain = am.zero_motion(plx[:1], e_plx[:1], mu_a[:1], mu_d[:1],
+                           pmra_error_mas_yr=s_a[:1], pmdec_error_mas_yr=s_d[:1], pmra_pmdec_corr=None)
     assert zm.pm_chi2[0] == plain.pm_chi2[0] == pytest.approx(8.0)
 
 
 @pytest.mark.parametrize("bad", [0.0, -1.0, np.nan, np.inf])
 def test_error_inflation_must_be_positive(bad):
     with pytest.raises(ValueError, match="error_inflation"):
-        am.zero_motion([0.0], [1.0], [0.0], [0.0], [1.0], [1.0], error_inflation=bad)
+        am.zero_motion([0.0], [1.0], [0.0], [0.0],
+                       pmra_error_mas_yr=[1.0], pmdec_error_mas_yr=[1.0], error_inflation=bad)
 
 
 def test_zero_point_must_be_finite():
     with pytest.raises(ValueError, match="parallax_zero_point_mas"):
-        am.zero_motion([0.0], [1.0], [0.0], [0.0], [1.0], [1.0], parallax_zero_point_mas=np.nan)
+        am.zero_motion([0.0], [1.0], [0.0], [0.0],
+                       pmra_error_mas_yr=[1.0], pmdec_error_mas_yr=[1.0], parallax_zero_point_mas=np.nan)

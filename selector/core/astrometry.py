@@ -125,7 +125,7 @@ def _check_positive_scalar_or_array(value, name: str) -> np.ndarray:
     return v
 
 
-def zero_motion(parallax_mas, parallax_error_mas, pmra_mas_yr, pmdec_mas_yr, pmra_error_mas_yr,
+def zero_motion(parallax_mas, parallax_error_mas, pmra_mas_yr, pmdec_mas_yr, *, pmra_error_mas_yr,
                 pmdec_error_mas_yr, pmra_pmdec_corr=None, parallax_zero_point_mas=-0.017,
                 error_inflation=1.0) -> ZeroMotion:
     """Test whether parallax and proper motion are consistent with zero.

@@ -256,7 +256,7 @@ class MassUncertainty(NamedTuple):
     total_dex: np.ndarray
 
 
-def virial_mass_uncertainty(fwhm_kms, fwhm_err_kms, calibration: Calibration, lamL_err_dex=None,
+def virial_mass_uncertainty(fwhm_kms, fwhm_err_kms, calibration: Calibration, *, lamL_err_dex=None,
                             lamL_erg_s=None, lamL_err_erg_s=None) -> MassUncertainty:
     """Propagate measurement errors into ``log10 M`` and add the calibration scatter.
 

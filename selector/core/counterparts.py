@@ -744,7 +744,7 @@ def _log_expit(x):
     return -np.logaddexp(0.0, -x)
 
 
-def assign_one_to_one(ia, ib, ln_b, prior, separation_arcsec, n_astrometric, *,
+def assign_one_to_one(ia, ib, ln_b, prior, separation_arcsec, *, n_astrometric, 
                       ambiguity_ratio=0.5) -> Assignment:
     """Choose at most one counterpart per source on both sides, most probable pairs first.
 

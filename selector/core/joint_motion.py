@@ -84,8 +84,8 @@ def _corr(values, name: str):
     return np.where(np.isnan(v), 0.0, v)
 
 
-def joint_zero_motion(parallax_mas, parallax_error_mas, pmra_mas_yr, pmdec_mas_yr, pmra_error_mas_yr,
-                      pmdec_error_mas_yr, *, parallax_pmra_corr=None, parallax_pmdec_corr=None,
+def joint_zero_motion(parallax_mas, parallax_error_mas, pmra_mas_yr, pmdec_mas_yr, *, pmra_error_mas_yr,
+                      pmdec_error_mas_yr, parallax_pmra_corr=None, parallax_pmdec_corr=None,
                       pmra_pmdec_corr=None, parallax_zero_point_mas=-0.017, error_inflation=1.0,
                       parallax_n_sigma=3.0, min_eigenvalue=1e-6) -> JointMotion:
     """Test parallax and proper motion against zero together, with their full covariance.

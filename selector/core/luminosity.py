@@ -284,7 +284,7 @@ def nearest_band(z, rest_wavelength_angstrom: float, band_wavelengths_angstrom) 
 
 
 def monochromatic_luminosity_erg_s(mag_ab, band_wavelength_angstrom, z, rest_wavelength_angstrom: float,
-                                   cosmology, alpha_nu: float = DEFAULT_ALPHA_NU) -> np.ndarray:
+                                   *, cosmology, alpha_nu: float = DEFAULT_ALPHA_NU) -> np.ndarray:
     """Rest-frame ``λL_λ`` (erg/s) at ``rest_wavelength_angstrom`` from one observed AB magnitude.
 
     The band of observed effective wavelength ``λ_o`` (frequency ``ν_o = c/λ_o``) samples the rest

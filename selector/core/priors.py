@@ -304,7 +304,7 @@ def estimate_priors_by_bin(proba, train_priors, bin_index, *, n_bins: int | None
         glob = _em(p, global_train, global_train, int(max_iter), float(tol))
         global_priors, global_post, global_conv = glob.priors, glob.posteriors, glob.converged
     else:
-        global_priors, global_post, global_conv = _em_mixed_train(p, per_bin, b, usable, int(max_iter), float(tol))
+        global_priors, global_post, global_conv = _em_mixed_train(p, per_bin, b, usable, max_iter=int(max_iter), tol=float(tol))
 
     post = global_post.copy()
     priors = np.broadcast_to(global_priors, (bins, k)).copy()
@@ -319,7 +319,7 @@ def estimate_priors_by_bin(proba, train_priors, bin_index, *, n_bins: int | None
     return BinnedPriors(post, priors, counts, fallback, global_priors, converged)
 
 
-def _em_mixed_train(p, per_bin, b, usable, max_iter, tol):
+def _em_mixed_train(p, per_bin, b, usable, *, max_iter, tol):
     """Global EM when each row's posterior refers to its own bin's training mix.
 
     The global model is "the same sky mix in every bin": each row is moved from its bin's training

@@ -8,10 +8,11 @@ from __future__ import annotations
 from dataclasses import dataclass, field
 import numpy as np
 import pyarrow as pa
+
 from selector.core import schema
 from selector.core.astrometry import zero_motion
-from selector.settings.config import Config
 from selector.core.photometry import LinearCut, apply_criteria, apply_linear_cut, vega_to_ab
+from selector.errors import SelectorError
 
 
 #: Reason codes for rows a tile cannot use (kept out of the cut-flow, written to the tile's rejects).
@@ -55,7 +56,7 @@ class Selection:
         return self.stages[-1][1]
 
 
-def select(features: pa.Table, cfg: Config, p_quasar: np.ndarray | None = None) -> Selection:
+def select(features: pa.Table, cfg, p_quasar: np.ndarray | None = None) -> Selection:
     """Apply the zero-motion test, the colour criteria and the optional cuts to matched sources.
 
     Parameters
@@ -73,8 +74,8 @@ def select(features: pa.Table, cfg: Config, p_quasar: np.ndarray | None = None) 
     zm = zero_motion(
         _col(features, "parallax_mas"), _col(features, "parallax_error_mas"),
         _col(features, "pmra_mas_yr"), _col(features, "pmdec_mas_yr"),
-        _col(features, "pmra_error_mas_yr"), _col(features, "pmdec_error_mas_yr"),
-        _col(features, "pmra_pmdec_corr"), parallax_zero_point_mas=m.parallax_zero_point_mas,
+        pmra_error_mas_yr=_col(features, "pmra_error_mas_yr"), pmdec_error_mas_yr=_col(features, "pmdec_error_mas_yr"),
+        pmra_pmdec_corr=_col(features, "pmra_pmdec_corr"), parallax_zero_point_mas=m.parallax_zero_point_mas,
         error_inflation=m.error_inflation,
     )
     has_solution = np.isfinite(zm.parallax_snr) & np.isfinite(zm.pm_chi2)
@@ -189,7 +190,5 @@ def check_accounting(n_rows: int, n_rejects: int, flow: list) -> None:
     """Rows of a tile = rejects + input; the cut-flow never increases. Raises on a violation."""
     counts = [c for _, c in flow]
     if flow[0][1] + n_rejects != n_rows or any(b > a for a, b in zip(counts, counts[1:])):
-        from selector.errors import SelectorError
-
         raise SelectorError(f"internal error: row accounting does not add up ({n_rows} rows, {n_rejects} rejects, "
                             f"cut-flow {flow}); the results were not written")

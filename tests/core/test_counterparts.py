@@ -276,13 +276,13 @@ def test_assignment_equals_greedy_reference_and_ignores_pair_order():
         m = int(rng.integers(0, n_a * n_b + 1))
         ia, ib, ln_b, sep = _random_pairs(rng, n_a, n_b, m)
         prior = 0.3
-        res = cp.assign_one_to_one(ia, ib, ln_b, prior, sep, n_a)
+        res = cp.assign_one_to_one(ia, ib, ln_b, prior, sep, n_astrometric=n_a)
         odds = cp.posterior_log_odds(ln_b, prior)
         np.testing.assert_array_equal(res.ib, _greedy_reference(ia, ib, odds, sep, n_a))
         chosen = res.ib[res.ib >= 0]
         assert len(np.unique(chosen)) == len(chosen)  # no infrared source twice
         perm = rng.permutation(m)
-        res2 = cp.assign_one_to_one(ia[perm], ib[perm], ln_b[perm], prior, sep[perm], n_a)
+        res2 = cp.assign_one_to_one(ia[perm], ib[perm], ln_b[perm], prior, sep[perm], n_astrometric=n_a)
         for field in ("ib", "probability", "ln_b", "separation_arcsec", "n_candidates", "n_rivals",
                       "n_competitors", "runner_up_ratio", "ambiguous"):
             np.testing.assert_array_equal(getattr(res2, field), getattr(res, field))
@@ -298,7 +298,7 @@ def test_loser_takes_next_best_and_counts():
     cov = cp.PositionCovariance(0.25, 0.25, 0.0)
     ln_b = cp.bayes_factor(sep, 0.0, cov).ln_b
     prior = 1e-9
-    res = cp.assign_one_to_one(ia, ib, ln_b, prior, sep, 4)
+    res = cp.assign_one_to_one(ia, ib, ln_b, prior, sep, n_astrometric=4)
     assert res.ib.tolist() == [11, 10, -1, -1]
     assert res.pair_index.tolist() == [1, 2, -1, -1]
     assert res.n_candidates.tolist() == [2, 1, 1, 0]
@@ -313,7 +313,7 @@ def test_loser_takes_next_best_and_counts():
     np.testing.assert_allclose(res.runner_up_ratio[1], p[0] / p[2])
     assert res.ambiguous.tolist() == [bool(p[0] / p[1] > 0.5), bool(p[0] / p[2] > 0.5), False, False]
     # with a NaN ln B the pair is not a candidate at all
-    res_nan = cp.assign_one_to_one(ia, ib, np.where(ia == 1, np.nan, ln_b), prior, sep, 4)
+    res_nan = cp.assign_one_to_one(ia, ib, np.where(ia == 1, np.nan, ln_b), prior, sep, n_astrometric=4)
     assert res_nan.ib.tolist() == [10, -1, -1, -1] and res_nan.n_candidates.tolist() == [2, 0, 1, 0]
 
 
@@ -350,7 +350,7 @@ def _match(ra_a, dec_a, cov_a, ra_b, dec_b, cov_b, completeness, n_sigma=5.0, ma
     ln_b = cp.bayes_factor(off.east_arcsec, off.north_arcsec, total).ln_b
     rho = cp.local_density_per_sr(xyz_a, xyz_b, 120.0)
     prior = cp.prior_from_density(rho, completeness)[ia]
-    return cp.assign_one_to_one(ia, ib, ln_b, prior, off.separation_arcsec, len(ra_a))
+    return cp.assign_one_to_one(ia, ib, ln_b, prior, off.separation_arcsec, n_astrometric=len(ra_a))
 
 
 def test_simulated_field_recovery_and_chance_rate():

@@ -23,7 +23,7 @@ def _random_covariances(rng, n):
 
 
 def _call(x, sig, corr, **kw):
-    return joint_zero_motion(x[:, 0] + ZP, sig[:, 0], x[:, 1], x[:, 2], sig[:, 1], sig[:, 2],
+    return joint_zero_motion(x[:, 0] + ZP, sig[:, 0], x[:, 1], x[:, 2], pmra_error_mas_yr=sig[:, 1], pmdec_error_mas_yr=sig[:, 2],
                              parallax_pmra_corr=corr[:, 0, 1], parallax_pmdec_corr=corr[:, 0, 2],
                              pmra_pmdec_corr=corr[:, 1, 2], parallax_zero_point_mas=ZP, **kw)
 
@@ -86,10 +86,10 @@ def test_error_inflation_scales_chi2_and_snr():
 def test_none_correlations_mean_zero_and_match_independent_sum():
     plx, pma, pmd = np.array([1.0, -0.5]), np.array([2.0, 0.3]), np.array([-1.0, 0.1])
     e = np.array([0.5, 0.2])
-    res = joint_zero_motion(plx, e, pma, pmd, e, e, parallax_zero_point_mas=0.0)
+    res = joint_zero_motion(plx, e, pma, pmd, pmra_error_mas_yr=e, pmdec_error_mas_yr=e, parallax_zero_point_mas=0.0)
     # uncorrelated: χ² is the sum of three squared significances (definition of χ²)
     np.testing.assert_allclose(res.chi2, (plx / e) ** 2 + (pma / e) ** 2 + (pmd / e) ** 2)
-    res0 = joint_zero_motion(plx, e, pma, pmd, e, e, parallax_zero_point_mas=0.0,
+    res0 = joint_zero_motion(plx, e, pma, pmd, pmra_error_mas_yr=e, pmdec_error_mas_yr=e, parallax_zero_point_mas=0.0,
                              parallax_pmra_corr=[np.nan, 0.0], parallax_pmdec_corr=0.0,
                              pmra_pmdec_corr=np.zeros(2))
     np.testing.assert_array_equal(res.chi2, res0.chi2)
@@ -98,7 +98,7 @@ def test_none_correlations_mean_zero_and_match_independent_sum():
 def test_parallax_statistic_and_flags():
     plx = np.array([0.0, 1.0, -1.0, 0.2, np.nan]) + ZP
     e = np.full(5, 0.25)
-    res = joint_zero_motion(plx, e, np.zeros(5), np.zeros(5), np.ones(5), np.ones(5))
+    res = joint_zero_motion(plx, e, np.zeros(5), np.zeros(5), pmra_error_mas_yr=np.ones(5), pmdec_error_mas_yr=np.ones(5))
     np.testing.assert_allclose(res.parallax_snr[:4], [0.0, 4.0, -4.0, 0.8])
     # one-sided tail of the standard normal, scipy.stats.norm as reference
     np.testing.assert_allclose(res.parallax_pvalue[:4], stats.norm.sf([0.0, 4.0, -4.0, 0.8]))
@@ -109,7 +109,7 @@ def test_parallax_statistic_and_flags():
 
 def test_nan_and_zero_error_rows_give_nan():
     res = joint_zero_motion([0.1, 0.1, 0.1], [0.1, 0.0, 0.1], [1.0, 1.0, np.nan], [1.0, 1.0, 1.0],
-                            [1.0, 1.0, 1.0], [1.0, 1.0, 1.0])
+                            pmra_error_mas_yr=[1.0, 1.0, 1.0], pmdec_error_mas_yr=[1.0, 1.0, 1.0])
     assert np.isfinite(res.chi2[0])
     assert np.isnan(res.chi2[1:]).all() and np.isnan(res.pvalue[1:]).all()
 
@@ -120,7 +120,7 @@ def test_non_positive_definite_correlations_are_shrunk():
     b = np.array([0.9, 0.0, 0.1])
     c = np.array([-0.9, 0.0, 0.2])
     x = np.array([[0.3, 0.2, -0.1], [1.0, -1.0, 0.5], [0.3, 0.2, -0.1]])
-    res = joint_zero_motion(x[:, 0], np.ones(3), x[:, 1], x[:, 2], np.ones(3), np.ones(3),
+    res = joint_zero_motion(x[:, 0], np.ones(3), x[:, 1], x[:, 2], pmra_error_mas_yr=np.ones(3), pmdec_error_mas_yr=np.ones(3),
                             parallax_pmra_corr=a, parallax_pmdec_corr=b, pmra_pmdec_corr=c,
                             parallax_zero_point_mas=0.0)
     assert res.covariance_adjusted.tolist() == [True, True, False]
@@ -141,16 +141,16 @@ def test_non_positive_definite_correlations_are_shrunk():
 def test_bad_input_names_the_argument():
     one = np.ones(2)
     with pytest.raises(InputError, match="pmdec_error_mas_yr"):
-        joint_zero_motion(one, one, one, one, one, [1.0, -0.1])
+        joint_zero_motion(one, one, one, one, pmra_error_mas_yr=one, pmdec_error_mas_yr=[1.0, -0.1])
     with pytest.raises(InputError, match="parallax_error_mas"):
-        joint_zero_motion(one, [-1.0, 1.0], one, one, one, one)
+        joint_zero_motion(one, [-1.0, 1.0], one, one, pmra_error_mas_yr=one, pmdec_error_mas_yr=one)
     with pytest.raises(InputError, match="pmra_pmdec_corr"):
-        joint_zero_motion(one, one, one, one, one, one, pmra_pmdec_corr=[0.2, 1.5])
+        joint_zero_motion(one, one, one, one, pmra_error_mas_yr=one, pmdec_error_mas_yr=one, pmra_pmdec_corr=[0.2, 1.5])
     with pytest.raises(ConfigError, match="error_inflation"):
-        joint_zero_motion(one, one, one, one, one, one, error_inflation=0.0)
+        joint_zero_motion(one, one, one, one, pmra_error_mas_yr=one, pmdec_error_mas_yr=one, error_inflation=0.0)
 
 
 def test_scalars_work():
-    res = joint_zero_motion(0.0, 0.1, 0.0, 0.0, 0.1, 0.1, pmra_pmdec_corr=1.0,
+    res = joint_zero_motion(0.0, 0.1, 0.0, 0.0, pmra_error_mas_yr=0.1, pmdec_error_mas_yr=0.1, pmra_pmdec_corr=1.0,
                             parallax_zero_point_mas=0.0)
     assert res.chi2 == 0.0 and bool(res.covariance_adjusted)

@@ -135,12 +135,12 @@ def test_lambda_l_lambda_round_trip_at_3000_angstrom(band):
     nu_t = C_ANGSTROM_S / 3000.0
     lnu_at = lambda nu: (target / nu_t) * (nu / nu_t) ** alpha
     mag = _observed_ab_mag(lnu_at, band, z, Planck18)
-    got = lum.monochromatic_luminosity_erg_s([mag], band, [z], 3000.0, Planck18, alpha)
+    got = lum.monochromatic_luminosity_erg_s([mag], band, [z], 3000.0, cosmology=Planck18, alpha_nu=alpha)
     assert got[0] == pytest.approx(target, rel=1e-10)
 
 
 def test_monochromatic_luminosity_is_nan_without_redshift():
-    got = lum.monochromatic_luminosity_erg_s([19.0, 19.0], 9000.0, [np.nan, 0.0], 3000.0, Planck18)
+    got = lum.monochromatic_luminosity_erg_s([19.0, 19.0], 9000.0, [np.nan, 0.0], 3000.0, cosmology=Planck18)
     assert np.isnan(got).all()
 
 
