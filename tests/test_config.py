@@ -171,7 +171,7 @@ def test_default_toml_documents_every_settings_key():
                        "motion": cfgmod.MotionConfig, "colours": cfgmod.ColourConfig,
                        "ranking": cfgmod.RankingConfig, "classifier": cfgmod.ClassifierConfig,
                        "run": cfgmod.RunConfig, "astrometric": cfgmod.CatalogueConfig,
-                       "targets": cfgmod.TargetsConfig}
+                       "targets": cfgmod.TargetsConfig, "physics": cfgmod.PhysicsConfig}
     for section, cls in section_classes.items():
         assert f"[{section}]" in text, section
         for f in dataclasses.fields(cls):
@@ -186,7 +186,7 @@ def test_default_toml_documents_every_settings_key():
 
 def test_default_toml_values_equal_code_defaults():
     cfg = load_config(CONFIGS / "default.toml")
-    for section in ("project", "tiling", "match", "motion", "colours", "ranking", "classifier", "run"):
+    for section in ("project", "tiling", "match", "motion", "colours", "ranking", "classifier", "run", "physics"):
         written = to_plain(getattr(cfg, section))
         default = to_plain(getattr(cfgmod, type(getattr(cfg, section)).__name__)())
         assert written == default, section

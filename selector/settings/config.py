@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import hashlib
 import json
+import math
 import re
 import tomllib
 from dataclasses import dataclass
@@ -18,7 +19,7 @@ from typing import Optional
 
 import astropy.units as u
 
-from selector.core import schema
+from selector.core import blackhole, luminosity, schema
 from selector.settings.validate import build, convert, setting, suggest, to_plain
 from selector.errors import ConfigError
 
@@ -368,6 +369,88 @@ class TargetsConfig:
         return 30.0 if self.altitude_min_deg is None else self.altitude_min_deg
 
 
+def _default_bolometric_corrections() -> dict[str, float]:
+    # keys are text because TOML table keys are; rest wavelengths in Å
+    return {f"{k:d}": v for k, v in luminosity.BOLOMETRIC_CORRECTIONS.items()}
+
+
+#: Value of ``physics.cosmology`` that selects a flat ΛCDM model from ``h0_km_s_mpc`` and ``omega_m``.
+FLAT_COSMOLOGY = "flat"
+
+
+@dataclass(frozen=True)
+class PhysicsConfig:
+    """Physics after spectroscopy (`selector weigh`): cosmology, continuum, bolometric corrections,
+    radiative efficiencies, virial calibrations and extinction coefficients."""
+
+    cosmology: str = setting(luminosity.DEFAULT_COSMOLOGY,
+                             doc="a parameter set shipped with astropy (e.g. Planck18), or 'flat' with "
+                                 "h0_km_s_mpc and omega_m")
+    h0_km_s_mpc: Optional[float] = setting(None, min=0.0, min_exclusive=True, max=200.0,
+                                           doc="Hubble constant of the 'flat' cosmology, km/s/Mpc")
+    omega_m: Optional[float] = setting(None, min=0.0, max=1.0, doc="matter density of the 'flat' cosmology")
+    alpha_nu: float = setting(luminosity.DEFAULT_ALPHA_NU, min=-5.0, max=5.0,
+                              doc="power-law index of the continuum f_nu ∝ nu^alpha_nu, for K-corrections")
+    bolometric_corrections: dict[str, float] = setting(
+        default_factory=_default_bolometric_corrections, min=0.0, min_exclusive=True,
+        doc="rest wavelength in Å → BC in L_bol = BC · λL_λ; needs 1350, 3000 and 5100")
+    efficiency_range: list[float] = setting(default_factory=lambda: (0.057, 0.32), min=0.0, min_exclusive=True,
+                                            max=1.0, doc="[low, high] radiative efficiency for the accretion-rate range")
+    virial_calibrations: str = setting(blackhole.DEFAULT_CALIBRATION_SET, choices=tuple(blackhole.CALIBRATION_SETS),
+                                       doc="set of single-epoch virial-mass calibrations")
+    extinction: Optional[dict[str, float]] = setting(None, min=0.0,
+                                                     doc="band → R in A_band = R · E(B−V), for later use")
+
+    def _check(self, where):
+        flat = self.cosmology == FLAT_COSMOLOGY
+        if not flat and (self.h0_km_s_mpc is not None or self.omega_m is not None):
+            raise ConfigError(f"{where}: h0_km_s_mpc and omega_m are used only with cosmology = \"flat\"; "
+                              f"remove them or set cosmology = \"flat\" (now {self.cosmology!r})")
+        try:
+            self.astropy_cosmology()
+        except ConfigError as exc:
+            hint = " (with cosmology = \"flat\")" if not flat else ""
+            raise ConfigError(f"{where}.{exc}{hint}") from None
+        wavelengths = {}
+        for key in self.bolometric_corrections:
+            try:
+                value = float(key)
+            except ValueError:
+                value = math.nan
+            if not (math.isfinite(value) and value > 0.0):
+                raise ConfigError(f"{where}.bolometric_corrections: key {key!r} is not a rest wavelength in Å "
+                                  "(write e.g. 1350 = 3.81)")
+            if value in wavelengths:
+                raise ConfigError(f"{where}.bolometric_corrections: {key!r} and {wavelengths[value]!r} are the "
+                                  "same wavelength")
+            wavelengths[value] = key
+        needed = [w for w in luminosity.REST_WAVELENGTHS_ANGSTROM if w not in wavelengths]
+        if needed:
+            raise ConfigError(f"{where}.bolometric_corrections has no value for {needed[0]:g} Å; give all of "
+                              f"{', '.join(f'{w:g}' for w in luminosity.REST_WAVELENGTHS_ANGSTROM)} "
+                              "(a table given here replaces the whole default)")
+        if len(self.efficiency_range) != 2:
+            raise ConfigError(f"{where}.efficiency_range = {list(self.efficiency_range)} must be two numbers "
+                              "[low, high]")
+        low, high = self.efficiency_range
+        if not low <= high < 1.0:
+            raise ConfigError(f"{where}.efficiency_range = {list(self.efficiency_range)} must be [low, high] with "
+                              "0 < low <= high < 1")
+        for band in self.extinction or {}:
+            if not str(band).strip():
+                raise ConfigError(f"{where}.extinction has an empty band name")
+
+    def astropy_cosmology(self):
+        """The configured cosmology as an astropy object (raises ConfigError as validation does)."""
+        if self.cosmology == FLAT_COSMOLOGY:
+            return luminosity.cosmology_from_settings(None, self.h0_km_s_mpc, self.omega_m)
+        return luminosity.cosmology_from_settings(self.cosmology)
+
+    def bolometric_correction_table(self) -> dict[float, float]:
+        """The bolometric corrections keyed by rest wavelength in Å, as numbers."""
+        return {float(k): float(v) for k, v in self.bolometric_corrections.items()}
+
+
 @dataclass(frozen=True)
 class Config:
     """The whole validated configuration. Build it with :func:`load_config` or :func:`from_dict`."""
@@ -384,6 +467,8 @@ class Config:
     classifier: ClassifierConfig = setting(default_factory=ClassifierConfig)
     run: RunConfig = setting(default_factory=RunConfig)
     targets: Optional[TargetsConfig] = setting(None, doc="follow-up target lists (`selector targets`)")
+    physics: PhysicsConfig = setting(default_factory=PhysicsConfig,
+                                     doc="physics after spectroscopy (`selector weigh`)")
     base_dir: str = setting(".", doc="folder relative paths are taken from (set by load_config)")
 
     def _check(self, where):

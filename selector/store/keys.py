@@ -22,14 +22,16 @@ def digest(*parts) -> str:
 
 
 def result_config(cfg: Config) -> dict:
-    """The configuration as recorded with results: every section except ``[run]``.
+    """The configuration as recorded with results: every section except ``[run]`` and ``[physics]``.
 
     How a run is executed (workers, executor, progress) never changes its results, so it is kept
     out of the hash and the record; the same selection run locally or on a cluster gives the same
-    bytes.
+    bytes. ``[physics]`` is read only after spectroscopy (``selector weigh``, which records its own
+    hash of it), so changing a cosmology leaves a run's candidates and their provenance alone.
     """
     data = plain(cfg)
     data.pop("run", None)
+    data.pop("physics", None)
     return data
 
 
