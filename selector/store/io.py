@@ -13,6 +13,7 @@ import hashlib
 import json
 import os
 import tempfile
+import warnings
 from contextlib import contextmanager
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -321,6 +322,60 @@ def write_table(table, path: Path, fmt: str) -> Path:
     astropy_fmt = {"ecsv": "ascii.ecsv", "csv": "ascii.csv", "votable": "votable", "fits": "fits"}[fmt]
     with atomic_path(path) as tmp:
         table.write(tmp, format=astropy_fmt, overwrite=True)
+    return Path(path)
+
+
+#: Units a VOTable may carry under another spelling of the same unit: VOUnit (the VOTable unit
+#: standard) has deprecated erg and Angstrom, so they are written as scaled SI units.
+_VOUNIT_BASES = ("W", "nm", "Jy", "m", "s", "kg", "deg")
+
+
+def vounit_string(unit) -> str | None:
+    """The unit written the VOUnit way, or None when VOUnit cannot express it (e.g. ``dex``).
+
+    A unit VOUnit knows is written as it is; a deprecated one is written as a scale times an SI
+    unit of the same kind (``erg / s`` → ``1e-07W``, ``Angstrom`` → ``0.1nm``), which is the same
+    unit, so the values are unchanged.
+    """
+    import astropy.units as u
+
+    if unit is None:
+        return None
+    unit = u.Unit(unit)
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        try:
+            return unit.to_string("vounit")
+        except (ValueError, TypeError, Warning):
+            pass
+    if isinstance(unit, u.FunctionUnitBase):
+        return None
+    for base in _VOUNIT_BASES:
+        if unit.is_equivalent(base):
+            return f"{unit.to(base):.10g}{base}"
+    return None
+
+
+def write_votable(table, path: Path, infos: dict[str, str] | None = None) -> Path:
+    """Write an astropy Table as a VOTable atomically, with VOUnit units and ``INFO`` elements.
+
+    Units VOUnit cannot express are left out (the column description should say them); the table's
+    ``description`` meta becomes the table's description, and each ``infos`` entry an ``INFO``
+    element (e.g. provenance as JSON), since VOTable has no place for nested metadata.
+    """
+    from astropy.io.votable import from_table, writeto
+    from astropy.io.votable.tree import Info
+
+    out = table.copy(copy_data=False)
+    out.meta = {"description": table.meta.get("description", "")}
+    for name in out.colnames:
+        out[name].unit = vounit_string(out[name].unit)
+    vot = from_table(out)
+    first = vot.get_first_table()
+    for name, value in (infos or {}).items():
+        first.infos.append(Info(name=name, value=value))
+    with atomic_path(path) as tmp:
+        writeto(vot, str(tmp))
     return Path(path)
 
 

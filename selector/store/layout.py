@@ -12,6 +12,7 @@
       <classifier.output_folder>/quasar_classifier.skops (+ .card.json), evaluation.json, ...
       <targets.output_folder>/targets.*, dropped.*, summary.txt, provenance.json
       <targets.history_file>                                 the candidate history
+      physics/<stem>_masses.{ecsv,vot,parquet}, <stem>_rejects.ecsv   `selector weigh` of <stem>.<ending>
 
 Modules never spell these names themselves: they ask a :class:`Layout`. A layout is built from the
 output folder alone (``Layout(cfg.output_dir)``, or :func:`layout_of` for a configuration), so a run
@@ -178,3 +179,27 @@ def history_file(cfg) -> Path:
 def demo_truth(cfg) -> Path:
     """The truth table the demo writes beside its configuration."""
     return Path(cfg.base_dir) / DEMO_TRUTH
+
+
+# --- physics after spectroscopy (`selector weigh`) -----------------------------------------------
+
+#: Folder below the output folder for the black-hole masses of ``selector weigh``.
+WEIGH_FOLDER = "physics"
+#: Files ``selector weigh`` writes for one spectroscopy file, by kind; ``{stem}`` is that file's name
+#: without its ending, so weighing several files keeps each one's results.
+WEIGH_FILES = {"ecsv": "{stem}_masses.ecsv", "votable": "{stem}_masses.vot", "parquet": "{stem}_masses.parquet",
+               "rejects": "{stem}_rejects.ecsv"}
+
+
+def weigh_dir(cfg) -> Path:
+    """``<output_dir>/physics``: where ``selector weigh`` writes."""
+    return cfg.output_dir / WEIGH_FOLDER
+
+
+def weigh_outputs(cfg, spectra_file: Path | str) -> dict[str, Path]:
+    """The files ``selector weigh`` writes for ``spectra_file``, by kind (see :data:`WEIGH_FILES`)."""
+    name = Path(spectra_file).name
+    if name.lower().endswith(".gz"):
+        name = name[:-3]
+    stem = Path(name).stem
+    return {kind: weigh_dir(cfg) / pattern.format(stem=stem) for kind, pattern in WEIGH_FILES.items()}
