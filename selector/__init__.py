@@ -1,7 +1,7 @@
 """selector: find luminous quasar candidates by cross-matching an astrometric and an infrared catalogue.
 
 The public functions live in :mod:`selector.api` and are re-exported here: ``load_config``, ``ingest``,
-``run``, ``status``, ``train``, ``tune``, ``targets``, ``outcomes`` and ``report``, each with the
+``run``, ``status``, ``train``, ``tune``, ``targets``, ``outcomes``, ``weigh`` and ``report``, each with the
 configuration first, options by keyword, a ``log`` callable and a result object back. They are
 loaded on first use, so ``selector --version`` does not pay for the science libraries. See README.md
 for the command-line tour and DEVELOPERS.md for the architecture.
@@ -19,8 +19,8 @@ except PackageNotFoundError:  # running from a source tree that was not installe
 _PUBLIC = {
     "load_config": "selector.api", "ingest": "selector.api", "run": "selector.api", "status": "selector.api",
     "train": "selector.api", "tune": "selector.api", "targets": "selector.api", "outcomes": "selector.api",
-    "report": "selector.api", "Config": "selector.settings.config", "config_hash": "selector.settings.config",
-    "from_dict": "selector.settings.config", "SelectorError": "selector.errors", "ConfigError": "selector.errors",
+    "report": "selector.api", "weigh": "selector.api", "Config": "selector.settings.config",
+    "config_hash": "selector.settings.config", "from_dict": "selector.settings.config", "SelectorError": "selector.errors", "ConfigError": "selector.errors",
     "InputError": "selector.errors",
 }
 

@@ -13,14 +13,14 @@ from pathlib import Path
 from typing import Callable, Sequence
 
 from selector.errors import ConfigError
-from selector.jobs import classify, followup, ingest as ingest_job, tune as tune_job
+from selector.jobs import classify, followup, ingest as ingest_job, tune as tune_job, weigh as weigh_job
 from selector.jobs.run import batch
 from selector.present import plots, report as report_page
 from selector.settings.config import Config, load_config
 
 Log = Callable[[str], None]
 
-__all__ = ["Config", "ingest", "load_config", "outcomes", "report", "run", "status", "targets", "train", "tune"]
+__all__ = ["Config", "ingest", "load_config", "outcomes", "report", "run", "status", "targets", "train", "tune", "weigh"]
 
 
 def _config(config: Config | str | os.PathLike) -> Config:
@@ -84,6 +84,16 @@ def outcomes(config, file, *, log: Log = print) -> int:
     if cfg.targets is None:
         raise ConfigError(f"{config}: no [targets] section, so there is no candidate history to record into")
     return followup.record_outcomes(cfg, file, log=log)
+
+
+def weigh(config, file, *, log: Log = print) -> weigh_job.WeighResult:
+    """Weigh the black holes of a spectroscopy file: virial masses, L_bol, Eddington ratios, accretion rates.
+
+    ``file`` holds broad-line widths and continuum luminosities or flux densities per source (columns
+    in :mod:`selector.jobs.weigh`); ``[physics]`` sets the cosmology, bolometric corrections,
+    efficiencies and calibrations. Results go below ``project.output_dir/physics``.
+    """
+    return weigh_job.weigh(_config(config), file, log=log)
 
 
 def report(run_dir, *, out=None, top: int = 50, log: Log = print) -> Path:

@@ -82,6 +82,13 @@ def _cmd_outcome(args) -> int:
     return 0
 
 
+def _cmd_weigh(args) -> int:
+    from selector import api
+
+    api.weigh(args.config, args.file, log=print)
+    return 0
+
+
 def _cmd_demo(args) -> int:
     from selector.demo.mocksky import run_demo
 
@@ -142,6 +149,23 @@ def build_parser() -> argparse.ArgumentParser:
                    help="CSV, ECSV, VOTable, FITS or Parquet with columns astro_id (or candidate_id, id), "
                         "spec_class (or spectroscopic_class, class: quasar, star, galaxy) and optionally redshift (or z)")
     p.set_defaults(func=_cmd_outcome)
+
+    p = sub.add_parser(
+        "weigh", help="black-hole masses, bolometric luminosities, Eddington ratios and accretion rates from "
+                      "broad-line widths",
+        description="Weigh the black holes of confirmed quasars from a spectroscopy file: single-epoch virial "
+                    "masses from C IV, Mg II and Hbeta widths, the adopted mass (Hbeta, then Mg II, then C IV), "
+                    "L_bol, Eddington ratio and accretion-rate range, under the config's [physics]. Writes "
+                    "project.output_dir/physics/<file>_masses.{ecsv,vot,parquet} and <file>_rejects.ecsv.",
+        epilog="example: selector weigh --config my.toml --file spectra.csv   (a CSV line: "
+               "astro_id,redshift,fwhm_mgii_kms,fwhm_mgii_err_kms,lamL3000_erg_s,lamL3000_err_erg_s → "
+               "1234,1.8,3500,200,1e45,5e43)")
+    _config_arg(p)
+    p.add_argument("--file", required=True, metavar="SPECTRA",
+                   help="CSV, ECSV, VOTable, FITS or Parquet: astro_id (or candidate_id, id), redshift (or z), "
+                        "fwhm_<line>_kms and fwhm_<line>_err_kms for civ, mgii, hbeta, and lamL<W>_erg_s, "
+                        "lamL<W>_err_erg_s or fnu<W>_mjy, fnu<W>_err_mjy for W = 1350, 3000, 5100")
+    p.set_defaults(func=_cmd_weigh)
 
     p = sub.add_parser(
         "tune", help="re-apply changed cuts to the run's feature cache in seconds; cut-flow before and after",

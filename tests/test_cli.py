@@ -21,7 +21,7 @@ def test_version(capsys):
 def test_every_subcommand_has_help(capsys):
     sub = next(a for a in build_parser()._actions if a.dest == "command")
     names = set(sub.choices)
-    assert {"ingest", "run", "demo", "status", "train", "tune", "report", "targets", "outcome"} <= names
+    assert {"ingest", "run", "demo", "status", "train", "tune", "report", "targets", "outcome", "weigh"} <= names
     for name in sorted(names):
         with pytest.raises(SystemExit) as exc:
             main([name, "--help"])
