@@ -1,7 +1,7 @@
 """Side-by-side timing of the observability computation against astropy ``AltAz``.
 
 Our side: the night grid of a semester (Sun, sidereal time and Moon from astropy at knots) plus
-:func:`selector.followup.observability` for N targets over every dark step. The reference:
+:func:`selector.core.observability.observability` for N targets over every dark step. The reference:
 astropy ``SkyCoord.transform_to(AltAz(...))`` of a subset of the targets at the same dark steps,
 timed on its own and scaled per target-step. Both run in this process on the same arrays; the
 script checks that they agree on which steps are above the altitude limit and prints both times
@@ -24,7 +24,7 @@ import numpy as np
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
-from selector.jobs import followup as fu  # noqa: E402
+from selector.core import observability as fu  # noqa: E402
 from selector.settings.config import SiteConfig  # noqa: E402
 
 
@@ -62,9 +62,9 @@ def main(argv=None) -> int:
 
     mjd = grid.step_mjd[grid.dark]
     k = min(args.subset, args.targets)
-    loc = fu._location(site)
+    loc = fu.site_location(site)
     t3 = time.perf_counter()
-    with fu._offline_earth_rotation():
+    with fu.offline_earth_rotation():
         frame = AltAz(obstime=Time(mjd[None, :], format="mjd", scale="utc"), location=loc, pressure=0 * u.hPa)
         alt = SkyCoord(ra[:k, None] * u.deg, dec[:k, None] * u.deg).transform_to(frame).alt.deg
     t4 = time.perf_counter()

@@ -13,7 +13,7 @@ from pathlib import Path
 from typing import Callable, Sequence
 
 from selector.errors import ConfigError
-from selector.jobs import classify, followup, ingest as ingest_job, tune as tune_job, weigh as weigh_job
+from selector.jobs import classify, ingest as ingest_job, targets as targets_job, tune as tune_job, weigh as weigh_job
 from selector.jobs.run import batch
 from selector.present import plots, report as report_page
 from selector.settings.config import Config, load_config
@@ -70,12 +70,12 @@ def tune(config: str | os.PathLike, *, settings: Sequence[str] = (), truth=None,
     return out
 
 
-def targets(config, *, new_only: bool = False, log: Log = print) -> followup.TargetsResult:
+def targets(config, *, new_only: bool = False, log: Log = print) -> targets_job.TargetsResult:
     """Build the follow-up target list: known objects out, observability from the site, priorities."""
     cfg = _config(config)
     if cfg.targets is None:
         raise ConfigError(f"{config}: no [targets] section; add one (every key is in configs/default.toml)")
-    return followup.make_targets(cfg, new_only=new_only, log=log)
+    return targets_job.make_targets(cfg, new_only=new_only, log=log)
 
 
 def outcomes(config, file, *, log: Log = print) -> int:
@@ -83,7 +83,7 @@ def outcomes(config, file, *, log: Log = print) -> int:
     cfg = _config(config)
     if cfg.targets is None:
         raise ConfigError(f"{config}: no [targets] section, so there is no candidate history to record into")
-    return followup.record_outcomes(cfg, file, log=log)
+    return targets_job.record_outcomes(cfg, file, log=log)
 
 
 def weigh(config, file, *, log: Log = print) -> weigh_job.WeighResult:

@@ -282,7 +282,7 @@ def test_labelled_set_is_deterministic(trained):
 
 
 def test_outcome_labels_win_over_catalogue_labels(trained, monkeypatch):
-    from selector.jobs import followup
+    from selector.jobs import targets as followup
 
     base = classify.collect_labelled(trained["cfg"])
     quasars = base.table.filter(pc.equal(base.table.column("label"), "quasar")).column("astro_id").slice(0, 5)

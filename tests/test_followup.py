@@ -15,7 +15,11 @@ import pyarrow as pa
 import pytest
 from astropy.table import Table
 
-from selector.jobs import followup as fu
+from selector.core.observability import priority_classes, sexagesimal
+from selector.jobs import targets as fu
+from selector.jobs.targets import lists
+from selector.jobs.targets.known import read_known
+from selector.store.history import read_history, score_history
 from selector.cli import main
 from selector.errors import ConfigError, InputError
 from selector.store.io import write_parquet
@@ -148,7 +152,7 @@ def test_targets_known_file_rows_are_accounted(tmp_path):
                                 "columns": {"name": "name", "ra": "ra", "dec": "dec", "class": "kind"}}
     cfg = build(data, tmp_path)
     _candidates(cfg, [1, 2], [195.0, 196.0], [-30.0, -30.0], [2.0, 1.0])
-    known = fu._read_known(cfg)
+    known = read_known(cfg)
     assert (known.rows_in, known.table.num_rows, known.rejected) == (2, 1, {"unparsable_value": 1})
     result = fu.make_targets(cfg, log=lambda *a: None)
     assert list(result.dropped["astro_id"]) == [2]
@@ -213,12 +217,13 @@ def test_priority_rule():
     mag = np.array([13, 13, 13, 13, 14.5, 13, 13, np.nan, 13, 13])
     steps = np.full(10, 30)                       # 5 h at 10-minute steps
     steps[1] = 11                                 # 1 h 50 min: under class 1's 2 h
-    got = fu.priority_classes(score, rank, mag, steps, 10, p)
+    got = priority_classes(score, rank, mag, steps, step_min=10, priority=p)
     # top 20 % of 10 = ranks 1-2; top 60 % = ranks 1-6
     assert got.tolist() == [1, 2, 2, 2, 2, 2, 3, 3, 3, 3]
     # equal scores are ordered by rank, and 0.1 x 30 means exactly 3 targets in the top
     p = PriorityConfig(class1_score_top_fraction=0.1, class1_mag_max=99.0, class1_hours_min=0.0)
-    got = fu.priority_classes(np.ones(30), np.arange(30, 0, -1), np.full(30, 12.0), np.full(30, 6), 10, p)
+    got = priority_classes(np.ones(30), np.arange(30, 0, -1), np.full(30, 12.0), np.full(30, 6), step_min=10,
+                           priority=p)
     assert sorted(np.flatnonzero(got == 1).tolist()) == [27, 28, 29]
 
 
@@ -273,9 +278,9 @@ def test_every_format_reads_back_with_units_and_provenance(tmp_path):
         assert t.colnames == ref.colnames, fmt
         for name in ref.colnames:
             assert _same(t[name], ref[name]), (fmt, name)
-            want = fu.unit_of(name)
+            want = lists.unit_of(name)
             # CSV has no unit field: its units come from the column names, as everywhere in the project
-            got = fu.unit_of(name) if fmt == "csv" else (None if t[name].unit is None else t[name].unit.to_string())
+            got = lists.unit_of(name) if fmt == "csv" else (None if t[name].unit is None else t[name].unit.to_string())
             assert (got is None) == (want is None), (fmt, name)
             if want:
                 assert t[name].unit == want if fmt != "csv" else got == want, (fmt, name)
@@ -294,7 +299,7 @@ def test_sexagesimal_matches_astropy_formatting():
 
     ra = np.array([0.0, 15.0, 123.456789, 359.99999999, 180.0 + 1e-9])
     dec = np.array([0.0, -0.0000001, -45.123456, 89.9999999999, 12.5])
-    hms, dms = fu.sexagesimal(ra, dec)
+    hms, dms = sexagesimal(ra, dec)
     # reference: astropy Angle.to_string with the same precision (rounding carries into minutes and hours)
     want_ra = Angle(ra, "deg").wrap_at("360d").to_string(unit="hourangle", sep=":", precision=3, pad=True)
     want_dec = Angle(dec, "deg").to_string(unit="deg", sep=":", precision=2, pad=True, alwayssign=True)
@@ -317,7 +322,7 @@ def test_output_is_deterministic(tmp_path):
 # --- history and outcomes -----------------------------------------------------------------------
 
 def _statuses(cfg):
-    h = fu.read_history(cfg)
+    h = read_history(cfg)
     return dict(zip(h.column("astro_id").to_pylist(), h.column("status").to_pylist()))
 
 
@@ -348,9 +353,9 @@ def test_history_over_three_runs(tmp_path):
     assert _statuses(cfg) == {1: "unchanged", 2: "dropped", 3: "new", 4: "observed"}
     assert list(r3.targets["astro_id"]) == [1, 3]
     assert list(r3.dropped["reason"]) == ["observed"]
-    assert fu.score_history(cfg, 2) == [(1, 2.0, "new"), (2, 2.5, "score_changed")]
-    assert [s for _, _, s in fu.score_history(cfg, 3)] == ["new", "new"]
-    h = fu.read_history(cfg).to_pylist()
+    assert score_history(cfg, 2) == [(1, 2.0, "new"), (2, 2.5, "score_changed")]
+    assert [s for _, _, s in score_history(cfg, 3)] == ["new", "new"]
+    h = read_history(cfg).to_pylist()
     row1 = next(r for r in h if r["astro_id"] == 1)
     assert (row1["first_run"], row1["last_run"], row1["n_runs"]) == (1, 3, 3)
     assert row1["first_seen_utc"] <= row1["last_seen_utc"]
@@ -411,13 +416,64 @@ def test_history_commits_only_when_files_are_written(tmp_path, monkeypatch):
             raise OSError("disk full")
         tmp.write_text("partial")
 
-    monkeypatch.setattr(fu, "_write", broken)
+    monkeypatch.setattr(lists, "_write", broken)
     with pytest.raises(OSError):
         fu.make_targets(cfg, log=lambda *a: None)
     folder = cfg.output_dir / "targets"
     assert not folder.exists() or not any(folder.iterdir())
     with sqlite3.connect(cfg.output_dir / "history.sqlite") as conn:
         assert conn.execute("SELECT COUNT(*) FROM runs").fetchone()[0] == 0
+
+
+def test_observability_is_computed_before_the_history_is_locked(tmp_path, monkeypatch):
+    cfg = build(_data(tmp_path), tmp_path)
+    _candidates(cfg, [1, 2], [195.0, 196.0], [-30.0, -30.0], [2.0, 1.0], run_hash="run-1")
+    fu.make_targets(cfg, log=lambda *a: None)
+    _candidates(cfg, [1, 2], [195.0, 196.0], [-30.0, -30.0], [2.0, 1.5], run_hash="run-2")
+    real, calls = lists.observability, []
+
+    def probe(*args, **kwargs):
+        # another writer (`selector outcome`) must get the write lock at once while this runs
+        conn = sqlite3.connect(cfg.output_dir / "history.sqlite", timeout=0, isolation_level=None)
+        try:
+            conn.execute("BEGIN IMMEDIATE")
+            conn.execute("ROLLBACK")
+        finally:
+            conn.close()
+        calls.append(len(args[0]))
+        return real(*args, **kwargs)
+
+    monkeypatch.setattr(lists, "observability", probe)
+    result = fu.make_targets(cfg, log=lambda *a: None)
+    assert calls == [2] and result.history_run == 2
+
+
+def test_outcome_recorded_while_the_list_is_computed(tmp_path, monkeypatch):
+    # the outcome arrives after observability was computed for every candidate: the candidate is
+    # still dropped as observed, and the list is the one an undisturbed run makes
+    def run(folder, raced):
+        folder.mkdir()
+        cfg = build(_data(folder), folder)
+        _candidates(cfg, [1, 2, 3], [195.0, 196.0, 197.0], np.full(3, -30.0), [3.0, 2.0, 1.0], run_hash="run-1")
+        fu.make_targets(cfg, log=lambda *a: None)
+        (folder / "spectra.csv").write_text("astro_id,spec_class\n2,star\n")
+        fu.record_outcomes(cfg, folder / "spectra.csv", log=lambda *a: None)
+        _candidates(cfg, [1, 2, 3], [195.0, 196.0, 197.0], np.full(3, -30.0), [3.0, 2.0, 1.5], run_hash="run-2")
+        with monkeypatch.context() as m:
+            if raced:
+                m.setattr(lists, "observed_ids", lambda cfg: set())
+            return fu.make_targets(cfg, log=lambda *a: None)
+
+    quiet, raced = run(tmp_path / "quiet", False), run(tmp_path / "raced", True)
+    assert list(raced.targets["astro_id"]) == [1, 3]
+    assert list(raced.dropped["reason"]) == ["observed"]
+    assert raced.summary == quiet.summary and raced.counts == quiet.counts
+    for kind in ("ecsv", "dropped", "nights"):
+        want = Table.read(quiet.outputs[kind], format="ascii.ecsv")
+        got = Table.read(raced.outputs[kind], format="ascii.ecsv")
+        assert got.colnames == want.colnames
+        for name in want.colnames:
+            assert got[name].tolist() == want[name].tolist() or np.array_equal(got[name], want[name], equal_nan=True)
 
 
 # --- configuration and command line -------------------------------------------------------------

@@ -105,10 +105,8 @@ def radec_to_xyz(ra_deg, dec_deg, *, workers: int = -1) -> np.ndarray:
 
 def xyz_to_radec(xyz) -> tuple[np.ndarray, np.ndarray]:
     """ICRS RA in [0, 360) and Dec (deg) of unit vectors (rows of an (n, 3) array; any length)."""
-    xyz = np.asarray(xyz, dtype=np.float64)
-    ra = np.degrees(np.arctan2(xyz[..., 1], xyz[..., 0])) % 360.0
-    dec = np.degrees(np.arctan2(xyz[..., 2], np.hypot(xyz[..., 0], xyz[..., 1])))
-    return ra, dec
+    lon, lat = xyz_to_radians(xyz)
+    return np.degrees(lon) % 360.0, np.degrees(lat)
 
 
 @lru_cache(maxsize=1)
@@ -128,3 +126,33 @@ def galactic(ra_deg, dec_deg):
     l_deg = np.degrees(np.arctan2(xyz[:, 1], xyz[:, 0])) % 360.0
     b_deg = np.degrees(np.arcsin(np.clip(xyz[:, 2], -1.0, 1.0)))
     return l_deg, b_deg
+
+
+def radians_to_xyz(lon_rad, lat_rad) -> np.ndarray:
+    """Unit vectors of positions given in radians, such as astropy's ``.rad`` values.
+
+    For angles that arrive in radians: going through degrees would round them twice. No checks
+    and no wrapping; any shape, the vector along a new last axis.
+
+    Parameters
+    ----------
+    lon_rad, lat_rad : array_like of float
+        Longitude (right ascension) and latitude (declination), radians.
+
+    Returns
+    -------
+    numpy.ndarray, shape (..., 3)
+        ``(cos lat cos lon, cos lat sin lon, sin lat)``.
+    """
+    cos_lat = np.cos(lat_rad)
+    return np.stack([cos_lat * np.cos(lon_rad), cos_lat * np.sin(lon_rad), np.sin(lat_rad)], axis=-1)
+
+
+def xyz_to_radians(xyz) -> tuple[np.ndarray, np.ndarray]:
+    """Longitude in (−π, π] and latitude (radians) of vectors along the last axis (any length).
+
+    The inverse of :func:`radians_to_xyz`, without wrapping the longitude (so no rounding is added
+    for arithmetic that goes on in radians); :func:`xyz_to_radec` gives ICRS degrees.
+    """
+    xyz = np.asarray(xyz, dtype=np.float64)
+    return np.arctan2(xyz[..., 1], xyz[..., 0]), np.arctan2(xyz[..., 2], np.hypot(xyz[..., 0], xyz[..., 1]))

@@ -1306,7 +1306,7 @@ def run_demo(out_dir, seed: int = 1, scale: float = 1.0, workers=None, log=print
     then make the follow-up list for the demo site and the HTML report."""
     from selector.jobs.run.batch import run
     from selector.settings.config import load_config
-    from selector.jobs.followup import make_targets
+    from selector.jobs.targets import make_targets
     from selector.jobs.ingest import ingest
     from selector.present.report import write_report
 

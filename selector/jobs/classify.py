@@ -51,7 +51,7 @@ import pyarrow.compute as pc
 
 from selector import __version__
 from selector.core import schema, tiles
-from selector.jobs import followup
+from selector.jobs import targets as followup
 from selector.settings.config import CLASSIFIER_CLASSES, MATCH_SECTIONS, Config, config_hash, plain
 from selector.errors import InputError, SelectorError
 from selector.store.io import atomic_path, iter_chunks, read_parquet, write_json, write_parquet

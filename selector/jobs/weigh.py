@@ -70,7 +70,7 @@ from astropy.table import Table
 from selector import __version__
 from selector.core import blackhole, luminosity
 from selector.errors import InputError, SelectorError
-from selector.jobs.followup import OUTCOME_COLUMNS
+from selector.jobs.targets.outcomes import OUTCOME_COLUMNS
 from selector.settings.config import Config, config_hash
 from selector.store.io import atomic_path, fingerprint, read_table, write_parquet, write_votable
 from selector.store.layout import weigh_outputs

@@ -203,3 +203,26 @@ def weigh_outputs(cfg, spectra_file: Path | str) -> dict[str, Path]:
         name = name[:-3]
     stem = Path(name).stem
     return {kind: weigh_dir(cfg) / pattern.format(stem=stem) for kind, pattern in WEIGH_FILES.items()}
+
+# --- the follow-up lists (below targets_dir) -------------------------------------------------------
+
+#: Ending of the target list in each of its formats.
+TARGET_LIST_ENDINGS = {"ecsv": "ecsv", "csv": "csv", "votable": "vot", "fits": "fits"}
+#: The other files of ``selector targets``, by kind.
+TARGETS_FILES = {"dropped": "dropped.ecsv", "nights": "nights.ecsv", "provenance": "provenance.json",
+                 "known_rejects": "known_rejects.ecsv"}
+
+
+def target_list(cfg, fmt: str, *, new_only: bool = False) -> Path:
+    """The target list in one format: ``targets.<ending>``, or ``targets_new.<ending>`` for new candidates only."""
+    return targets_dir(cfg) / f"{'targets_new' if new_only else 'targets'}.{TARGET_LIST_ENDINGS[fmt]}"
+
+
+def targets_summary(cfg, *, new_only: bool = False) -> Path:
+    """The plain-text summary beside the target list."""
+    return targets_dir(cfg) / ("summary_new.txt" if new_only else "summary.txt")
+
+
+def targets_file(cfg, kind: str) -> Path:
+    """One of :data:`TARGETS_FILES` of ``selector targets``."""
+    return targets_dir(cfg) / TARGETS_FILES[kind]

@@ -13,13 +13,13 @@ in result files.
 
 from __future__ import annotations
 
-import datetime
 import json
 import os
 import sqlite3
 from pathlib import Path
 
 from selector.errors import SelectorError
+from selector.store.db import connect, transaction, utc_now
 
 #: Bumped when the tables change shape; an older manifest is rebuilt (its tiles are then redone).
 SCHEMA_VERSION = 1
@@ -95,11 +95,6 @@ CREATE TABLE IF NOT EXISTS files (
 _TILE_JSON = ("inputs", "outputs", "cutflow")
 
 
-def utc_now() -> str:
-    """The current UTC time as ISO 8601 with seconds (for the manifest and logs only)."""
-    return datetime.datetime.now(datetime.timezone.utc).replace(microsecond=0).isoformat()
-
-
 class Manifest:
     """Read and write the run manifest at ``path``.
 
@@ -115,18 +110,14 @@ class Manifest:
         self.path = Path(path)
         try:
             if readonly:
-                # a plain connection (reading a WAL database needs its shared-memory file), no writes
                 if not self.path.exists():
                     raise SelectorError(f"{self.path}: no run manifest here")
-                self.db = sqlite3.connect(self.path, timeout=30.0)
+                self.db = connect(self.path, readonly=True)
                 self.db.execute("SELECT COUNT(*) FROM runs").fetchone()
             else:
-                self.path.parent.mkdir(parents=True, exist_ok=True)
-                self.db = sqlite3.connect(self.path, timeout=30.0)
                 # WAL: a reader (`selector status`) never blocks the run; FULL: a recorded tile
-                # survives power loss, not only a killed process
-                self.db.execute("PRAGMA journal_mode=WAL")
-                self.db.execute("PRAGMA synchronous=FULL")
+                # survives power loss, not only a killed process (both set by `connect`)
+                self.db = connect(self.path, schema=_SCHEMA)
                 self._create()
         except sqlite3.DatabaseError as exc:
             raise SelectorError(f"{self.path}: cannot open the run manifest ({exc}); move it away to start afresh "
@@ -134,8 +125,7 @@ class Manifest:
         self.db.row_factory = sqlite3.Row
 
     def _create(self) -> None:
-        with self.db:
-            self.db.executescript(_SCHEMA)
+        with transaction(self.db):
             row = self.db.execute("SELECT value FROM meta WHERE key = 'schema_version'").fetchone()
             if row is None:
                 self.db.execute("INSERT INTO meta VALUES ('schema_version', ?)", (str(SCHEMA_VERSION),))
@@ -163,13 +153,13 @@ class Manifest:
         fields = {"started_utc": utc_now(), "status": "running", **fields}
         names = ", ".join(fields)
         marks = ", ".join("?" for _ in fields)
-        with self.db:
+        with transaction(self.db):
             cur = self.db.execute(f"INSERT INTO runs ({names}) VALUES ({marks})", tuple(fields.values()))
         return int(cur.lastrowid)
 
     def update_run(self, run_id: int, **fields) -> None:
         sets = ", ".join(f"{k} = ?" for k in fields)
-        with self.db:
+        with transaction(self.db):
             self.db.execute(f"UPDATE runs SET {sets} WHERE run_id = ?", (*fields.values(), run_id))
 
     def end_run(self, run_id: int, status: str, **fields) -> None:
@@ -179,7 +169,7 @@ class Manifest:
         """Runs still marked ``running`` while we hold the lock were killed; say so. Returns their ids."""
         ids = [r[0] for r in self.db.execute("SELECT run_id FROM runs WHERE status = 'running'")]
         if ids:
-            with self.db:
+            with transaction(self.db):
                 self.db.execute("UPDATE runs SET status = 'died', message = 'stopped without finishing "
                                 "(killed or power lost); resumed by a later run' WHERE status = 'running'")
         return ids
@@ -211,7 +201,7 @@ class Manifest:
         rewriting a tile's files never leaves a record claiming outputs it did not finish.
         """
         now = utc_now()
-        with self.db:
+        with transaction(self.db):
             self.db.executemany("INSERT INTO tiles (tile, status, updated_utc) VALUES (?, 'pending', ?) "
                                 "ON CONFLICT (tile) DO UPDATE SET status = 'pending', updated_utc = excluded.updated_utc",
                                 [(int(t), now) for t in pending])
@@ -225,7 +215,7 @@ class Manifest:
         fields.update(run_id=run_id, updated_utc=utc_now())
         names = ", ".join(fields)
         sets = ", ".join(f"{k} = excluded.{k}" for k in fields)
-        with self.db:
+        with transaction(self.db):
             self.db.execute(f"INSERT INTO tiles (tile, {names}) VALUES (?, {', '.join('?' for _ in fields)}) "
                             f"ON CONFLICT (tile) DO UPDATE SET {sets}", (int(tile), *fields.values()))
             self.db.execute("INSERT INTO tile_events VALUES (?, ?, ?, ?, ?, ?)",
@@ -259,7 +249,7 @@ class Manifest:
         return {r[0]: (r[1], r[2], r[3]) for r in self.db.execute("SELECT path, size, mtime_ns, sha256 FROM files")}
 
     def store_files(self, rows: list[tuple[str, int, int, str]], remove: list[str] = ()) -> None:
-        with self.db:
+        with transaction(self.db):
             self.db.executemany("INSERT OR REPLACE INTO files VALUES (?, ?, ?, ?)", rows)
             self.db.executemany("DELETE FROM files WHERE path = ?", [(p,) for p in remove])
 
@@ -269,7 +259,7 @@ class Manifest:
         return json.loads(row[0]) if row else None
 
     def set(self, key: str, value) -> None:
-        with self.db:
+        with transaction(self.db):
             self.db.execute("INSERT OR REPLACE INTO meta VALUES (?, ?)", (key, json.dumps(value, sort_keys=True)))
 
 

@@ -18,7 +18,7 @@ from astropy.coordinates import AltAz, SkyCoord, get_body, get_sun
 from astropy.coordinates.errors import NonRotationTransformationWarning
 from astropy.time import Time
 
-from selector.jobs import followup as fu
+from selector.core import observability as fu
 from selector.settings.config import SiteConfig
 
 SITE = SiteConfig(latitude_deg=-29.0, longitude_deg=-70.0, height_m=2400.0, name="test site")
@@ -26,9 +26,9 @@ MJD_2027_04_01 = 61496.0  # 2027-04-01T00:00 UTC (astropy Time("2027-04-01").mjd
 
 
 def _astropy_altaz(coord, mjd, site=SITE):
-    with fu._offline_earth_rotation():
+    with fu.offline_earth_rotation():
         t = Time(mjd, format="mjd", scale="utc")
-        frame = AltAz(obstime=t, location=fu._location(site), pressure=0 * u.hPa)
+        frame = AltAz(obstime=t, location=fu.site_location(site), pressure=0 * u.hPa)
         return coord(t).transform_to(frame).alt.deg
 
 
@@ -91,9 +91,9 @@ def test_observable_steps_match_astropy_on_the_same_grid():
     assert np.all(obs.steps[:3] < no_moon.steps[:3])  # the Moon limit bites for the first three
     mjd = grid.step_mjd[grid.dark]
     alt = _astropy_altaz(lambda t: SkyCoord(ra[:, None] * u.deg, dec[:, None] * u.deg), mjd[None, :])
-    with fu._offline_earth_rotation():
+    with fu.offline_earth_rotation():
         t = Time(mjd, format="mjd", scale="utc")
-        moon = get_body("moon", t, location=fu._location(SITE))
+        moon = get_body("moon", t, location=fu.site_location(SITE))
         # the target goes into the Moon's (topocentric GCRS) frame: separation() the other way round
         # would move the Moon to the barycentre
         with warnings.catch_warnings():
