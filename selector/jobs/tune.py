@@ -38,6 +38,7 @@ import pyarrow.compute as pc
 import pyarrow.parquet as pq
 
 from selector.core import selection, schema, tiles
+from selector.core.photometry import CRITERIA
 from selector.jobs.run import tile as tile_job
 from selector.settings.validate import suggest
 from selector.jobs.classify import load_scorer
@@ -86,7 +87,7 @@ __all__ = [
 _BASE_COLUMNS = ("parallax_mas", "parallax_error_mas", "pmra_mas_yr", "pmdec_mas_yr",
                  "pmra_error_mas_yr", "pmdec_error_mas_yr", "pmra_pmdec_corr")
 #: Extra columns the plots read.
-PLOT_COLUMNS = ("astro_id", "ra_deg", "dec_deg", "ir_3p4_vegamag", "ir_4p6_vegamag", "ir_12_vegamag")
+PLOT_COLUMNS = ("astro_id", "ra_deg", "dec_deg", *(schema.infrared_mag_column(b) for b in ("3.4", "4.6", "12")))
 
 #: Rows evaluated at a time (see :func:`evaluate`).
 _BLOCK_ROWS = 1 << 17
@@ -268,19 +269,17 @@ class FeatureCache:
 
 
 def _needed_bands(cfg: Config) -> list[str]:
-    """Infrared bands (config labels) the selection reads: the criteria's, the cuts', the ranking's.
+    """Infrared bands the selection reads: the criteria's, the cuts', the ranking's.
 
     A band left out reads as missing, which changes nothing for criteria that do not use it.
     """
-    from selector.core.photometry import CRITERION_BANDS
-
-    labels = {b for name in cfg.colours.criteria for b in CRITERION_BANDS.get(name, ())}
-    wanted = {cfg.ranking.brightness_band}
+    wanted = {b for name in cfg.colours.criteria for b in CRITERIA[name].bands}
+    wanted.add(cfg.ranking.brightness_band)
     for cut in cfg.colours.linear_cuts:
         wanted.update(q for q in (*cut.x, *cut.y) if q in schema.INFRARED_BANDS)
     if cfg.colours.optical_infrared is not None:
         wanted.add(cfg.colours.optical_infrared.infrared_band)
-    return [b for b in cfg.infrared_bands() if b in wanted or schema.INFRARED_BANDS[b] in labels]
+    return [b for b in cfg.infrared_bands() if b in wanted]
 
 
 def needed_columns(cfg: Config, plots: bool = False, classifier: bool = True,
