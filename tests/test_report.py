@@ -20,6 +20,7 @@ from selector.core import photometry as ph
 from selector.present import plots, report
 from selector.cli import main
 from selector.settings.config import load_config
+from selector.store.cache import load_cache
 
 PNG_MAGIC = b"\x89PNG\r\n\x1a\n"
 
@@ -36,7 +37,7 @@ def demo_run(tmp_path_factory):
 
 @pytest.fixture(scope="module")
 def cache(demo_run):
-    return tune.load_cache(demo_run, plots=True)
+    return load_cache(demo_run, tune.needed_columns(demo_run, plots=True))
 
 
 def _data(cache, cfg, settings=()):

@@ -24,6 +24,8 @@ from __future__ import annotations
 from dataclasses import dataclass
 from pathlib import Path
 
+from selector.errors import InputError
+
 #: Per-tile files that hold the cross-match (they depend only on the match sections of the config).
 FEATURE_FILES = ("features.parquet", "infrared.parquet")
 #: Per-tile files that hold the selection (they also depend on the selection sections).
@@ -203,3 +205,18 @@ def weigh_outputs(cfg, spectra_file: Path | str) -> dict[str, Path]:
         name = name[:-3]
     stem = Path(name).stem
     return {kind: weigh_dir(cfg) / pattern.format(stem=stem) for kind, pattern in WEIGH_FILES.items()}
+
+
+def layout_of_run(run_dir: Path | str) -> Layout:
+    """The layout of the output folder that holds the run folder ``run_dir``, so a run can be read
+    from its folder alone.
+
+    A run folder is always ``<output_dir>/run`` (:attr:`Layout.run_dir`); a folder of another name is
+    refused rather than quietly read beside a sibling ``run``.
+    """
+    run_dir = Path(run_dir).resolve()
+    layout = Layout(run_dir.parent)
+    if layout.run_dir != run_dir:
+        raise InputError(f"{run_dir}: not a run folder (`selector run` writes its results, "
+                         f"{MERGED_FILES['provenance']} among them, to <output_dir>/{layout.run_dir.name})")
+    return layout
