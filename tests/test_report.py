@@ -132,8 +132,8 @@ def test_a_new_criterion_is_one_registry_entry(demo_run, cache, monkeypatch):
             return ()
         return (ph.Curve(np.array(xlim), [0.5, 0.5], f"{name}: > 0.5"),)
 
-    extra = ph.Criterion("invented_test", ("3.4", "4.6"), select, boundary, ph.LineStyle("#123456", ":"),
-                         "invented for this test")
+    extra = ph.Criterion(name="invented_test", bands=("3.4", "4.6"), select=select, boundary=boundary,
+                         style=ph.LineStyle("#123456", ":"), reference="invented for this test")
     monkeypatch.setitem(ph.CRITERIA, extra.name, extra)
     data = _data(cache, demo_run, ['colours.criteria=["invented_test", "mateos2012_wedge"]'])
     assert data.candidate.sum() > 0

@@ -630,8 +630,8 @@ _COLOUR = TWO_BANDS
 _MAGNITUDE = ("4.6",)
 
 
-def _colour_cut_boundary(colour_min: float, relation: str, mag_max: float | None,
-                         name: str, plane: Plane, xlim, ylim) -> tuple[Curve, ...]:
+def _colour_cut_boundary(name: str, plane: Plane, xlim, ylim, *, colour_min: float, relation: str,
+                         mag_max: float | None) -> tuple[Curve, ...]:
     """A fixed [3.4]−[4.6] threshold, with an optional bright-side [4.6] limit.
 
     Against [4.6] the limit closes the region on the right; against any other x quantity only the
@@ -650,7 +650,7 @@ def _colour_cut_boundary(colour_min: float, relation: str, mag_max: float | None
     return (Curve(np.array(xlim), [colour_min] * 2, label),)
 
 
-def _assef_boundary(k: AssefCoefficients, name: str, plane: Plane, xlim, ylim) -> tuple[Curve, ...]:
+def _assef_boundary(name: str, plane: Plane, xlim, ylim, *, k: AssefCoefficients) -> tuple[Curve, ...]:
     """The Assef et al. boundary: its curve against [4.6]; its bright-side threshold against anything else."""
     if tuple(plane.y) != _COLOUR:
         return ()
@@ -693,7 +693,7 @@ def _wedge_boundary(name: str, plane: Plane, xlim, ylim) -> tuple[Curve, ...]:
                   f"{name} (three-band wedge)"),)
 
 
-@dataclass(frozen=True)
+@dataclass(frozen=True, kw_only=True)
 class Criterion:
     """A published colour criterion, self-described: everything the tool needs to know about it.
 
@@ -731,20 +731,25 @@ class Criterion:
 _A18 = "Assef, R. J., et al. 2018, ApJS 234, 23"
 
 CRITERIA: dict[str, Criterion] = {c.name: c for c in (
-    Criterion("stern2012", TWO_BANDS, stern2012,
-              partial(_colour_cut_boundary, STERN2012_COLOUR_MIN_VEGA, "≥", STERN2012_MAG_4P6_MAX_VEGA),
-              LineStyle("#1e8449", "-"), "Stern, D., et al. 2012, ApJ 753, 30"),
-    Criterion("assef2013_r90", TWO_BANDS, assef2013_r90, partial(_assef_boundary, ASSEF2013_R90),
-              LineStyle("#7d3c98", "--"), "Assef, R. J., et al. 2013, ApJ 772, 26"),
-    Criterion("assef2018_r90", TWO_BANDS, assef2018_r90, partial(_assef_boundary, ASSEF2018_R90),
-              LineStyle("#b9770e", "--"), _A18),
-    Criterion("assef2018_r75", TWO_BANDS, assef2018_r75, partial(_assef_boundary, ASSEF2018_R75),
-              LineStyle("#d35400", "-."), _A18),
-    Criterion("assef2018_c75", TWO_BANDS, assef2018_c75,
-              partial(_colour_cut_boundary, ASSEF2018_C75_COLOUR_MIN_VEGA, ">", None),
-              LineStyle("#117a65", ":"), _A18),
-    Criterion("mateos2012_wedge", WEDGE_BANDS, mateos2012_wedge, _wedge_boundary,
-              LineStyle("#2e4053", "-"), "Mateos, S., et al. 2012, MNRAS 426, 3271"),
+    Criterion(name="stern2012", bands=TWO_BANDS, select=stern2012,
+              boundary=partial(_colour_cut_boundary, colour_min=STERN2012_COLOUR_MIN_VEGA, relation="≥",
+                               mag_max=STERN2012_MAG_4P6_MAX_VEGA),
+              style=LineStyle("#1e8449", "-"), reference="Stern, D., et al. 2012, ApJ 753, 30"),
+    Criterion(name="assef2013_r90", bands=TWO_BANDS, select=assef2013_r90,
+              boundary=partial(_assef_boundary, k=ASSEF2013_R90),
+              style=LineStyle("#7d3c98", "--"), reference="Assef, R. J., et al. 2013, ApJ 772, 26"),
+    Criterion(name="assef2018_r90", bands=TWO_BANDS, select=assef2018_r90,
+              boundary=partial(_assef_boundary, k=ASSEF2018_R90),
+              style=LineStyle("#b9770e", "--"), reference=_A18),
+    Criterion(name="assef2018_r75", bands=TWO_BANDS, select=assef2018_r75,
+              boundary=partial(_assef_boundary, k=ASSEF2018_R75),
+              style=LineStyle("#d35400", "-."), reference=_A18),
+    Criterion(name="assef2018_c75", bands=TWO_BANDS, select=assef2018_c75,
+              boundary=partial(_colour_cut_boundary, colour_min=ASSEF2018_C75_COLOUR_MIN_VEGA, relation=">",
+                               mag_max=None),
+              style=LineStyle("#117a65", ":"), reference=_A18),
+    Criterion(name="mateos2012_wedge", bands=WEDGE_BANDS, select=mateos2012_wedge, boundary=_wedge_boundary,
+              style=LineStyle("#2e4053", "-"), reference="Mateos, S., et al. 2012, MNRAS 426, 3271"),
 )}
 """THE registry of published colour criteria, by the name used in the configuration. Adding a
 criterion is one entry here (see DEVELOPERS.md, "Extending")."""
