@@ -51,8 +51,8 @@ def two_runs(tmp_path_factory):
     ir["LON"] = _col(i, "ra_ir") * u.deg
     ir["LAT"] = _col(i, "dec_ir") * u.deg
     ir["PERR"] = (_col(i, "pos_unc") * u.arcsec).to(u.mas)
-    for src, band in (("m34", "3p4"), ("m46", "4p6"), ("m120", "12"), ("m220", "22")):
-        ir[f"AB_{band}"] = _col(i, src) + VEGA_TO_AB_MAG[band]
+    for src, band, label in (("m34", "3p4", "3.4"), ("m46", "4p6", "4.6"), ("m120", "12", "12"), ("m220", "22", "22")):
+        ir[f"AB_{band}"] = _col(i, src) + VEGA_TO_AB_MAG[label]
         ir[f"E_{band}"] = _col(i, f"{src}_unc")
     ir.write(tmp / "ir.xml", format="votable")
     dt = {"project": {"output_dir": "general"}, "tiling": {"order": 4},

@@ -20,6 +20,7 @@ from selector.core import photometry as ph
 from selector.present import plots, report
 from selector.cli import main
 from selector.settings.config import load_config
+from selector.store.cache import load_cache
 
 PNG_MAGIC = b"\x89PNG\r\n\x1a\n"
 
@@ -36,7 +37,7 @@ def demo_run(tmp_path_factory):
 
 @pytest.fixture(scope="module")
 def cache(demo_run):
-    return tune.load_cache(demo_run, plots=True)
+    return load_cache(demo_run, tune.needed_columns(demo_run, plots=True))
 
 
 def _data(cache, cfg, settings=()):
@@ -106,14 +107,42 @@ def test_colour_magnitude_boundaries_come_from_photometry(demo_run, cache):
 
 def test_wedge_in_vega_colours_lies_on_the_criterion_boundary():
     """Mapped back to magnitudes, every corner of the drawn wedge is on the criterion's edge."""
-    x, y = plots._wedge_vega((-0.5, 2.5))  # [4.6]−[12], [3.4]−[4.6]
+    wedge = ph.CRITERIA["mateos2012_wedge"]
+    (curve,) = wedge.curves(plots.COLOUR_COLOUR, (-0.5, 2.5), (-0.5, 2.5))
+    x, y = curve.x, curve.y  # [4.6]−[12], [3.4]−[4.6]
     m2 = np.full(len(x), 14.0)
-    res = ph.mateos2012_wedge({"3p4": m2 + y, "4p6": m2, "12": m2 - x})
+    res = ph.mateos2012_wedge({"3.4": m2 + y, "4.6": m2, "12": m2 - x})
     assert np.allclose(res.excess_mag, 0.0, atol=1e-9)
     # a point between the two long edges, above the short one, is selected
-    mid = ph.mateos2012_wedge({"3p4": np.array([14.0 + y[1:3].mean() + 0.3]), "4p6": np.array([14.0]),
+    mid = ph.mateos2012_wedge({"3.4": np.array([14.0 + y[1:3].mean() + 0.3]), "4.6": np.array([14.0]),
                                "12": np.array([14.0 - x[1:3].mean()])})
     assert mid.passed[0]
+
+
+def test_a_new_criterion_is_one_registry_entry(demo_run, cache, monkeypatch):
+    """A criterion added to the registry alone is accepted by the config, selected, and drawn in both
+    diagrams from its own object (the plots hold no per-criterion code)."""
+
+    def select(mags):
+        c = mags["3.4"] - mags["4.6"]
+        return ph.CriterionResult(c > 0.5, c - 0.5)
+
+    def boundary(name, plane, xlim, ylim):
+        if tuple(plane.y) != ("3.4", "4.6"):
+            return ()
+        return (ph.Curve(np.array(xlim), [0.5, 0.5], f"{name}: > 0.5"),)
+
+    extra = ph.Criterion(name="invented_test", bands=("3.4", "4.6"), select=select, boundary=boundary,
+                         style=ph.LineStyle("#123456", ":"), reference="invented for this test")
+    monkeypatch.setitem(ph.CRITERIA, extra.name, extra)
+    data = _data(cache, demo_run, ['colours.criteria=["invented_test", "mateos2012_wedge"]'])
+    assert data.candidate.sum() > 0
+    for draw in (plots.colour_colour, plots.colour_magnitude):
+        fig = draw(data)
+        line = next(ln for ln in fig.axes[0].lines if ln.get_label().startswith("invented_test"))
+        assert line.get_color() == "#123456" and list(line.get_ydata()) == [0.5, 0.5]
+    # the wedge has no line against a magnitude: the colour–magnitude title says so
+    assert "mateos2012_wedge" in plots.colour_magnitude(data).axes[0].get_title()
 
 
 def test_sky_map_shows_the_healpix_density(demo_run, cache):

@@ -11,6 +11,7 @@ from pathlib import Path
 import numpy as np
 import pyarrow as pa
 import pyarrow.csv as pacsv
+import pyarrow.parquet as pq
 import pytest
 
 from selector.jobs.run import batch, tile as tile_job
@@ -20,7 +21,9 @@ from selector.core import selection
 from selector.cli import main
 from selector.settings.config import from_dict, load_config, plain
 from selector.errors import ConfigError, SelectorError
+from selector.store.cache import load_cache
 from selector.store.io import read_parquet
+from selector.store.truth import load_truth
 
 ROOT = Path(__file__).resolve().parents[1]
 
@@ -146,7 +149,7 @@ def test_tile_rejects_are_counted_as_the_run_counts_them(demo_run, tmp_path):
     run_dir = tmp_path / "run"
     shutil.copytree(cfg.run_dir, run_dir)
     moved, _ = tune.run_config(run_dir)
-    cache0 = tune.load_cache(moved)
+    cache0 = load_cache(moved, tune.needed_columns(moved))
     i = int(np.argmax(np.diff(cache0.offsets)))  # the tile with most cached rows
     path = cache0.folders[i] / "features.parquet"
     features = read_parquet(path)
@@ -157,7 +160,7 @@ def test_tile_rejects_are_counted_as_the_run_counts_them(demo_run, tmp_path):
     from selector.store.io import write_parquet
 
     write_parquet(features, path)
-    cache = tune.load_cache(moved)
+    cache = load_cache(moved, tune.needed_columns(moved))
     assert cache.rejects_per_tile[i] == 2 and cache.rejects_per_tile.sum() == 2
     ev = tune.evaluate(cache, moved)
     res = tile_job.select_tile(moved, int(cache.tiles[i]), int(cache.rows_per_tile[i]), features)
@@ -186,7 +189,7 @@ def test_classifier_scores_are_applied_like_select_tile(demo_run):
         c = selection._col(table, "ir_3p4_vegamag") - selection._col(table, "ir_4p6_vegamag")
         return 1.0 / (1.0 + np.exp(-4.0 * (np.nan_to_num(c) - 0.7)))
 
-    cache = tune.load_cache(changed, columns=None)
+    cache = load_cache(changed, columns=None)
     ev = tune.evaluate(cache, changed, p_quasar=scorer(cache.table))
     assert ev.stage_names[-1] == "classifier"
     assert 0 < ev.cutflow[-1][1] < ev.cutflow[-2][1]
@@ -230,15 +233,15 @@ def test_truth_figures_agree_with_the_demo_evaluation(demo_run):
     assert out.truth is not None and out.truth.path == truth_path
     report = demo.evaluate_run(cfg, truth_path)  # the run as recorded is the "before"
     recovered = sum(report.by_population.get(p, 0) for p in ("quasar", "bright_quasar"))
-    assert out.truth_before.recovered == recovered
-    assert out.truth_before.n_quasars == report.quasars_total
+    assert out.truth_before.true_selected == recovered
+    assert out.truth_before.positives == report.quasars_total
     assert out.truth_before.purity == pytest.approx(report.purity)
-    assert out.truth_after.recovered != out.truth_before.recovered
+    assert out.truth_after.true_selected != out.truth_before.true_selected
 
 
 def test_label_file_with_a_label_column(demo_run, tmp_path):
     cfg, _, _ = demo_run
-    cache = tune.load_cache(cfg, ids=True)
+    cache = load_cache(cfg, tune.needed_columns(cfg, ids=True))
     ev = tune.evaluate(cache, cfg)
     ids = cache.table.column("astro_id").to_numpy()
     cand, other = ids[ev.passed], ids[~ev.passed]
@@ -247,19 +250,45 @@ def test_label_file_with_a_label_column(demo_run, tmp_path):
             + [(i, "Quasar") for i in other[:3]] + [(1, "quasar")])  # id 1 is in no catalogue
     path = tmp_path / "labels.csv"
     pacsv.write_csv(pa.table({"id": [str(i) for i, _ in rows], "label": [lab for _, lab in rows]}), path)
-    score = tune.score_truth(tune.load_truth(path, cache), ev.passed)
-    assert (score.n_quasars, score.recovered, score.labelled_candidates) == (10, 6, 8)
+    score = tune.score_truth(load_truth(path, cache), ev.passed)
+    assert (score.positives, score.true_selected, score.labelled_selected) == (10, 6, 8)
     assert score.completeness == pytest.approx(0.6)
     assert score.purity == pytest.approx(0.75)
 
 
 def test_truth_file_without_the_needed_columns(demo_run, tmp_path):
     cfg, _, _ = demo_run
-    cache = tune.load_cache(cfg, ids=True)
+    cache = load_cache(cfg, tune.needed_columns(cfg, ids=True))
     path = tmp_path / "labels.csv"
     pacsv.write_csv(pa.table({"id": ["1"], "kind": ["quasar"]}), path)
     with pytest.raises(SelectorError, match="needs a column 'population' or 'label'"):
-        tune.load_truth(path, cache)
+        load_truth(path, cache)
+
+
+def test_truth_id_column_is_configurable(demo_run, tmp_path):
+    cfg, _, _ = demo_run
+    cache = load_cache(cfg, tune.needed_columns(cfg, ids=True))
+    ids = cache.table.column("astro_id").to_pylist()[:5]
+    path = tmp_path / "labels.parquet"
+    pq.write_table(pa.table({"source": ids, "label": ["quasar"] * 4 + ["star"]}), path)
+    labels = load_truth(path, cache, id_column="source")
+    assert (labels.n_quasars, int(labels.quasar.sum()), int(labels.labelled.sum())) == (4, 4, 5)
+    with pytest.raises(SelectorError, match="no column 'id'"):
+        load_truth(path, cache)
+
+
+def test_cache_of_chosen_tiles_equals_those_tiles_of_the_whole(demo_run):
+    cfg, _, _ = demo_run
+    whole = load_cache(cfg, ["astro_id"])
+    assert len(whole.tiles) >= 2
+    pick = [int(whole.tiles[-1]), int(whole.tiles[0])]
+    part = load_cache(cfg, ["astro_id"], tiles=pick)
+    assert list(part.tiles) == sorted(pick)
+    for i, tile in enumerate(part.tiles):
+        j = int(np.flatnonzero(whole.tiles == tile)[0])
+        assert part.table.slice(part.tile_slice(i).start, part.tile_slice(i).stop - part.tile_slice(i).start).equals(
+            whole.table.slice(whole.tile_slice(j).start, whole.tile_slice(j).stop - whole.tile_slice(j).start))
+        assert part.rows_per_tile[i] == whole.rows_per_tile[j]
 
 
 # --- the command ----------------------------------------------------------------------------------

@@ -1,8 +1,10 @@
 """Magnitude systems, infrared colours and published infrared colour criteria.
 
-Bands are labelled by wavelength in micrometres: ``"3p4"``, ``"4p6"``, ``"12"`` and
-``"22"``.  Internal infrared magnitudes are in the Vega system; the AB system is used
-only at the edges (input conversion) and to turn magnitudes into flux-density ratios.
+Bands are labelled by wavelength in micrometres, as the configuration writes them: ``"3.4"``,
+``"4.6"``, ``"12"`` and ``"22"`` (the keys of :data:`selector.core.schema.INFRARED_BANDS`; the
+column-name form ``3p4`` is derived there, and only there, by :func:`~selector.core.schema.band_suffix`).
+Internal infrared magnitudes are in the Vega system; the AB system is used only at the edges (input
+conversion) and to turn magnitudes into flux-density ratios.
 
 Every function here is a pure, vectorised operation on float64 arrays.  A missing
 measurement is NaN; a criterion that needs a missing band evaluates to ``False`` for
@@ -30,9 +32,13 @@ from __future__ import annotations
 
 import difflib
 import math
+from dataclasses import dataclass
+from functools import partial
 from typing import Callable, Iterable, Mapping, NamedTuple
 
 import numpy as np
+
+from selector.core.schema import INFRARED_BANDS, band_suffix
 
 __all__ = [
     "BANDS",
@@ -48,7 +54,10 @@ __all__ = [
     "STERN2012_MAG_4P6_MAX_VEGA",
     "MATEOS2012_WEDGE",
     "CRITERIA",
-    "CRITERION_BANDS",
+    "Criterion",
+    "Curve",
+    "LineStyle",
+    "Plane",
     "LinearCut",
     "band_label",
     "vega_to_ab",
@@ -68,13 +77,13 @@ __all__ = [
     "apply_linear_cut",
 ]
 
-BANDS: tuple[str, ...] = ("3p4", "4p6", "12", "22")
-"""Infrared band labels (wavelength in µm, ``p`` for the decimal point)."""
+BANDS: tuple[str, ...] = tuple(INFRARED_BANDS)
+"""Infrared band labels (wavelength in µm): ``"3.4"``, ``"4.6"``, ``"12"``, ``"22"``."""
 
 MAG_SYSTEMS: tuple[str, ...] = ("vega", "ab")
 """Magnitude systems accepted by :func:`to_vega` (case-insensitive)."""
 
-VEGA_TO_AB_MAG: dict[str, float] = {"3p4": 2.699, "4p6": 3.339, "12": 5.174, "22": 6.620}
+VEGA_TO_AB_MAG: dict[str, float] = {"3.4": 2.699, "4.6": 3.339, "12": 5.174, "22": 6.620}
 """Offsets ``m_AB - m_Vega`` in mag per band (Jarrett et al. 2011, ApJ 735, 112 [J11];
 from memory, as given in the project design notes).
 
@@ -180,20 +189,27 @@ def _check_band(band: str) -> float:
 def band_label(name: str) -> str:
     """Canonical band label for a wavelength written as ``"3.4"``, ``"3p4"`` or ``"12.0"``.
 
-    Configuration files may spell wavelengths with a decimal point; the arrays passed
-    to the criteria are keyed by the canonical labels of :data:`BANDS`.
+    The arrays passed to the criteria are keyed by the labels of :data:`BANDS`; this accepts the
+    column-name form too (through :func:`~selector.core.schema.band_suffix`, the one translation)
+    and a wavelength written as a number.
 
     Raises
     ------
     ValueError
         If ``name`` does not spell one of the four wavelengths.
     """
-    text = str(name).strip().lower().replace(".", "p")
-    if text.endswith("p0"):
-        text = text[:-2]
-    if text not in VEGA_TO_AB_MAG:
-        raise ValueError(f"unknown infrared band {name!r}; valid bands: {', '.join(BANDS)} (or 3.4, 4.6, 12, 22)")
-    return text
+    text = str(name).strip().lower()
+    for band in BANDS:
+        if text in (band, band_suffix(band)) or _same_number(text, band):
+            return band
+    raise ValueError(f"unknown infrared band {name!r}; valid bands: {', '.join(BANDS)}")
+
+
+def _same_number(text: str, band: str) -> bool:
+    try:
+        return float(text) == float(band)
+    except ValueError:
+        return False
 
 
 def vega_to_ab(mag_vega, band: str) -> np.ndarray:
@@ -369,6 +385,12 @@ def _bands(mags: Mapping[str, np.ndarray], needed: Iterable[str]) -> list[np.nda
     return out
 
 
+#: Bands of the two-band criteria: the colour [3.4]−[4.6] and the magnitude [4.6].
+TWO_BANDS = ("3.4", "4.6")
+#: Bands of the three-band wedge.
+WEDGE_BANDS = ("3.4", "4.6", "12")
+
+
 def _result(passed, excess) -> CriterionResult:
     return CriterionResult(np.asarray(passed, dtype=bool), np.asarray(excess, dtype=np.float64))
 
@@ -409,7 +431,7 @@ def stern2012(mags: Mapping[str, np.ndarray]) -> CriterionResult:
     Parameters
     ----------
     mags : Mapping[str, array_like]
-        Band label → Vega magnitudes; needs ``"3p4"`` and ``"4p6"``.
+        Band label → Vega magnitudes; needs ``"3.4"`` and ``"4.6"``.
 
     Returns
     -------
@@ -418,7 +440,7 @@ def stern2012(mags: Mapping[str, np.ndarray]) -> CriterionResult:
         margin to the faint limit when that is smaller, so its sign agrees with
         ``passed``.
     """
-    m1, m2 = _bands(mags, ("3p4", "4p6"))
+    m1, m2 = _bands(mags, TWO_BANDS)
     c = m1 - m2
     passed = (c >= STERN2012_COLOUR_MIN_VEGA) & (m2 <= STERN2012_MAG_4P6_MAX_VEGA)
     excess = np.minimum(c - STERN2012_COLOUR_MIN_VEGA, STERN2012_MAG_4P6_MAX_VEGA - m2)
@@ -426,7 +448,7 @@ def stern2012(mags: Mapping[str, np.ndarray]) -> CriterionResult:
 
 
 def _assef(mags: Mapping[str, np.ndarray], k: AssefCoefficients) -> CriterionResult:
-    m1, m2 = _bands(mags, ("3p4", "4p6"))
+    m1, m2 = _bands(mags, TWO_BANDS)
     c = m1 - m2
     threshold = assef_boundary_colour_vega(m2, k.alpha, k.beta, k.gamma)
     with np.errstate(invalid="ignore"):
@@ -448,7 +470,7 @@ def assef2013_r90(mags: Mapping[str, np.ndarray]) -> CriterionResult:
     Parameters
     ----------
     mags : Mapping[str, array_like]
-        Band label → Vega magnitudes; needs ``"3p4"`` and ``"4p6"``.
+        Band label → Vega magnitudes; needs ``"3.4"`` and ``"4.6"``.
 
     Returns
     -------
@@ -468,7 +490,7 @@ def assef2018_r90(mags: Mapping[str, np.ndarray]) -> CriterionResult:
     Parameters
     ----------
     mags : Mapping[str, array_like]
-        Band label → Vega magnitudes; needs ``"3p4"`` and ``"4p6"``.
+        Band label → Vega magnitudes; needs ``"3.4"`` and ``"4.6"``.
 
     Returns
     -------
@@ -488,7 +510,7 @@ def assef2018_r75(mags: Mapping[str, np.ndarray]) -> CriterionResult:
     Parameters
     ----------
     mags : Mapping[str, array_like]
-        Band label → Vega magnitudes; needs ``"3p4"`` and ``"4p6"``.
+        Band label → Vega magnitudes; needs ``"3.4"`` and ``"4.6"``.
 
     Returns
     -------
@@ -507,14 +529,14 @@ def assef2018_c75(mags: Mapping[str, np.ndarray]) -> CriterionResult:
     Parameters
     ----------
     mags : Mapping[str, array_like]
-        Band label → Vega magnitudes; needs ``"3p4"`` and ``"4p6"``.
+        Band label → Vega magnitudes; needs ``"3.4"`` and ``"4.6"``.
 
     Returns
     -------
     CriterionResult
         ``excess_mag = m1 - m2 - 0.71`` (mag).
     """
-    m1, m2 = _bands(mags, ("3p4", "4p6"))
+    m1, m2 = _bands(mags, TWO_BANDS)
     c = m1 - m2
     return _result(c > ASSEF2018_C75_COLOUR_MIN_VEGA, c - ASSEF2018_C75_COLOUR_MIN_VEGA)
 
@@ -537,7 +559,7 @@ def mateos2012_wedge(mags: Mapping[str, np.ndarray]) -> CriterionResult:
     Parameters
     ----------
     mags : Mapping[str, array_like]
-        Band label → Vega magnitudes; needs ``"3p4"``, ``"4p6"`` and ``"12"``.
+        Band label → Vega magnitudes; needs ``"3.4"``, ``"4.6"`` and ``"12"``.
 
     Returns
     -------
@@ -548,9 +570,9 @@ def mateos2012_wedge(mags: Mapping[str, np.ndarray]) -> CriterionResult:
         the nearest edge; outside, it is minus the largest violation.  Multiply by 2.5
         for an equivalent in mag.
     """
-    m1, m2, m3 = _bands(mags, ("3p4", "4p6", "12"))
-    x = flux_ratio_log10(m2, m3, "4p6", "12")
-    y = flux_ratio_log10(m1, m2, "3p4", "4p6")
+    m1, m2, m3 = _bands(mags, WEDGE_BANDS)
+    x = flux_ratio_log10(m2, m3, "4.6", "12")
+    y = flux_ratio_log10(m1, m2, "3.4", "4.6")
     su, iu = MATEOS2012_WEDGE["upper"]
     sl, il = MATEOS2012_WEDGE["lower"]
     sf, if_ = MATEOS2012_WEDGE["left"]
@@ -562,25 +584,175 @@ def mateos2012_wedge(mags: Mapping[str, np.ndarray]) -> CriterionResult:
     return _result(passed, excess)
 
 
-CRITERIA: dict[str, Callable[[Mapping[str, np.ndarray]], CriterionResult]] = {
-    "stern2012": stern2012,
-    "assef2013_r90": assef2013_r90,
-    "assef2018_r90": assef2018_r90,
-    "assef2018_r75": assef2018_r75,
-    "assef2018_c75": assef2018_c75,
-    "mateos2012_wedge": mateos2012_wedge,
-}
-"""Published colour criteria by the name used in the configuration."""
+# ----------------------------------------------------------------------------------
+# criteria as objects: selection, boundary in the diagrams, style, reference
+# ----------------------------------------------------------------------------------
 
-CRITERION_BANDS: dict[str, tuple[str, ...]] = {
-    "stern2012": ("3p4", "4p6"),
-    "assef2013_r90": ("3p4", "4p6"),
-    "assef2018_r90": ("3p4", "4p6"),
-    "assef2018_r75": ("3p4", "4p6"),
-    "assef2018_c75": ("3p4", "4p6"),
-    "mateos2012_wedge": ("3p4", "4p6", "12"),
-}
-"""Bands each criterion needs, so callers can warn up front when a catalogue lacks one."""
+
+class Plane(NamedTuple):
+    """The axes of a diagram, each one band (a magnitude) or two (a colour), as in :class:`LinearCut`.
+
+    Attributes
+    ----------
+    y, x : tuple of str
+        Band labels: ``("3.4", "4.6")`` is the colour [3.4]−[4.6], ``("4.6",)`` the magnitude [4.6].
+    """
+
+    y: tuple[str, ...]
+    x: tuple[str, ...]
+
+
+class Curve(NamedTuple):
+    """One boundary line of a criterion in a :class:`Plane`, in Vega magnitudes and colours.
+
+    Attributes
+    ----------
+    x, y : sequence of float
+        The polyline's points.
+    label : str
+        Legend text.
+    """
+
+    x: object
+    y: object
+    label: str
+
+
+class LineStyle(NamedTuple):
+    """How a criterion's boundary is drawn (matplotlib colour and line style)."""
+
+    color: str
+    ls: str
+
+
+#: The colour every published criterion here cuts on, and the magnitude its limits use.
+_COLOUR = TWO_BANDS
+_MAGNITUDE = ("4.6",)
+
+
+def _colour_cut_boundary(name: str, plane: Plane, xlim, ylim, *, colour_min: float, relation: str,
+                         mag_max: float | None) -> tuple[Curve, ...]:
+    """A fixed [3.4]−[4.6] threshold, with an optional bright-side [4.6] limit.
+
+    Against [4.6] the limit closes the region on the right; against any other x quantity only the
+    colour threshold can be drawn, and the label names the limit.
+    """
+    if tuple(plane.y) != _COLOUR:
+        return ()
+    if tuple(plane.x) == _MAGNITUDE:
+        if mag_max is None:
+            return (Curve(xlim, [colour_min] * 2, f"{name}: {relation} {colour_min}"),)
+        return (Curve([xlim[0], mag_max, mag_max], [colour_min, colour_min, ylim[1]],
+                      f"{name}: {relation} {colour_min}, [4.6] ≤ {mag_max}"),)
+    label = f"{name}: [3.4]−[4.6] {relation} {colour_min}"
+    if mag_max is not None:
+        label += f" (and [4.6] ≤ {mag_max})"
+    return (Curve(np.array(xlim), [colour_min] * 2, label),)
+
+
+def _assef_boundary(name: str, plane: Plane, xlim, ylim, *, k: AssefCoefficients) -> tuple[Curve, ...]:
+    """The Assef et al. boundary: its curve against [4.6]; its bright-side threshold against anything else."""
+    if tuple(plane.y) != _COLOUR:
+        return ()
+    if tuple(plane.x) != _MAGNITUDE:
+        return (Curve(np.array(xlim), [k.alpha] * 2,
+                      f"{name}: > {k.alpha} for [4.6] ≤ {k.gamma} (rises fainter; see colour–magnitude)"),)
+    # 400 points keep the exponential smooth at any plotted magnitude range
+    grid = np.linspace(xlim[0], xlim[1], 400)
+    g = grid[grid < k.mag_4p6_max_vega]
+    curve = assef_boundary_colour_vega(g, k.alpha, k.beta, k.gamma)
+    label = f"{name}: α={k.alpha}, β={k.beta}, γ={k.gamma}"
+    if math.isfinite(k.mag_4p6_max_vega):
+        g = np.append(g, [k.mag_4p6_max_vega, k.mag_4p6_max_vega])
+        curve = np.append(curve, [assef_boundary_colour_vega(k.mag_4p6_max_vega, k.alpha, k.beta, k.gamma),
+                                  ylim[1]])
+        label += f", [4.6] < {k.mag_4p6_max_vega}"
+    return (Curve(g, curve, label),)
+
+
+def _wedge_boundary(name: str, plane: Plane, xlim, ylim) -> tuple[Curve, ...]:
+    """The Mateos et al. 2012 wedge as a polyline in ([4.6]−[12], [3.4]−[4.6]) Vega colours.
+
+    With offsets d = m_AB − m_Vega, ``x_f = log10(f12/f4.6) = 0.4([4.6]−[12] + d4.6 − d12)`` and
+    ``y_f = log10(f4.6/f3.4) = 0.4([3.4]−[4.6] + d3.4 − d4.6)``: the wedge's axes map straight onto
+    the plane's, where it stays a wedge of straight lines. In any other plane it is not a line.
+    """
+    if (tuple(plane.y), tuple(plane.x)) != (_COLOUR, ("4.6", "12")):
+        return ()
+    d = VEGA_TO_AB_MAG
+    su, iu = MATEOS2012_WEDGE["upper"]
+    sl, il = MATEOS2012_WEDGE["lower"]
+    sf, if_ = MATEOS2012_WEDGE["left"]
+    x_ul = (if_ - iu) / (su - sf)  # where the upper and left edges meet
+    x_ll = (if_ - il) / (sl - sf)
+    # open towards large x_f, i.e. to the right of the plot: run the two long edges to its edge
+    x_right = 0.4 * (xlim[1] + d["4.6"] - d["12"])
+    xf = np.array([x_right, x_ul, x_ll, x_right])
+    yf = np.array([su * x_right + iu, su * x_ul + iu, sl * x_ll + il, sl * x_right + il])
+    return (Curve(2.5 * xf - (d["4.6"] - d["12"]), 2.5 * yf - (d["3.4"] - d["4.6"]),
+                  f"{name} (three-band wedge)"),)
+
+
+@dataclass(frozen=True, kw_only=True)
+class Criterion:
+    """A published colour criterion, self-described: everything the tool needs to know about it.
+
+    Attributes
+    ----------
+    name : str
+        The name used in the configuration (``colours.criteria``).
+    bands : tuple of str
+        Band labels the selection reads (so callers read only those columns, or warn up front when
+        a catalogue lacks one).
+    select : callable
+        ``select(mags) -> CriterionResult``, with ``mags`` a mapping of band label to Vega
+        magnitudes.
+    boundary : callable
+        ``boundary(name, plane, xlim, ylim) -> tuple of Curve``: the boundary in a diagram's
+        :class:`Plane` over the plotted limits; empty when it cannot be drawn as lines there.
+    style : LineStyle
+        How the plots draw it.
+    reference : str
+        The published source (authors, year, journal, volume, page).
+    """
+
+    name: str
+    bands: tuple[str, ...]
+    select: Callable[[Mapping[str, np.ndarray]], CriterionResult]
+    boundary: Callable[..., tuple[Curve, ...]]
+    style: LineStyle
+    reference: str
+
+    def curves(self, plane: Plane, xlim, ylim) -> tuple[Curve, ...]:
+        """The boundary lines in ``plane`` over ``xlim`` × ``ylim`` (empty if not drawable there)."""
+        return self.boundary(self.name, plane, xlim, ylim)
+
+
+_A18 = "Assef, R. J., et al. 2018, ApJS 234, 23"
+
+CRITERIA: dict[str, Criterion] = {c.name: c for c in (
+    Criterion(name="stern2012", bands=TWO_BANDS, select=stern2012,
+              boundary=partial(_colour_cut_boundary, colour_min=STERN2012_COLOUR_MIN_VEGA, relation="≥",
+                               mag_max=STERN2012_MAG_4P6_MAX_VEGA),
+              style=LineStyle("#1e8449", "-"), reference="Stern, D., et al. 2012, ApJ 753, 30"),
+    Criterion(name="assef2013_r90", bands=TWO_BANDS, select=assef2013_r90,
+              boundary=partial(_assef_boundary, k=ASSEF2013_R90),
+              style=LineStyle("#7d3c98", "--"), reference="Assef, R. J., et al. 2013, ApJ 772, 26"),
+    Criterion(name="assef2018_r90", bands=TWO_BANDS, select=assef2018_r90,
+              boundary=partial(_assef_boundary, k=ASSEF2018_R90),
+              style=LineStyle("#b9770e", "--"), reference=_A18),
+    Criterion(name="assef2018_r75", bands=TWO_BANDS, select=assef2018_r75,
+              boundary=partial(_assef_boundary, k=ASSEF2018_R75),
+              style=LineStyle("#d35400", "-."), reference=_A18),
+    Criterion(name="assef2018_c75", bands=TWO_BANDS, select=assef2018_c75,
+              boundary=partial(_colour_cut_boundary, colour_min=ASSEF2018_C75_COLOUR_MIN_VEGA, relation=">",
+                               mag_max=None),
+              style=LineStyle("#117a65", ":"), reference=_A18),
+    Criterion(name="mateos2012_wedge", bands=WEDGE_BANDS, select=mateos2012_wedge, boundary=_wedge_boundary,
+              style=LineStyle("#2e4053", "-"), reference="Mateos, S., et al. 2012, MNRAS 426, 3271"),
+)}
+"""THE registry of published colour criteria, by the name used in the configuration. Adding a
+criterion is one entry here (see DEVELOPERS.md, "Extending")."""
 
 
 def criterion_names() -> list[str]:
@@ -588,7 +760,7 @@ def criterion_names() -> list[str]:
     return list(CRITERIA)
 
 
-def _lookup(name: str) -> Callable[[Mapping[str, np.ndarray]], CriterionResult]:
+def _lookup(name: str) -> Criterion:
     if isinstance(name, str) and name in CRITERIA:
         return CRITERIA[name]
     message = f"unknown colour criterion {name!r}; valid names: {', '.join(CRITERIA)}"
@@ -636,8 +808,8 @@ def apply_criteria(
         raise ValueError(f"names: give at least one colour criterion; valid names: {', '.join(CRITERIA)}")
     if combine not in ("any", "all"):
         raise ValueError(f"combine must be 'any' or 'all', got {combine!r}")
-    functions = [_lookup(n) for n in names]  # all names checked before any work
-    results = [f(mags) for f in functions]
+    criteria = [_lookup(n) for n in names]  # all names checked before any work
+    results = [c.select(mags) for c in criteria]
     passed = np.stack([r.passed for r in results])
     excess = np.stack([r.excess_mag for r in results])
     if combine == "any":
@@ -664,8 +836,8 @@ class LinearCut(NamedTuple):
     name : str
         Label used in messages and cut-flow tables.
     y, x : tuple of str
-        One name, ``("4p6",)``, for that magnitude, or two, ``("3p4", "4p6")``, for the
-        colour ``3p4 - 4p6``.  Names are infrared band labels or any other key the
+        One name, ``("4.6",)``, for that magnitude, or two, ``("3.4", "4.6")``, for the
+        colour ``3.4 - 4.6``.  Names are infrared band labels or any other key the
         caller supplies (for instance an optical band such as ``"opt_broad"``).
     slope : float
         Slope of the line (y units per x unit).

@@ -14,7 +14,8 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
-#: Infrared bands by wavelength: config label → canonical suffix, wavelength in micron.
+#: Infrared bands by wavelength in micron: band label (the one spelling used everywhere but in column
+#: names) → its column-name form. Only :func:`band_suffix` reads the values.
 INFRARED_BANDS = {"3.4": "3p4", "4.6": "4p6", "12": "12", "22": "22"}
 
 
@@ -106,14 +107,19 @@ def optical_error_column(band: str) -> str:
     return f"opt_{band}_mag_error"
 
 
+def band_suffix(band: str) -> str:
+    """The column-name form of an infrared band label (``"3.4"`` → ``"3p4"``): the one translation."""
+    return INFRARED_BANDS[band]
+
+
 def infrared_mag_column(band: str) -> str:
     """Canonical column of an infrared band (Vega magnitudes); ``band`` is a label such as ``"3.4"``."""
-    return f"ir_{INFRARED_BANDS[band]}_vegamag"
+    return f"ir_{band_suffix(band)}_vegamag"
 
 
 def infrared_error_column(band: str) -> str:
     """Canonical column of an infrared band's magnitude uncertainty, in mag."""
-    return f"ir_{INFRARED_BANDS[band]}_mag_error"
+    return f"ir_{band_suffix(band)}_mag_error"
 
 
 def role(catalogue: str, name: str) -> Role:

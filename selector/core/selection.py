@@ -25,15 +25,19 @@ def _col(table: pa.Table, name: str) -> np.ndarray:
     return table.column(name).to_numpy(zero_copy_only=False).astype(float, copy=False)
 
 
+#: Columns :func:`tile_rejects` reads (so a reader of the feature cache loads them).
+TILE_REJECT_COLUMNS = ("parallax_error_mas", "pmra_error_mas_yr", "pmdec_error_mas_yr")
+
+
 def tile_rejects(features: pa.Table) -> np.ndarray:
     """Rows whose astrometric errors are exactly zero: their significances would be infinite."""
-    errs = [_col(features, c) for c in ("parallax_error_mas", "pmra_error_mas_yr", "pmdec_error_mas_yr")]
+    errs = [_col(features, c) for c in TILE_REJECT_COLUMNS]
     return np.any(np.stack([e == 0.0 for e in errs]), axis=0)
 
 
 def infrared_mags(features: pa.Table, bands) -> dict[str, np.ndarray]:
-    """Vega magnitudes keyed by the photometry module's band labels (``3p4``, ...)."""
-    return {schema.INFRARED_BANDS[b]: _col(features, schema.infrared_mag_column(b)) for b in bands}
+    """Vega magnitudes keyed by band label (``"3.4"``, ...), as the photometry module reads them."""
+    return {b: _col(features, schema.infrared_mag_column(b)) for b in bands}
 
 
 @dataclass
@@ -109,15 +113,14 @@ def select(features: pa.Table, cfg, p_quasar: np.ndarray | None = None) -> Selec
         for band in cfg.optical_bands():
             quantities[f"opt_{band}"] = _col(features, schema.optical_mag_column(band))
         for spec in c.linear_cuts:
-            cut = LinearCut(spec.name, tuple(_label(q) for q in spec.y), tuple(_label(q) for q in spec.x),
-                            spec.slope, spec.intercept, spec.side).checked()
+            cut = LinearCut(spec.name, tuple(spec.y), tuple(spec.x), spec.slope, spec.intercept, spec.side).checked()
             res = apply_linear_cut(quantities, cut)
             colour_ok = colour_ok & res.passed
     stage("infrared_colour", colour_ok)
     if c.optical_infrared is not None:
         oi = c.optical_infrared
         opt = _col(features, schema.optical_mag_column(oi.optical_band))
-        ir_ab = vega_to_ab(mags[schema.INFRARED_BANDS[oi.infrared_band]], schema.INFRARED_BANDS[oi.infrared_band])
+        ir_ab = vega_to_ab(mags[oi.infrared_band], oi.infrared_band)
         colour = opt - ir_ab
         ok = np.isfinite(colour)
         if oi.min_mag is not None:
@@ -140,10 +143,6 @@ def select(features: pa.Table, cfg, p_quasar: np.ndarray | None = None) -> Selec
     if p_quasar is not None:
         sel.derived["p_quasar"] = np.asarray(p_quasar, float)
     return sel
-
-
-def _label(name: str) -> str:
-    return schema.INFRARED_BANDS.get(name, name)
 
 
 def criteria_score(excess_mag, bright_mag, pivot_mag: float, weight: float) -> np.ndarray:

@@ -134,7 +134,7 @@ class FeatureSpec(NamedTuple):
 
 
 def _ir_suffix(band: str) -> str:
-    return schema.INFRARED_BANDS[band]
+    return schema.band_suffix(band)
 
 
 def feature_specs(cfg: Config) -> list[FeatureSpec]:
@@ -207,7 +207,7 @@ def feature_matrix(table: pa.Table, cfg: Config, names=None, statistics=None) ->
 
     ir_ab = {}
     for b in cfg.infrared_bands():
-        ir_ab[_ir_suffix(b)] = vega_to_ab(_column(table, schema.infrared_mag_column(b)), _ir_suffix(b))
+        ir_ab[_ir_suffix(b)] = vega_to_ab(_column(table, schema.infrared_mag_column(b)), b)
     out = np.empty((table.num_rows, len(names)), np.float64)
     with np.errstate(invalid="ignore"):
         for j, name in enumerate(names):
@@ -732,14 +732,14 @@ def _calibration_curve(p: np.ndarray, positive: np.ndarray, n_bins: int = 10) ->
 
 
 def _criteria_scores(table: pa.Table, cfg: Config) -> dict:
-    from selector.core.photometry import CRITERIA, CRITERION_BANDS
+    from selector.core.photometry import CRITERIA
     from selector.core.selection import infrared_mags
 
     mags = infrared_mags(table, cfg.infrared_bands())
     out = {}
-    for name, fn in CRITERIA.items():
-        if set(CRITERION_BANDS[name]) <= set(mags):
-            r = fn(mags)
+    for name, criterion in CRITERIA.items():
+        if set(criterion.bands) <= set(mags):
+            r = criterion.select(mags)
             out[name] = (np.asarray(r.passed, bool), np.asarray(r.excess_mag, float))
     return out
 

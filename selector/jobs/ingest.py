@@ -82,7 +82,7 @@ def plan_fields(cat: CatalogueConfig, kind: str) -> list[_Field]:
         if kind == "infrared":
             mag_col, err_col = schema.infrared_mag_column(m.band), schema.infrared_error_column(m.band)
             # canonical infrared system is Vega: an AB column (or a flux) loses the band's AB offset
-            to_canonical = -VEGA_TO_AB_MAG[schema.INFRARED_BANDS[m.band]] if (m.system == "ab" or u.Unit(m.unit) != u.mag) else 0.0
+            to_canonical = -VEGA_TO_AB_MAG[m.band] if (m.system == "ab" or u.Unit(m.unit) != u.mag) else 0.0
         else:
             mag_col, err_col = schema.optical_mag_column(m.band), schema.optical_error_column(m.band)
             to_canonical = float(m.vega_to_ab_mag) if (m.system == "vega" and u.Unit(m.unit) == u.mag) else 0.0

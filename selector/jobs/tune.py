@@ -3,9 +3,10 @@
 The feature cache (``run/tiles/tile<N>/features.parquet``) holds every matched owned source and
 depends only on the matching sections of the configuration (:data:`~selector.config.MATCH_SECTIONS`).
 Changing a zero-motion threshold, a colour criterion, the ranking or the classifier threshold
-therefore needs no new cross-match: :func:`load_cache` reads the columns the selection needs from
-every tile at once, and :func:`evaluate` runs :func:`selector.selection.select` over all rows,
-vectorised, in blocks of rows that are not aligned with tiles. The per-tile cut-flow comes from
+therefore needs no new cross-match: :func:`selector.store.cache.load_cache` reads the columns the
+selection needs (:func:`needed_columns`) from every tile at once, and :func:`evaluate` runs
+:func:`selector.core.selection.select` over all rows, vectorised, in blocks of rows that are not
+aligned with tiles. The per-tile cut-flow comes from
 ``np.bincount`` over each row's tile, one per stage. Because ``select`` is a row-by-row function,
 the result is exactly what ``selector run`` gives with the same configuration
 (``tests/test_tune.py`` checks this against a real re-run).
@@ -34,13 +35,13 @@ from typing import Sequence
 
 import numpy as np
 import pyarrow as pa
-import pyarrow.compute as pc
-import pyarrow.parquet as pq
 
-from selector.core import selection, schema, tiles
-from selector.jobs.run import tile as tile_job
-from selector.settings.validate import suggest
+from selector.core import schema, selection
+from selector.core.metrics import Score, completeness_purity
+from selector.core.photometry import CRITERIA
+from selector.errors import ConfigError, InputError, SelectorError
 from selector.jobs.classify import load_scorer
+from selector.jobs.run import batch
 from selector.settings.config import (
     MATCH_SECTIONS,
     SELECTION_SECTIONS,
@@ -50,26 +51,22 @@ from selector.settings.config import (
     load_config,
     plain,
 )
-from selector.errors import ConfigError, InputError, SelectorError
+from selector.settings.validate import suggest
+from selector.store.cache import FeatureCache, find_rows, load_cache, tile_features
 from selector.store.io import read_parquet
+from selector.store.layout import layout_of_run
+from selector.store.truth import TruthLabels, find_truth, load_truth
 
 __all__ = [
-    "FeatureCache",
     "Evaluation",
     "Recorded",
-    "TruthLabels",
-    "TruthScore",
     "TuneOutcome",
     "apply_settings",
     "candidates",
     "compare",
     "compare_cutflows",
     "evaluate",
-    "find_rows",
-    "find_truth",
     "format_outcome",
-    "load_cache",
-    "load_truth",
     "needed_columns",
     "parse_setting",
     "recorded",
@@ -81,12 +78,13 @@ __all__ = [
     "write_results",
 ]
 
-#: Columns every evaluation needs: the zero-motion inputs, which are also what the tile-reject test reads.
-#: (A row's tile is known from the file it is read from, so the tile column is not loaded.)
+#: Columns every evaluation needs: the zero-motion inputs (the reader adds what the tile-reject test
+#: reads, which are among them). A row's tile is known from the file it is read from, so the tile
+#: column is not loaded.
 _BASE_COLUMNS = ("parallax_mas", "parallax_error_mas", "pmra_mas_yr", "pmdec_mas_yr",
                  "pmra_error_mas_yr", "pmdec_error_mas_yr", "pmra_pmdec_corr")
 #: Extra columns the plots read.
-PLOT_COLUMNS = ("astro_id", "ra_deg", "dec_deg", "ir_3p4_vegamag", "ir_4p6_vegamag", "ir_12_vegamag")
+PLOT_COLUMNS = ("astro_id", "ra_deg", "dec_deg", *(schema.infrared_mag_column(b) for b in ("3.4", "4.6", "12")))
 
 #: Rows evaluated at a time (see :func:`evaluate`).
 _BLOCK_ROWS = 1 << 17
@@ -197,7 +195,8 @@ def run_config(run_dir: Path, base_dir: Path | None = None) -> tuple[Config, dic
     (Config, dict)
         The configuration and the provenance record.
     """
-    path = Path(run_dir) / "provenance.json"
+    layout = layout_of_run(run_dir)
+    path = layout.provenance
     if not path.exists():
         raise InputError(f"{path}: not found; is {run_dir} the run folder of a finished `selector run`?")
     try:
@@ -207,8 +206,8 @@ def run_config(run_dir: Path, base_dir: Path | None = None) -> tuple[Config, dic
         raise InputError(f"{path}: not a run record (no 'config'); re-run `selector run`") from None
     if base_dir is None:
         data = copy.deepcopy(data)
-        data.setdefault("project", {})["output_dir"] = str(Path(run_dir).resolve().parent)
-        base_dir = Path(run_dir).resolve().parent
+        data.setdefault("project", {})["output_dir"] = str(layout.output_dir)
+        base_dir = layout.output_dir
     try:
         return from_dict(data, base_dir=base_dir), prov
     except ConfigError as exc:
@@ -217,70 +216,18 @@ def run_config(run_dir: Path, base_dir: Path | None = None) -> tuple[Config, dic
 
 # --- the feature cache ----------------------------------------------------------------------------
 
-@dataclass
-class FeatureCache:
-    """The usable rows of a run's feature cache, with their tile bookkeeping.
-
-    Attributes
-    ----------
-    table : pyarrow.Table
-        Usable rows (tile rejects removed) of every tile, in tile order then file order, holding
-        only the loaded columns.
-    tiles : numpy.ndarray
-        Tile ids of the run, ascending.
-    offsets : numpy.ndarray
-        ``table`` rows ``offsets[i]:offsets[i + 1]`` belong to ``tiles[i]`` (each tile's rows are
-        contiguous).
-    rows_per_tile, rejects_per_tile : numpy.ndarray
-        Owned astrometric rows of each tile (as recorded by the run) and its tile rejects.
-    run_dir : Path
-        The run folder.
-    folders : list of Path
-        Each tile's output folder.
-    columns : tuple of str or None
-        The columns loaded (None: all).
-    seconds : float
-        Wall time of the load (not part of any result file).
-    """
-
-    table: pa.Table
-    tiles: np.ndarray
-    offsets: np.ndarray
-    rows_per_tile: np.ndarray
-    rejects_per_tile: np.ndarray
-    run_dir: Path
-    folders: list
-    columns: tuple | None = None
-    seconds: float = 0.0
-
-    @property
-    def n_rows(self) -> int:
-        return self.table.num_rows
-
-    def tile_slice(self, i: int) -> slice:
-        """Rows of ``table`` that belong to ``tiles[i]``."""
-        return slice(int(self.offsets[i]), int(self.offsets[i + 1]))
-
-    def tile_index(self, lo: int = 0, hi: int | None = None) -> np.ndarray:
-        """Position in ``tiles`` of each of the rows ``lo:hi`` of ``table``."""
-        hi = self.n_rows if hi is None else hi
-        return np.searchsorted(self.offsets, np.arange(lo, hi), side="right") - 1
-
-
 def _needed_bands(cfg: Config) -> list[str]:
-    """Infrared bands (config labels) the selection reads: the criteria's, the cuts', the ranking's.
+    """Infrared bands the selection reads: the criteria's, the cuts', the ranking's.
 
     A band left out reads as missing, which changes nothing for criteria that do not use it.
     """
-    from selector.core.photometry import CRITERION_BANDS
-
-    labels = {b for name in cfg.colours.criteria for b in CRITERION_BANDS.get(name, ())}
-    wanted = {cfg.ranking.brightness_band}
+    wanted = {b for name in cfg.colours.criteria for b in CRITERIA[name].bands}
+    wanted.add(cfg.ranking.brightness_band)
     for cut in cfg.colours.linear_cuts:
         wanted.update(q for q in (*cut.x, *cut.y) if q in schema.INFRARED_BANDS)
     if cfg.colours.optical_infrared is not None:
         wanted.add(cfg.colours.optical_infrared.infrared_band)
-    return [b for b in cfg.infrared_bands() if b in wanted or schema.INFRARED_BANDS[b] in labels]
+    return [b for b in cfg.infrared_bands() if b in wanted]
 
 
 def needed_columns(cfg: Config, plots: bool = False, classifier: bool = True,
@@ -305,130 +252,6 @@ def needed_columns(cfg: Config, plots: bool = False, classifier: bool = True,
     if plots:
         cols += PLOT_COLUMNS
     return tuple(dict.fromkeys(cols))
-
-
-def _tile_dirs(cfg: Config) -> tuple[np.ndarray, list[Path]]:
-    ids = tiles.list_tiles(cfg.tiles_dir, "astrometric", cfg.tiling.order)
-    if not ids:
-        # the run folder may have been moved without the ingested tiles: the run's own tile folders
-        # are then the record of what was processed
-        ids = sorted(int(p.name[4:]) for p in (cfg.run_dir / "tiles").glob("tile*") if p.is_dir())
-    return np.asarray(ids, np.int64), [tile_job.tile_output_dir(cfg, t) for t in ids]
-
-
-def _open(path: Path) -> pq.ParquetFile:
-    try:
-        # without pre-buffering an open file keeps no copy of the bytes it has decoded
-        return pq.ParquetFile(path, pre_buffer=False)
-    except (OSError, pa.ArrowException) as exc:
-        raise InputError(f"{path}: cannot read the feature cache ({str(exc).splitlines()[0]})") from None
-
-
-def _read_columns(files: list, columns, n_threads: int) -> pa.Table:
-    """The requested columns of every file, concatenated in file order, as one chunk per column.
-
-    Floating-point columns are decoded straight into one preallocated array each (nulls become
-    NaN), which needs a single copy and leaves every later read a zero-copy view; other columns
-    are concatenated by pyarrow. A column a file lacks is missing (NaN or null) for its rows.
-    """
-    with ThreadPoolExecutor(max_workers=n_threads) as pool:
-        handles = list(pool.map(_open, files))
-    if columns is None:
-        columns = list(dict.fromkeys(n for h in handles for n in h.schema_arrow.names))
-    types = {}
-    for h in handles:
-        for f in h.schema_arrow:
-            if f.name in columns and not pa.types.is_null(f.type):
-                types.setdefault(f.name, f)
-    floats = [c for c in columns if c in types and pa.types.is_floating(types[c].type)]
-    others = [c for c in columns if c in types and c not in floats]
-    sizes = np.array([h.metadata.num_rows for h in handles], np.int64)
-    starts = np.cumsum(sizes) - sizes
-    total = int(sizes.sum())
-    dense = {c: np.empty(total) for c in floats}
-    pieces = {c: [None] * len(handles) for c in others}
-
-    def read(i):
-        h = handles[i]
-        have = [c for c in columns if c in h.schema_arrow.names]
-        try:
-            t = h.read(columns=have, use_threads=False)
-        except (OSError, pa.ArrowException) as exc:
-            raise InputError(f"{files[i]}: cannot read the feature cache ({str(exc).splitlines()[0]})") from None
-        lo, hi = starts[i], starts[i] + sizes[i]
-        for c in floats:
-            dense[c][lo:hi] = t.column(c).to_numpy() if c in have else np.nan
-        for c in others:
-            pieces[c][i] = t.column(c) if c in have else pa.nulls(int(sizes[i]), types[c].type)
-        h.close()
-
-    with ThreadPoolExecutor(max_workers=n_threads) as pool:
-        list(pool.map(read, range(len(handles))))
-    arrays = {}
-    for c in columns:
-        if c in dense:
-            arrays[c] = pa.array(dense.pop(c))
-        elif c in pieces:
-            chunks = [ch for col in pieces.pop(c) for ch in col.chunks]
-            arrays[c] = pa.chunked_array(chunks, types[c].type).combine_chunks() if chunks else pa.nulls(0, types[c].type)
-    table = pa.table(arrays) if arrays else pa.table({"_": pa.nulls(total)}).drop(["_"])
-    return table, sizes
-
-
-def _read_counts(folder: Path) -> int:
-    path = folder / "cutflow.json"
-    try:
-        return int(json.loads(path.read_text())["rows"])
-    except FileNotFoundError:
-        raise InputError(f"{path}: not found; the run is incomplete, finish it with `selector run`") from None
-    except (ValueError, KeyError, TypeError):
-        raise InputError(f"{path}: damaged (no 'rows'); re-run `selector run`") from None
-
-
-def load_cache(cfg: Config, columns: Sequence[str] | None = ("auto",), plots: bool = False,
-               ids: bool = False, threads: int | None = None) -> FeatureCache:
-    """Read the feature cache of ``cfg``'s run: the needed columns of every tile at once.
-
-    Parameters
-    ----------
-    cfg : Config
-        Any configuration of the run (the matching sections locate the cache).
-    columns : sequence of str or None
-        Columns to load; the default loads what :func:`needed_columns` says for ``cfg``; None
-        loads all. A column absent from a tile's file is read as missing (null).
-    plots : bool
-        Also load the columns the plots read.
-    ids : bool
-        Also load the source ids (needed to compare with truth labels).
-    threads : int, optional
-        Files read in parallel (default: one per core).
-    """
-    if columns is not None and tuple(columns) == ("auto",):
-        columns = needed_columns(cfg, plots, ids=ids)
-    elif columns is not None:
-        columns = tuple(dict.fromkeys(list(_BASE_COLUMNS) + list(columns)))
-    t0 = time.perf_counter()
-    ids, folders = _tile_dirs(cfg)
-    if len(ids) == 0:
-        raise InputError(f"{cfg.run_dir}: no tiles found; run `selector ingest` and `selector run` first")
-    files = [f / "features.parquet" for f in folders]
-    for f in files:
-        if not f.exists():
-            raise InputError(f"{f}: no feature cache for this tile; run `selector run` first")
-    n_threads = threads or os.cpu_count() or 1
-    table, sizes = _read_columns(files, columns, n_threads)
-    with ThreadPoolExecutor(max_workers=n_threads) as pool:
-        rows = np.array(list(pool.map(_read_counts, folders)), np.int64)
-    starts = np.concatenate([[0], np.cumsum(sizes)])
-    bad = selection.tile_rejects(table)
-    rejects = np.zeros(len(ids), np.int64)
-    if bad.any():
-        seen = np.concatenate([[0], np.cumsum(bad)])
-        rejects = (seen[starts[1:]] - seen[starts[:-1]]).astype(np.int64)
-        table = table.filter(pa.array(~bad)).combine_chunks()
-    offsets = np.concatenate([[0], np.cumsum(sizes - rejects)]).astype(np.int64)
-    return FeatureCache(table, ids, offsets, rows, rejects, cfg.run_dir, folders,
-                        None if columns is None else tuple(columns), time.perf_counter() - t0)
 
 
 # --- evaluation ---------------------------------------------------------------------------------
@@ -507,7 +330,7 @@ def evaluate(cache: FeatureCache, cfg: Config, p_quasar: np.ndarray | None = Non
     Parameters
     ----------
     cache : FeatureCache
-        From :func:`load_cache` (with every column when a classifier is used).
+        From :func:`selector.store.cache.load_cache` (with every column when a classifier is used).
     cfg : Config
         Configuration whose selection sections are applied; its matching sections must be those
         of the run (see :func:`tune`).
@@ -549,13 +372,6 @@ def evaluate(cache: FeatureCache, cfg: Config, p_quasar: np.ndarray | None = Non
     return Evaluation(cfg, ["input"] + stage_names, counts, [p for p, _ in parts], time.perf_counter() - t0)
 
 
-def _tile_features(cache: FeatureCache, i: int) -> pa.Table:
-    """The full usable feature rows of one tile, in cache order."""
-    path = cache.folders[i] / "features.parquet"
-    full = read_parquet(path)
-    return full.filter(pa.array(~selection.tile_rejects(full)))
-
-
 def _tile_selection(ev: Evaluation, s: slice) -> selection.Selection:
     return selection.Selection([(n, m[s]) for n, m in ev.selection.stages],
                               {k: np.asarray(v)[s] for k, v in ev.selection.derived.items()})
@@ -571,7 +387,7 @@ def candidates(cache: FeatureCache, ev: Evaluation) -> pa.Table:
     parts = []
     for i in passed_tiles:
         s = cache.tile_slice(int(i))
-        parts.append(selection.candidates_table(_tile_features(cache, int(i)), _tile_selection(ev, s)))
+        parts.append(selection.candidates_table(tile_features(cache, int(i)), _tile_selection(ev, s)))
     if not parts:
         return pa.table({"astro_id": pa.array([], pa.int64())})
     return selection.rank_candidates(pa.concat_tables(parts, promote_options="permissive"))
@@ -585,8 +401,6 @@ def write_results(ev: Evaluation, config_path=None, log=print):
     then holds exactly what ``selector run`` with ``ev.cfg`` writes, and a later ``selector run``
     with another configuration re-selects from it as usual.
     """
-    from selector.jobs.run import batch
-
     result = batch.run(ev.cfg, quiet=True, log=log, config_path=config_path)
     log(f"wrote the tuned selection as the run's result: {result.candidates:,} candidates in "
         f"{result.outputs['ecsv']}")
@@ -595,116 +409,14 @@ def write_results(ev: Evaluation, config_path=None, log=print):
 
 # --- truth labels ---------------------------------------------------------------------------------
 
-@dataclass
-class TruthLabels:
-    """Truth labels aligned with the rows of a feature cache.
+def score_truth(labels: TruthLabels, passed: np.ndarray) -> Score:
+    """Completeness and purity of the cache rows in ``passed`` (:func:`selector.core.metrics.completeness_purity`).
 
-    Attributes
-    ----------
-    path : Path
-        Where the labels came from.
-    labelled : numpy.ndarray of bool
-        Cache rows that have a label.
-    quasar : numpy.ndarray of bool
-        Cache rows labelled as quasars.
-    n_quasars : int
-        Labelled quasars in the whole file (matched or not): the completeness denominator.
+    The completeness denominator is every labelled quasar of the file, with or without a cache
+    row: a quasar the cross-match lost is a quasar the selection missed.
     """
-
-    path: Path
-    labelled: np.ndarray
-    quasar: np.ndarray
-    n_quasars: int
-
-
-@dataclass
-class TruthScore:
-    """Completeness and purity of one candidate selection.
-
-    ``completeness = recovered / n_quasars``; ``purity = recovered / labelled candidates``
-    (candidates without a label are counted separately, not as contaminants).
-    """
-
-    candidates: int
-    labelled_candidates: int
-    recovered: int
-    n_quasars: int
-
-    @property
-    def completeness(self) -> float:
-        return self.recovered / self.n_quasars if self.n_quasars else float("nan")
-
-    @property
-    def purity(self) -> float:
-        return self.recovered / self.labelled_candidates if self.labelled_candidates else float("nan")
-
-
-def _read_any(path: Path) -> pa.Table:
-    from selector.store.io import guess_format
-
-    fmt = guess_format(path)
-    try:
-        if fmt == "parquet":
-            return pq.read_table(path)
-        if fmt == "csv":
-            import pyarrow.csv as pacsv
-
-            return pacsv.read_csv(path, convert_options=pacsv.ConvertOptions(column_types={"id": pa.string()}))
-        from astropy.table import Table
-
-        t = Table.read(path, format={"fits": "fits", "ecsv": "ascii.ecsv", "votable": "votable"}[fmt])
-        return pa.table({c: np.asarray(t[c]) for c in t.colnames})
-    except (OSError, ValueError, pa.ArrowException) as exc:
-        raise InputError(f"{path}: cannot read the truth labels ({str(exc).splitlines()[0]})") from None
-
-
-def _is_quasar(values: pa.ChunkedArray) -> np.ndarray:
-    from selector.core.truth import QUASAR_POPULATIONS
-
-    if pa.types.is_boolean(values.type):
-        return np.asarray(values.fill_null(False).to_numpy(zero_copy_only=False), bool)
-    if pa.types.is_integer(values.type):
-        return np.asarray(values.fill_null(0).to_numpy(zero_copy_only=False) == 1, bool)
-    text = pc.utf8_lower(pc.cast(values, pa.string()).fill_null(""))
-    return np.asarray(pc.is_in(text, value_set=pa.array(list(QUASAR_POPULATIONS))).to_numpy(zero_copy_only=False), bool)
-
-
-def load_truth(path: Path, cache: FeatureCache) -> TruthLabels:
-    """Read truth labels and align them with the cache rows.
-
-    The file (Parquet, CSV, ECSV, FITS or VOTable) needs a column ``id`` (the astrometric id) and
-    either ``population`` (quasar when ``quasar`` or ``bright_quasar``, as the demo's truth writes)
-    or ``label`` (quasar when ``quasar``, ``true`` or ``1``). With a column ``catalogue`` only the
-    ``astrometric`` rows are used.
-    """
-    path = Path(path)
-    if not path.exists():
-        raise InputError(f"{path}: no such truth file")
-    table = _read_any(path)
-    names = table.column_names
-    if "id" not in names:
-        raise InputError(f"{path}: the truth file has no column 'id' (the astrometric source id){suggest('id', names)}")
-    label = "population" if "population" in names else "label" if "label" in names else None
-    if label is None:
-        raise InputError(f"{path}: the truth file needs a column 'population' or 'label'")
-    if "catalogue" in names:
-        table = table.filter(pc.equal(pc.cast(table.column("catalogue"), pa.string()), "astrometric"))
-    quasar = _is_quasar(table.column(label))
-    labelled, row = find_rows(cache, table.column("id"))
-    is_q = labelled & (quasar[row] if len(quasar) else np.zeros(len(row), bool))
-    return TruthLabels(path, labelled, is_q, int(quasar.sum()))
-
-
-def find_truth(cfg: Config) -> Path | None:
-    """The demo's truth labels, ``catalogues/truth.parquet`` beside the config, if present."""
-    path = Path(cfg.base_dir) / "catalogues" / "truth.parquet"
-    return path if path.exists() else None
-
-
-def score_truth(labels: TruthLabels, passed: np.ndarray) -> TruthScore:
-    """Completeness and purity of the cache rows in ``passed``."""
-    return TruthScore(int(passed.sum()), int((passed & labels.labelled).sum()), int((passed & labels.quasar).sum()),
-                      labels.n_quasars)
+    score = completeness_purity(passed, labels.quasar, labels.labelled)
+    return score._replace(positives=labels.n_quasars)
 
 
 # --- the tuning loop ------------------------------------------------------------------------------
@@ -733,7 +445,7 @@ class Recorded:
 
 def recorded(run_dir: Path, cfg: Config, prov: dict, cache: FeatureCache | None = None) -> Recorded:
     """The run's recorded selection; aligned with ``cache`` when its ids are loaded."""
-    path = Path(run_dir) / "candidates.parquet"
+    path = layout_of_run(run_dir).candidates
     if not path.exists():
         raise InputError(f"{path}: not found; the run in {run_dir} has not finished its merge")
     ids = read_parquet(path, columns=["astro_id"]).column("astro_id").combine_chunks()
@@ -741,35 +453,6 @@ def recorded(run_dir: Path, cfg: Config, prov: dict, cache: FeatureCache | None 
     if cache is not None and "astro_id" in cache.table.column_names:
         out.passed = find_rows(cache, ids)[0]
     return out
-
-
-def find_rows(cache: FeatureCache, ids) -> tuple[np.ndarray, np.ndarray]:
-    """Where ``ids`` sit among the cache rows.
-
-    Returns
-    -------
-    (numpy.ndarray of bool, numpy.ndarray of int64)
-        For each cache row, whether its ``astro_id`` is among ``ids``, and the position in
-        ``ids`` of the first equal id (0 where there is none). Integer ids given as text are
-        compared as integers; otherwise both sides are compared as text.
-    """
-    if "astro_id" not in cache.table.column_names:
-        raise SelectorError("internal error: the feature cache was loaded without its ids (astro_id)")
-    cache_ids = cache.table.column("astro_id").combine_chunks()
-    if isinstance(ids, pa.ChunkedArray):
-        ids = ids.combine_chunks()
-    elif not isinstance(ids, pa.Array):
-        ids = pa.array(ids)
-    if ids.type != cache_ids.type:
-        try:
-            if not pa.types.is_integer(cache_ids.type):
-                raise pa.ArrowInvalid("text ids")
-            ids = pc.cast(ids, cache_ids.type)
-        except (pa.ArrowInvalid, pa.ArrowNotImplementedError):
-            ids, cache_ids = pc.cast(ids, pa.string()), pc.cast(cache_ids, pa.string())
-    pos = pc.index_in(cache_ids, value_set=ids)
-    found = np.asarray(pos.is_valid().to_numpy(zero_copy_only=False), bool)
-    return found, np.asarray(pos.fill_null(0).to_numpy(zero_copy_only=False), np.int64)
 
 
 @dataclass
@@ -784,7 +467,7 @@ class TuneOutcome:
         The changed selection over the cache.
     changes : list of (key, before, after)
         Selection settings that differ.
-    truth_before, truth_after : TruthScore or None
+    truth_before, truth_after : selector.core.metrics.Score or None
         Against the truth labels, where given.
     """
 
@@ -793,8 +476,8 @@ class TuneOutcome:
     after: Evaluation
     changes: list = field(default_factory=list)
     truth: TruthLabels | None = None
-    truth_before: TruthScore | None = None
-    truth_after: TruthScore | None = None
+    truth_before: Score | None = None
+    truth_after: Score | None = None
 
 
 def _flatten(data, prefix=""):
@@ -917,12 +600,12 @@ def format_outcome(out: TuneOutcome) -> str:
     if out.truth is not None:
         tb, ta = out.truth_before, out.truth_after
         lines.append("")
-        lines.append(f"against the truth labels in {out.truth.path} ({tb.n_quasars:,d} true quasars):")
+        lines.append(f"against the truth labels in {out.truth.path} ({tb.positives:,d} true quasars):")
         lines.append(f"  {'':<14}{'before':>10}  {'after':>10}")
         lines.append(f"  {'completeness':<14}{tb.completeness:>10.1%}  {ta.completeness:>10.1%}")
         lines.append(f"  {'purity':<14}{tb.purity:>10.1%}  {ta.purity:>10.1%}")
-        lines.append(f"  {'recovered':<14}{tb.recovered:>10,d}  {ta.recovered:>10,d}")
-        unl_b, unl_a = tb.candidates - tb.labelled_candidates, ta.candidates - ta.labelled_candidates
+        lines.append(f"  {'recovered':<14}{tb.true_selected:>10,d}  {ta.true_selected:>10,d}")
+        unl_b, unl_a = tb.unlabelled, ta.unlabelled
         if unl_b or unl_a:
             lines.append(f"  {'unlabelled':<14}{unl_b:>10,d}  {unl_a:>10,d}")
         if any(_trained_on(ev.cfg, out.truth.path) for ev in (out.before, out.after)):

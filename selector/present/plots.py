@@ -5,8 +5,9 @@ Every function takes a :class:`PlotData` (built from a feature cache and an eval
 no global pyplot state or display is needed. :func:`figure_png` renders a figure to PNG bytes
 without the software and date tags, so the same data give the same bytes.
 
-The colour-criterion boundaries are drawn from the constants and functions of
-:mod:`selector.photometry`, so a picture always shows the criterion the selection applies.
+The colour-criterion boundaries are drawn from each criterion's own object in the registry
+:data:`selector.core.photometry.CRITERIA` (its boundary curves in the diagram's plane and its style),
+with no per-criterion code here, so a picture always shows the criterion the selection applies.
 Background populations are drawn as 2-D histograms, which keeps the cost independent of the
 number of cached rows; candidates are drawn as points.
 """
@@ -21,8 +22,10 @@ from pathlib import Path
 import numpy as np
 
 from selector.core import photometry as ph
+from selector.core.schema import infrared_mag_column
+from selector.store.io import atomic_path
 
-__all__ = ["PLOTS", "PlotData", "colour_colour", "colour_magnitude", "cutflow_funnel", "figure_png",
+__all__ = ["COLOUR_COLOUR", "COLOUR_MAGNITUDE", "PLOTS", "PlotData", "colour_colour", "colour_magnitude", "cutflow_funnel", "figure_png",
            "motion_statistics", "render_plots", "score_distribution", "sky_map", "write_plots"]
 
 #: Largest number of candidates drawn as points (an even stride of the rest is drawn beyond that).
@@ -30,15 +33,11 @@ MAX_POINTS = 50_000
 _DPI = 100
 _CANDIDATE = "#c0392b"
 _MOTION = "#2471a3"
-_CRITERION_STYLE = {
-    "stern2012": dict(color="#1e8449", ls="-"),
-    "assef2013_r90": dict(color="#7d3c98", ls="--"),
-    "assef2018_r90": dict(color="#b9770e", ls="--"),
-    "assef2018_r75": dict(color="#d35400", ls="-."),
-    "assef2018_c75": dict(color="#117a65", ls=":"),
-    "mateos2012_wedge": dict(color="#2e4053", ls="-"),
-}
-_ASSEF = {"assef2013_r90": ph.ASSEF2013_R90, "assef2018_r90": ph.ASSEF2018_R90, "assef2018_r75": ph.ASSEF2018_R75}
+#: Infrared bands the pictures read.
+_BANDS = ("3.4", "4.6", "12")
+#: The two diagrams: [3.4]−[4.6] against [4.6]−[12], and against [4.6].
+COLOUR_COLOUR = ph.Plane(y=("3.4", "4.6"), x=("4.6", "12"))
+COLOUR_MAGNITUDE = ph.Plane(y=("3.4", "4.6"), x=("4.6",))
 
 
 @dataclass
@@ -50,7 +49,7 @@ class PlotData:
     cfg : selector.config.Config
         The selection shown (criteria, thresholds, tiling order).
     mags_vega : dict
-        Infrared Vega magnitudes keyed ``3p4``, ``4p6``, ``12`` (NaN where missing).
+        Infrared Vega magnitudes keyed by band label ``3.4``, ``4.6``, ``12`` (NaN where missing).
     candidate : numpy.ndarray of bool
         Selected sources.
     zero_motion : numpy.ndarray of bool or None
@@ -80,7 +79,7 @@ class PlotData:
 
     @classmethod
     def from_evaluation(cls, cache, ev, candidate=None, p_quasar=None, cutflow=None) -> "PlotData":
-        """Build from a :class:`~selector.tune.FeatureCache` and an :class:`~selector.tune.Evaluation`.
+        """Build from a :class:`~selector.store.cache.FeatureCache` and a :class:`~selector.jobs.tune.Evaluation`.
 
         ``candidate``, ``p_quasar`` and ``cutflow`` override what the evaluation says (the report
         takes them from the run's recorded outputs).
@@ -102,7 +101,7 @@ class PlotData:
                 continue
         if p_quasar is None and "p_quasar" in d:
             p_quasar = np.asarray(d["p_quasar"], float)
-        return cls(ev.cfg, {b: col(f"ir_{b}_vegamag") for b in ("3p4", "4p6", "12")},
+        return cls(ev.cfg, {b: col(infrared_mag_column(b)) for b in _BANDS},
                    ev.passed if candidate is None else np.asarray(candidate, bool), motion,
                    np.asarray(d["parallax_snr"]), np.asarray(d["pm_chi2"]), np.asarray(d["criteria_score"]),
                    col("ra_deg"), col("dec_deg"), ev.cutflow if cutflow is None else list(cutflow), p_quasar)
@@ -162,24 +161,41 @@ def _candidates(ax, x, y, candidate, label="candidates"):
                label=f"{label} ({int(candidate.sum()):,d}){note}")
 
 
-def _linear_cuts(ax, cfg, y_axis: tuple, x_axis: tuple, xlim):
+def _linear_cuts(ax, cfg, plane: ph.Plane, xlim):
     for cut in cfg.colours.linear_cuts:
-        if tuple(cut.y) == y_axis and tuple(cut.x) == x_axis:
+        if tuple(cut.y) == plane.y and tuple(cut.x) == plane.x:
             xs = np.array(xlim)
             ax.plot(xs, cut.slope * xs + cut.intercept, color="#884ea0", lw=1.5, ls=(0, (5, 2)),
                     label=f"linear cut '{cut.name}' (keep {cut.side})")
 
 
+def _axis(mags: dict, bands: tuple) -> np.ndarray:
+    """A magnitude (one band) or a colour (two) of a plane's axis."""
+    return mags[bands[0]] if len(bands) == 1 else mags[bands[0]] - mags[bands[1]]
+
+
+def _criteria(ax, cfg, plane: ph.Plane, xlim, ylim) -> list[str]:
+    """Draw the boundary of every configured criterion in ``plane``; the names that have none there."""
+    skipped = []
+    for name in cfg.colours.criteria:
+        criterion = ph.CRITERIA[name]
+        curves = criterion.curves(plane, xlim, ylim)
+        for c in curves:
+            ax.plot(c.x, c.y, lw=1.6, color=criterion.style.color, ls=criterion.style.ls, label=c.label)
+        if not curves:
+            skipped.append(name)
+    return skipped
+
+
 def colour_colour(data: PlotData):
     """[3.4]−[4.6] against [4.6]−[12] (Vega) with the selected criteria's boundaries.
 
-    The Mateos et al. 2012 wedge (MNRAS 426, 3271) is defined in flux-density ratios; it is mapped
-    into Vega colours with the Vega-to-AB offsets of :data:`selector.photometry.VEGA_TO_AB_MAG`,
-    where it stays a wedge of straight lines.
+    The Mateos et al. 2012 wedge (MNRAS 426, 3271) is defined in flux-density ratios; its criterion
+    maps it into Vega colours with the Vega-to-AB offsets of
+    :data:`selector.core.photometry.VEGA_TO_AB_MAG`, where it stays a wedge of straight lines.
     """
-    m = data.mags_vega
-    x = m["4p6"] - m["12"]
-    y = m["3p4"] - m["4p6"]
+    x = _axis(data.mags_vega, COLOUR_COLOUR.x)
+    y = _axis(data.mags_vega, COLOUR_COLOUR.y)
     fig = _figure()
     ax = fig.add_subplot()
     xlim = _limits(x, (-0.5, 6.5))
@@ -189,24 +205,8 @@ def colour_colour(data: PlotData):
     else:
         _density(ax, x, y, xlim, ylim)
         _candidates(ax, x, y, data.candidate)
-    xs = np.array(xlim)
-    for name in data.cfg.colours.criteria:
-        style = _CRITERION_STYLE.get(name, {})
-        if name == "stern2012":
-            ax.plot(xs, [ph.STERN2012_COLOUR_MIN_VEGA] * 2, lw=1.6, **style,
-                    label=f"stern2012: [3.4]−[4.6] ≥ {ph.STERN2012_COLOUR_MIN_VEGA} (and [4.6] ≤ "
-                          f"{ph.STERN2012_MAG_4P6_MAX_VEGA})")
-        elif name == "assef2018_c75":
-            ax.plot(xs, [ph.ASSEF2018_C75_COLOUR_MIN_VEGA] * 2, lw=1.6, **style,
-                    label=f"assef2018_c75: [3.4]−[4.6] > {ph.ASSEF2018_C75_COLOUR_MIN_VEGA}")
-        elif name in _ASSEF:
-            k = _ASSEF[name]
-            ax.plot(xs, [k.alpha] * 2, lw=1.6, **style,
-                    label=f"{name}: > {k.alpha} for [4.6] ≤ {k.gamma} (rises fainter; see colour–magnitude)")
-        elif name == "mateos2012_wedge":
-            wx, wy = _wedge_vega(xlim)
-            ax.plot(wx, wy, lw=1.6, **style, label="mateos2012_wedge (three-band wedge)")
-    _linear_cuts(ax, data.cfg, ("3.4", "4.6"), ("4.6", "12"), xlim)
+    _criteria(ax, data.cfg, COLOUR_COLOUR, xlim, ylim)
+    _linear_cuts(ax, data.cfg, COLOUR_COLOUR, xlim)
     ax.set_xlim(xlim)
     ax.set_ylim(ylim)
     ax.set_xlabel("[4.6] − [12] (Vega mag)")
@@ -216,62 +216,18 @@ def colour_colour(data: PlotData):
     return fig
 
 
-def _wedge_vega(xlim):
-    """The Mateos et al. 2012 wedge as a polyline in ([4.6]−[12], [3.4]−[4.6]) Vega colours.
-
-    With offsets d = m_AB − m_Vega, ``x_f = log10(f12/f4.6) = 0.4([4.6]−[12] + d4.6 − d12)`` and
-    ``y_f = log10(f4.6/f3.4) = 0.4([3.4]−[4.6] + d3.4 − d4.6)``: the wedge's axes map straight onto
-    the plot's.
-    """
-    d = ph.VEGA_TO_AB_MAG
-    su, iu = ph.MATEOS2012_WEDGE["upper"]
-    sl, il = ph.MATEOS2012_WEDGE["lower"]
-    sf, if_ = ph.MATEOS2012_WEDGE["left"]
-    x_ul = (if_ - iu) / (su - sf)  # where the upper and left edges meet
-    x_ll = (if_ - il) / (sl - sf)
-    # open towards large x_f, i.e. to the right of the plot: run the two long edges to its edge
-    x_right = 0.4 * (xlim[1] + d["4p6"] - d["12"])
-    xf = np.array([x_right, x_ul, x_ll, x_right])
-    yf = np.array([su * x_right + iu, su * x_ul + iu, sl * x_ll + il, sl * x_right + il])
-    return 2.5 * xf - (d["4p6"] - d["12"]), 2.5 * yf - (d["3p4"] - d["4p6"])
-
-
 def colour_magnitude(data: PlotData):
     """[3.4]−[4.6] against [4.6] (Vega) with the selected criteria's boundaries."""
-    m = data.mags_vega
-    x = m["4p6"]
-    y = m["3p4"] - m["4p6"]
+    x = _axis(data.mags_vega, COLOUR_MAGNITUDE.x)
+    y = _axis(data.mags_vega, COLOUR_MAGNITUDE.y)
     fig = _figure()
     ax = fig.add_subplot()
     xlim = _limits(x, (8.0, 17.5))
     ylim = _limits(y, (-0.5, 2.5))
     _density(ax, x, y, xlim, ylim)
     _candidates(ax, x, y, data.candidate)
-    grid = np.linspace(xlim[0], xlim[1], 400)
-    skipped = []
-    for name in data.cfg.colours.criteria:
-        style = _CRITERION_STYLE.get(name, {})
-        if name == "stern2012":
-            lim = ph.STERN2012_MAG_4P6_MAX_VEGA
-            ax.plot([xlim[0], lim, lim], [ph.STERN2012_COLOUR_MIN_VEGA, ph.STERN2012_COLOUR_MIN_VEGA, ylim[1]],
-                    lw=1.6, **style, label=f"stern2012: ≥ {ph.STERN2012_COLOUR_MIN_VEGA}, [4.6] ≤ {lim}")
-        elif name == "assef2018_c75":
-            ax.plot(xlim, [ph.ASSEF2018_C75_COLOUR_MIN_VEGA] * 2, lw=1.6, **style,
-                    label=f"assef2018_c75: > {ph.ASSEF2018_C75_COLOUR_MIN_VEGA}")
-        elif name in _ASSEF:
-            k = _ASSEF[name]
-            g = grid[grid < k.mag_4p6_max_vega]
-            curve = ph.assef_boundary_colour_vega(g, k.alpha, k.beta, k.gamma)
-            label = f"{name}: α={k.alpha}, β={k.beta}, γ={k.gamma}"
-            if math.isfinite(k.mag_4p6_max_vega):
-                g = np.append(g, [k.mag_4p6_max_vega, k.mag_4p6_max_vega])
-                curve = np.append(curve, [ph.assef_boundary_colour_vega(k.mag_4p6_max_vega, k.alpha, k.beta,
-                                                                        k.gamma), ylim[1]])
-                label += f", [4.6] < {k.mag_4p6_max_vega}"
-            ax.plot(g, curve, lw=1.6, **style, label=label)
-        else:
-            skipped.append(name)
-    _linear_cuts(ax, data.cfg, ("3.4", "4.6"), ("4.6",), xlim)
+    skipped = _criteria(ax, data.cfg, COLOUR_MAGNITUDE, xlim, ylim)
+    _linear_cuts(ax, data.cfg, COLOUR_MAGNITUDE, xlim)
     ax.set_xlim(xlim)
     ax.set_ylim(ylim)
     ax.set_xlabel("[4.6] (Vega mag)")
@@ -462,8 +418,6 @@ def render_plots(data: PlotData) -> dict[str, bytes]:
 
 def write_plots(data: PlotData, folder: Path) -> dict[str, Path]:
     """Write every picture as ``<folder>/<name>.png`` (atomically); returns the paths."""
-    from selector.store.io import atomic_path
-
     folder = Path(folder)
     out = {}
     for name, png in render_plots(data).items():

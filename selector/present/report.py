@@ -1,8 +1,8 @@
 """One self-contained HTML page per run: provenance, cut-flow, pictures and the top targets.
 
-``selector report --run DIR`` needs only the run folder: the configuration is read back from
-``DIR/provenance.json``, the feature cache from ``DIR/tiles`` and the candidates from
-``DIR/candidates.parquet``. The page embeds its pictures as base64 PNG data, carries its own style
+``selector report --run DIR`` needs only the run folder: the configuration is read back from the
+run's provenance record, the feature cache through :mod:`selector.store.cache` and the candidates
+from the merged list (every path from :mod:`selector.store.layout`). The page embeds its pictures as base64 PNG data, carries its own style
 sheet, has no scripts and refers to nothing outside itself, so it can be mailed, archived or opened
 on a machine without a network. It holds no wall-clock time: the same run gives the same bytes.
 """
@@ -17,9 +17,14 @@ from pathlib import Path
 import numpy as np
 import pyarrow as pa
 
-from selector.settings.config import SELECTION_SECTIONS, plain
+from selector.core.selection import rank_candidates
 from selector.errors import InputError
+from selector.jobs import tune
+from selector.present import plots
+from selector.settings.config import SELECTION_SECTIONS, plain
+from selector.store.cache import find_rows, load_cache
 from selector.store.io import read_parquet, write_text
+from selector.store.layout import layout_of_run
 
 __all__ = ["TABLE_COLUMNS", "build_report", "write_report"]
 
@@ -85,8 +90,6 @@ def _cell(value, fmt: str) -> str:
 
 
 def _targets_table(cands: pa.Table, top: int) -> str:
-    from selector.core.selection import rank_candidates
-
     if cands.num_rows == 0:
         return "<p id='no-targets'>No candidates in this run.</p>"
     if "rank" in cands.column_names:
@@ -135,23 +138,20 @@ def build_report(run_dir: Path | str, top: int = 50) -> str:
     Parameters
     ----------
     run_dir : path
-        The run folder (``cfg.run_dir``: it holds ``provenance.json``, ``candidates.parquet`` and
-        ``tiles/``).
+        The run folder (``cfg.run_dir``: it holds the provenance record, the merged candidates and
+        the per-tile feature caches).
     top : int
         Rows of the top-targets table.
     """
-    from selector.present import plots
-    from selector.jobs import tune
-
     run_dir = Path(run_dir)
     cfg, prov = tune.run_config(run_dir)
-    cands_path = run_dir / "candidates.parquet"
+    cands_path = layout_of_run(run_dir).candidates
     if not cands_path.exists():
         raise InputError(f"{cands_path}: not found; the run in {run_dir} has not finished its merge")
     cands = read_parquet(cands_path)
-    cache = tune.load_cache(cfg, tune.needed_columns(cfg, plots=True, classifier=False))
+    cache = load_cache(cfg, tune.needed_columns(cfg, plots=True, classifier=False))
     ev = tune.evaluate(cache, cfg, use_classifier=False)
-    is_cand, pos = tune.find_rows(cache, cands.column("astro_id"))
+    is_cand, pos = find_rows(cache, cands.column("astro_id"))
     p_quasar = None
     if "p_quasar" in cands.column_names:
         p_all = cands.column("p_quasar").to_numpy(zero_copy_only=False).astype(float)
@@ -217,7 +217,7 @@ def build_report(run_dir: Path | str, top: int = 50) -> str:
 
 
 def write_report(run_dir: Path | str, out: Path | str | None = None, top: int = 50) -> Path:
-    """Write the report (atomically) to ``out``, by default ``<run_dir>/report.html``."""
+    """Write the report (atomically) to ``out``, by default the run's report file (:attr:`Layout.report`)."""
     run_dir = Path(run_dir)
-    path = Path(out) if out is not None else run_dir / "report.html"
+    path = Path(out) if out is not None else layout_of_run(run_dir).report
     return write_text(build_report(run_dir, top), path)

@@ -24,6 +24,8 @@ from __future__ import annotations
 from dataclasses import dataclass
 from pathlib import Path
 
+from selector.errors import InputError
+
 #: Per-tile files that hold the cross-match (they depend only on the match sections of the config).
 FEATURE_FILES = ("features.parquet", "infrared.parquet")
 #: Per-tile files that hold the selection (they also depend on the selection sections).
@@ -226,3 +228,18 @@ def targets_summary(cfg, *, new_only: bool = False) -> Path:
 def targets_file(cfg, kind: str) -> Path:
     """One of :data:`TARGETS_FILES` of ``selector targets``."""
     return targets_dir(cfg) / TARGETS_FILES[kind]
+
+
+def layout_of_run(run_dir: Path | str) -> Layout:
+    """The layout of the output folder that holds the run folder ``run_dir``, so a run can be read
+    from its folder alone.
+
+    A run folder is always ``<output_dir>/run`` (:attr:`Layout.run_dir`); a folder of another name is
+    refused rather than quietly read beside a sibling ``run``.
+    """
+    run_dir = Path(run_dir).resolve()
+    layout = Layout(run_dir.parent)
+    if layout.run_dir != run_dir:
+        raise InputError(f"{run_dir}: not a run folder (`selector run` writes its results, "
+                         f"{MERGED_FILES['provenance']} among them, to <output_dir>/{layout.run_dir.name})")
+    return layout
