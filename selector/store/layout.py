@@ -203,3 +203,8 @@ def weigh_outputs(cfg, spectra_file: Path | str) -> dict[str, Path]:
         name = name[:-3]
     stem = Path(name).stem
     return {kind: weigh_dir(cfg) / pattern.format(stem=stem) for kind, pattern in WEIGH_FILES.items()}
+
+
+#: The pictures of a classifier's evaluation, below ``classifier.output_folder``, in drawing order.
+TRAINING_PLOT_FILES = ("threshold_curves.png", "confusion_matrix.png", "calibration.png", "permutation_importance.png",
+                       "criteria_comparison.png")
