@@ -40,7 +40,7 @@ import pyarrow.parquet as pq
 from selector.core import selection, schema, tiles
 from selector.jobs.run import tile as tile_job
 from selector.settings.validate import suggest
-from selector.jobs.classify import load_scorer
+from selector.jobs.train import load_scorer
 from selector.settings.config import (
     MATCH_SECTIONS,
     SELECTION_SECTIONS,
