@@ -33,7 +33,9 @@ import pyarrow as pa
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
-from selector.jobs import classify  # noqa: E402
+from selector.jobs import train  # noqa: E402
+from selector.jobs.train.features import zero_motion  # noqa: E402
+from selector.jobs.train.model import make_estimator, thread_controller  # noqa: E402
 from selector.demo import mocksky as demo
 from selector.jobs.run.batch import run  # noqa: E402
 from selector.settings.config import load_config  # noqa: E402
@@ -57,7 +59,7 @@ def _mock(folder: Path, scale: float):
     return load_config(cfg_path)
 
 
-def _resampled(data: classify.LabelledSet, rows: int, seed: int) -> classify.LabelledSet:
+def _resampled(data: train.LabelledSet, rows: int, seed: int) -> train.LabelledSet:
     rng = np.random.default_rng(seed)
     idx = np.sort(rng.choice(len(data.y), rows, replace=True))
     spread = np.nanstd(data.X, axis=0)
@@ -66,7 +68,7 @@ def _resampled(data: classify.LabelledSet, rows: int, seed: int) -> classify.Lab
     table = pa.table({"astro_id": np.arange(1, rows + 1, dtype=np.int64), "tile": groups,
                       "label": data.table.column("label").take(pa.array(idx)),
                       "label_source": data.table.column("label_source").take(pa.array(idx))})
-    return classify.LabelledSet(table, X, data.y[idx], groups, data.feature_names, data.group_order, data.summary)
+    return train.LabelledSet(table, X, data.y[idx], groups, data.feature_names, data.group_order, data.summary)
 
 
 def main(argv=None) -> int:
@@ -82,19 +84,19 @@ def main(argv=None) -> int:
         cfg = _mock(folder, args.scale)
 
         t0 = time.perf_counter()
-        labelled = classify.collect_labelled(cfg)
+        labelled = train.collect_labelled(cfg)
         t_collect = time.perf_counter() - t0
         data = _resampled(labelled, args.rows, cfg.project.seed)
         c = cfg.classifier
         print(f"labelled set of the mock: {len(labelled.y):,d} rows collected in {t_collect:.1f} s; resampled to "
               f"{len(data.y):,d} rows, {data.X.shape[1]} features")
 
-        with classify._threads().limit(limits=c.threads or None):
+        with thread_controller().limit(limits=c.threads or None):
             t0 = time.perf_counter()
-            classify._estimator(cfg, cfg.project.seed).fit(data.X, data.y)
+            make_estimator(cfg, cfg.project.seed).fit(data.X, data.y)
             t_fit = time.perf_counter() - t0
         t0 = time.perf_counter()
-        result = classify.train_labelled(cfg, data, log=_quiet)
+        result = train.train_labelled(cfg, data, log=_quiet)
         t_train = time.perf_counter() - t0
         print(f"training, {len(data.y):,d} rows, {c.folds} folds, {c.max_iter} iterations, {c.threads or 'all'} "
               f"thread(s):")
@@ -109,10 +111,10 @@ def main(argv=None) -> int:
         p = model.score_table(features, cfg)
         t_score = time.perf_counter() - t0
         scored = np.isfinite(p)
-        passed, plx, chi2 = classify._zero_motion(features, cfg)
+        passed, plx, chi2 = zero_motion(features, cfg)
         idx = np.flatnonzero(passed)
-        X = classify.feature_matrix(features.take(pa.array(idx)), cfg, model.feature_names, (plx[idx], chi2[idx]))
-        with classify._threads().limit(limits=1):
+        X = train.feature_matrix(features.take(pa.array(idx)), cfg, model.feature_names, (plx[idx], chi2[idx]))
+        with thread_controller().limit(limits=1):
             t0 = time.perf_counter()
             model.estimator.predict_proba(X)
             t_bare = time.perf_counter() - t0

@@ -13,10 +13,11 @@ from pathlib import Path
 from typing import Callable, Sequence
 
 from selector.errors import ConfigError
-from selector.jobs import classify, ingest as ingest_job, targets as targets_job, tune as tune_job, weigh as weigh_job
+from selector.jobs import ingest as ingest_job, targets as targets_job, train as train_job, tune as tune_job, weigh as weigh_job
 from selector.jobs.run import batch
-from selector.present import plots, report as report_page
+from selector.present import plots, report as report_page, training_plots
 from selector.settings.config import Config, load_config
+from selector.store.layout import classifier_dir
 
 Log = Callable[[str], None]
 
@@ -48,9 +49,17 @@ def status(config, *, runs: int = 10, failed_only: bool = False) -> str:
     return batch.status_text(_config(config), runs=runs, failed_only=failed_only)
 
 
-def train(config, *, log: Log = print) -> classify.TrainResult:
-    """Train the quasar classifier on the labelled sources of the feature cache; write the model and its card."""
-    return classify.train(_config(config), log=log)
+def train(config, *, log: Log = print) -> train_job.TrainResult:
+    """Train the quasar classifier on the labelled sources of the feature cache; write the model and its card.
+
+    Also writes the evaluation's pictures beside the model (the job itself draws nothing).
+    """
+    cfg = _config(config)
+    result = train_job.train(cfg, log=log)
+    result.outputs.plots = training_plots.write_training_plots(result.evaluation, classifier_dir(cfg))
+    for line in train_job.written_lines(cfg, result):
+        log(line)
+    return result
 
 
 def tune(config: str | os.PathLike, *, settings: Sequence[str] = (), truth=None, plots_dir=None,

@@ -1,4 +1,4 @@
-"""Tests of the quasar classifier (selector.classify): features, labels, folds, calibration, model files.
+"""Tests of the quasar classifier (selector.jobs.train): features, labels, folds, calibration, model files.
 
 Figures measured on the mock sky are figures of that invented sky only; the checks on them are
 comparisons (classifier against the published criteria on the same held-out objects), not values
@@ -18,7 +18,10 @@ import pyarrow.compute as pc
 import pyarrow.parquet as pq
 import pytest
 
-from selector.jobs import classify
+from selector.jobs import train
+from selector.jobs.train import labels, modelfile
+from selector.jobs.train.features import zero_motion
+from selector.store import layout
 from selector.demo import mocksky as demo
 from selector.jobs.run.batch import run
 from selector.cli import main
@@ -52,7 +55,7 @@ def trained(tmp_path_factory):
     assert code == 0
     model_dir = cfg.output_dir / cfg.classifier.output_folder
     return {"cfg": cfg, "path": path, "dir": tmp, "stdout": out.getvalue(), "sky": sky,
-            "model": model_dir / classify.MODEL_FILE, "model_dir": model_dir}
+            "model": model_dir / layout.MODEL_FILE, "model_dir": model_dir}
 
 
 def _config(trained, **classifier):
@@ -78,10 +81,10 @@ def _synthetic(n=3000, seed=0, quasar_fraction=0.05, n_regions=40):
     X[rng.random(n) < 0.15, 3] = np.nan
     groups = rng.integers(0, n_regions, n).astype(np.int64)
     table = pa.table({"astro_id": np.arange(1, n + 1, dtype=np.int64), "tile": groups,
-                      "label": [classify.CLASSES[k] for k in y], "label_source": ["synthetic"] * n})
+                      "label": [train.CLASSES[k] for k in y], "label_source": ["synthetic"] * n})
     names = ["f_a", "f_b", "f_c", "f_d"]
-    summary = {"rows": n, "by_class": {c: int(np.sum(y == k)) for k, c in enumerate(classify.CLASSES)}}
-    return classify.LabelledSet(table, X, y.astype(np.int64), groups, names, 3, summary)
+    summary = {"rows": n, "by_class": {c: int(np.sum(y == k)) for k, c in enumerate(train.CLASSES)}}
+    return train.LabelledSet(table, X, y.astype(np.int64), groups, names, 3, summary)
 
 
 def _synthetic_config(tmp_path, seed=20261201, **classifier):
@@ -99,17 +102,17 @@ def _quiet(*args):
 
 def test_feature_list_follows_the_configuration(tmp_path):
     cfg = build(base_config(), tmp_path)
-    names = [f.name for f in classify.feature_specs(cfg)]
+    names = [f.name for f in train.feature_specs(cfg)]
     assert names == ["opt_broad_abmag", "ir_3p4_vegamag", "ir_4p6_vegamag", "ir_3p4_mag_error", "ir_4p6_mag_error",
                      "ir_3p4_minus_4p6_mag", "opt_broad_minus_ir_3p4_abmag", "opt_broad_minus_ir_4p6_abmag",
                      "parallax_snr", "pm_chi2", "sep_arcsec", "ir_blend_count"]
     data = base_config()
     data["astrometric"]["columns"]["fit_quality"] = "fitq"
     data["infrared"]["magnitudes"].append({"band": "12", "column": "m12"})
-    names = [f.name for f in classify.feature_specs(build(data, tmp_path))]
+    names = [f.name for f in train.feature_specs(build(data, tmp_path))]
     # the 12 micron band has no error column here, so no error feature either
     assert "fit_quality" in names and "ir_4p6_minus_12_mag" in names and "ir_12_mag_error" not in names
-    for spec in classify.feature_specs(build(data, tmp_path)):
+    for spec in train.feature_specs(build(data, tmp_path)):
         assert spec.unit == ("mag" if "mag" in spec.name else "arcsec" if spec.name.endswith("_arcsec") else "")
 
 
@@ -124,8 +127,8 @@ def test_missing_bands_stay_missing(tmp_path):
         "ir_3p4_vegamag": [15.0, 15.5], "ir_4p6_vegamag": [14.0, 14.9], "ir_12_vegamag": [np.nan, 11.0],
         "sep_arcsec": [0.3, 0.5], "ir_blend_count": [1, 2],
     })
-    names = [f.name for f in classify.feature_specs(cfg)]
-    X = classify.feature_matrix(table, cfg)
+    names = [f.name for f in train.feature_specs(cfg)]
+    X = train.feature_matrix(table, cfg)
     col = {n: X[:, i] for i, n in enumerate(names)}
     assert np.isnan(col["ir_12_vegamag"][0]) and np.isnan(col["ir_4p6_minus_12_mag"][0])
     assert col["ir_4p6_minus_12_mag"][1] == pytest.approx(3.9)
@@ -138,9 +141,9 @@ def test_missing_bands_stay_missing(tmp_path):
 
 
 def test_class_map_drops_unknown_labels_and_counts_them():
-    label, dropped = classify._map_classes(["QSO", " Star", "brown dwarf", "blazar", None, "Galaxy", "blazar"],
-                                           {"qso": "quasar", "star": "star", "brown_dwarf": "star",
-                                            "galaxy": "galaxy"})
+    label, dropped = labels.map_classes(["QSO", " Star", "brown dwarf", "blazar", None, "Galaxy", "blazar"],
+                                        {"qso": "quasar", "star": "star", "brown_dwarf": "star",
+                                         "galaxy": "galaxy"})
     assert label.tolist() == [0, 1, 1, -1, -1, 2, -1]
     assert dropped == {"(empty)": 1, "blazar": 2}
 
@@ -151,22 +154,22 @@ def test_grouped_folds_never_put_a_region_on_both_sides():
     rng = np.random.default_rng(3)
     groups = rng.integers(0, 60, 5000)
     y = rng.integers(0, 3, 5000)
-    fold = classify.grouped_folds(groups, y, 5, seed=11)
+    fold = train.grouped_folds(groups, y, 5, seed=11)
     assert set(fold.tolist()) == set(range(5))
     for k in range(5):
         assert not set(groups[fold == k]) & set(groups[fold != k])
-    assert np.array_equal(fold, classify.grouped_folds(groups, y, 5, seed=11))
-    assert not np.array_equal(fold, classify.grouped_folds(groups, y, 5, seed=12))
+    assert np.array_equal(fold, train.grouped_folds(groups, y, 5, seed=11))
+    assert not np.array_equal(fold, train.grouped_folds(groups, y, 5, seed=12))
 
 
 def test_too_few_regions_for_the_folds_is_one_line():
     with pytest.raises(SelectorError) as e:
-        classify.grouped_folds(np.array([1, 1, 2, 2]), np.array([0, 1, 2, 0]), 3, seed=1)
+        train.grouped_folds(np.array([1, 1, 2, 2]), np.array([0, 1, 2, 0]), 3, seed=1)
     assert "only 2 sky regions" in _one_line(e)
 
 
 def test_held_out_folds_never_split_a_tile_or_region(trained):
-    held = read_parquet(trained["model_dir"] / classify.PREDICTIONS_FILE).to_pandas()
+    held = read_parquet(trained["model_dir"] / layout.PREDICTIONS_FILE).to_pandas()
     cfg = trained["cfg"]
     assert held.groupby("tile").fold.nunique().max() == 1
     assert held.groupby("region").fold.nunique().max() == 1
@@ -182,69 +185,69 @@ def test_calibration_lowers_the_brier_score_on_held_out_data(tmp_path):
     data = _synthetic(quasar_fraction=0.05)
     for method in ("sigmoid", "isotonic"):
         cfg = _synthetic_config(tmp_path, calibration=method)
-        brier = classify.train_labelled(cfg, data, log=_quiet).evaluation["brier"]
-        assert brier["calibrated"] < brier["raw"], method
-        assert brier["quasar_calibrated"] < brier["quasar_raw"], method
+        brier = train.train_labelled(cfg, data, log=_quiet).evaluation.brier
+        assert brier.calibrated < brier.raw, method
+        assert brier.quasar_calibrated < brier.quasar_raw, method
 
 
 def test_same_seed_gives_the_same_model_and_predictions(tmp_path):
     data = _synthetic(n=2000)
     cfg = _synthetic_config(tmp_path)
-    first, second = (classify.train_labelled(cfg, data, log=_quiet) for _ in range(2))
+    first, second = (train.train_labelled(cfg, data, log=_quiet) for _ in range(2))
     probe = data.X[:500]
-    bytes_a = classify._model_bytes(first.model, probe)
-    bytes_b = classify._model_bytes(second.model, probe)
+    bytes_a = modelfile.model_bytes(first.model, probe)
+    bytes_b = modelfile.model_bytes(second.model, probe)
     assert bytes_a == bytes_b
     assert first.evaluation == second.evaluation
     assert first.held_out.to_pandas().equals(second.held_out.to_pandas())
-    built = classify._build(bytes_a, tmp_path / "m.skops")
-    back = classify.Model(built["estimator"], built["calibrators"], built["features"])
+    built = modelfile.build_bundle(bytes_a, tmp_path / "m.skops")
+    back = train.Model(built["estimator"], built["calibrators"], built["features"])
     assert np.array_equal(back.predict_proba(probe), first.model.predict_proba(probe))
-    other = classify.train_labelled(_synthetic_config(tmp_path, seed=7), data, log=_quiet)
-    assert classify._model_bytes(other.model, probe) != bytes_a
+    other = train.train_labelled(_synthetic_config(tmp_path, seed=7), data, log=_quiet)
+    assert modelfile.model_bytes(other.model, probe) != bytes_a
 
 
 def test_trusted_types_are_exactly_what_training_writes(tmp_path):
     data = _synthetic(n=1500, quasar_fraction=0.2)
     found = set()
     for method in ("sigmoid", "isotonic"):
-        result = classify.train_labelled(_synthetic_config(tmp_path, calibration=method), data, log=_quiet)
-        found |= set(classify._archive_types(classify._model_bytes(result.model, data.X[:100])))
-    assert found == set(classify.TRUSTED_TYPES)
+        result = train.train_labelled(_synthetic_config(tmp_path, calibration=method), data, log=_quiet)
+        found |= set(modelfile.archive_types(modelfile.model_bytes(result.model, data.X[:100])))
+    assert found == set(train.TRUSTED_TYPES)
 
 
 def test_purity_at_completeness_includes_ties_and_sorts_missing_last():
     score = np.array([0.9, 0.8, 0.8, 0.1, np.nan])
     positive = np.array([True, False, True, True, False])
-    r = classify.purity_at_completeness(score, positive, 2 / 3)
-    assert (r["selected"], r["completeness"], r["purity"]) == (3, 2 / 3, 2 / 3)
-    r = classify.purity_at_completeness(score, positive, 1.0)
-    assert (r["selected"], r["purity"]) == (4, 0.75)
+    r = train.purity_at_completeness(score, positive, 2 / 3)
+    assert (r.selected, r.completeness, r.purity) == (3, 2 / 3, 2 / 3)
+    r = train.purity_at_completeness(score, positive, 1.0)
+    assert (r.selected, r.purity) == (4, 0.75)
 
 
 # --- training on the mock sky --------------------------------------------------------------------
 
 def test_train_writes_model_card_evaluation_and_plots(trained):
     d = trained["model_dir"]
-    for name in (classify.MODEL_FILE, "quasar_classifier.card.json", classify.EVALUATION_FILE,
-                 classify.PREDICTIONS_FILE, *classify.PLOT_FILES):
+    for name in (layout.MODEL_FILE, "quasar_classifier.card.json", layout.EVALUATION_FILE,
+                 layout.PREDICTIONS_FILE, *layout.TRAINING_PLOT_FILES):
         assert (d / name).is_file(), name
-    for name in classify.PLOT_FILES:
+    for name in layout.TRAINING_PLOT_FILES:
         assert (d / name).read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
-    e = json.loads((d / classify.EVALUATION_FILE).read_text())
+    e = json.loads((d / layout.EVALUATION_FILE).read_text())
     assert e["classes"] == ["quasar", "star", "galaxy"]
     assert len(e["threshold_curves"]["threshold"]) == len(e["threshold_curves"]["quasar"]["purity"]) == 101
     counts = np.array(e["confusion_matrix"]["counts"])
     assert counts.sum() == e["rows"] and counts.sum(axis=1).tolist() == [e["by_class"][c] for c in e["classes"]]
     assert set(e["criteria"]) == {"stern2012", "assef2013_r90", "assef2018_r90", "assef2018_r75", "assef2018_c75",
                                   "mateos2012_wedge"}
-    assert len(e["permutation_importance"]["features"]) == len(classify.feature_specs(trained["cfg"]))
+    assert len(e["permutation_importance"]["features"]) == len(train.feature_specs(trained["cfg"]))
     assert "quasar purity at 95% completeness: classifier" in trained["stdout"]
     assert "best published criterion" in trained["stdout"]
 
 
 def test_model_card_describes_the_model(trained):
-    card = json.loads(classify.card_path(trained["model"]).read_text())
+    card = json.loads(layout.card_path(trained["model"]).read_text())
     cfg = trained["cfg"]
     assert card["model_sha256"] == hashlib.sha256(trained["model"].read_bytes()).hexdigest()
     assert card["config_hash"] == config_hash(cfg)
@@ -262,7 +265,7 @@ def test_model_card_describes_the_model(trained):
 
 def test_classifier_is_purer_than_the_best_published_criterion_at_95_percent_completeness(trained):
     """Mock figures: at 95 % quasar completeness, on the same held-out objects."""
-    e = json.loads((trained["model_dir"] / classify.EVALUATION_FILE).read_text())
+    e = json.loads((trained["model_dir"] / layout.EVALUATION_FILE).read_text())
     key = "at_95_percent_completeness"
     ours = e["quasar"][key]
     assert ours["completeness"] >= 0.95
@@ -273,8 +276,8 @@ def test_classifier_is_purer_than_the_best_published_criterion_at_95_percent_com
 
 
 def test_labelled_set_is_deterministic(trained):
-    a = classify.collect_labelled(trained["cfg"])
-    b = classify.collect_labelled(trained["cfg"])
+    a = train.collect_labelled(trained["cfg"])
+    b = train.collect_labelled(trained["cfg"])
     # pandas' equals treats NaN in the same place as equal; pyarrow's does not
     assert a.table.schema.equals(b.table.schema) and a.table.to_pandas().equals(b.table.to_pandas())
     assert np.array_equal(a.X, b.X, equal_nan=True) and np.array_equal(a.y, b.y)
@@ -282,20 +285,20 @@ def test_labelled_set_is_deterministic(trained):
 
 
 def test_outcome_labels_win_over_catalogue_labels(trained, monkeypatch):
-    from selector.jobs import targets as followup
+    from selector.store import history
 
-    base = classify.collect_labelled(trained["cfg"])
+    base = train.collect_labelled(trained["cfg"])
     quasars = base.table.filter(pc.equal(base.table.column("label"), "quasar")).column("astro_id").slice(0, 5)
     outcomes = pa.table({"astro_id": quasars, "label": ["galaxy"] * 5, "redshift": [None] * 5})
-    monkeypatch.setattr(followup, "training_labels", lambda cfg: outcomes)
-    data = classify.collect_labelled(trained["cfg"])
+    monkeypatch.setattr(history, "training_labels", lambda cfg: outcomes)
+    data = train.collect_labelled(trained["cfg"])
     rows = data.table.filter(pc.is_in(data.table.column("astro_id"), value_set=quasars.combine_chunks()))
     assert rows.column("label").to_pylist() == ["galaxy"] * 5
     assert set(rows.column("label_source").to_pylist()) == {"follow-up outcomes"}
     assert data.summary["conflicting_labels"] >= 5
     assert data.summary["precedence"][0] == "follow-up outcomes"
     monkeypatch.undo()  # the real history: no outcome recorded, so the catalogue labels stand
-    assert classify.collect_labelled(trained["cfg"]).summary == base.summary
+    assert train.collect_labelled(trained["cfg"]).summary == base.summary
 
 
 def test_positional_labels_agree_with_identifier_labels(trained, tmp_path):
@@ -304,8 +307,8 @@ def test_positional_labels_agree_with_identifier_labels(trained, tmp_path):
     pq.write_table(astro.select(["true_ra", "true_dec", "population"]), trained["dir"] / "positions.parquet")
     cfg = _config(trained, labels={"file": "positions.parquet", "ra_column": "true_ra", "dec_column": "true_dec",
                                    "class_column": "population"}, use_known=False)
-    by_position = classify.collect_labelled(cfg)
-    by_id = classify.collect_labelled(_config(trained, use_known=False))
+    by_position = train.collect_labelled(cfg)
+    by_id = train.collect_labelled(_config(trained, use_known=False))
     a = dict(zip(by_position.table.column("astro_id").to_pylist(), by_position.table.column("label").to_pylist()))
     b = dict(zip(by_id.table.column("astro_id").to_pylist(), by_id.table.column("label").to_pylist()))
     shared = set(a) & set(b)
@@ -316,21 +319,21 @@ def test_positional_labels_agree_with_identifier_labels(trained, tmp_path):
 def test_training_needs_every_class(trained):
     # the known-objects catalogue alone holds bright stars that all move and only a few galaxies
     cfg = _config(trained, labels=None)
-    data = classify.collect_labelled(cfg)
+    data = train.collect_labelled(cfg)
     with pytest.raises(SelectorError) as e:
-        classify.train_labelled(cfg, data, log=_quiet)
+        train.train_labelled(cfg, data, log=_quiet)
     assert "pass the zero-motion test" in _one_line(e) and "labels" in _one_line(e)
 
 
 def test_train_without_feature_cache_or_with_a_stale_one_is_one_line(trained, tmp_path):
     data = tomllib.loads(trained["path"].read_text())
     with pytest.raises(SelectorError) as e:
-        classify.collect_labelled(from_dict({**data, "project": {"output_dir": str(tmp_path / "none")}},
+        train.collect_labelled(from_dict({**data, "project": {"output_dir": str(tmp_path / "none")}},
                                             trained["dir"]))
     assert "no feature cache" in _one_line(e)
     data["match"]["radius_arcsec"] = 1.5
     with pytest.raises(SelectorError) as e:
-        classify.collect_labelled(from_dict(data, trained["dir"]))
+        train.collect_labelled(from_dict(data, trained["dir"]))
     assert "run `selector run" in _one_line(e)
 
 
@@ -341,14 +344,14 @@ def model_copy(trained, tmp_path):
     """A copy of the trained model and its card, to damage."""
     path = tmp_path / "copy.skops"
     path.write_bytes(trained["model"].read_bytes())
-    classify.card_path(path).write_text(classify.card_path(trained["model"]).read_text())
+    layout.card_path(path).write_text(layout.card_path(trained["model"]).read_text())
     return path
 
 
 def _rewrite(path, data: bytes, update_card: bool = True):
     path.write_bytes(data)
     if update_card:
-        cp = classify.card_path(path)
+        cp = layout.card_path(path)
         card = json.loads(cp.read_text())
         card["model_sha256"] = hashlib.sha256(data).hexdigest()
         cp.write_text(json.dumps(card))
@@ -359,12 +362,12 @@ class NotAModelPart:
 
 
 def test_model_loads_and_scores(trained, model_copy):
-    model = classify.load_model(model_copy, trained["cfg"])
+    model = train.load_model(model_copy, trained["cfg"])
     features = read_parquet(sorted((trained["cfg"].run_dir / "tiles").glob("tile*/features.parquet"))[0])
-    p = classify.load_scorer(model_copy, trained["cfg"])(features)
-    passed, _, _ = classify._zero_motion(features, trained["cfg"])
+    p = train.load_scorer(model_copy, trained["cfg"])(features)
+    passed, _, _ = zero_motion(features, trained["cfg"])
     assert np.all(np.isnan(p[~passed])) and np.all((p[passed] >= 0) & (p[passed] <= 1))
-    assert model.feature_names == [f.name for f in classify.feature_specs(trained["cfg"])]
+    assert model.feature_names == [f.name for f in train.feature_specs(trained["cfg"])]
 
 
 @pytest.mark.parametrize("intruder", ["estimator_of_another_kind", "type_of_our_own"])
@@ -372,7 +375,7 @@ def test_untrusted_type_inside_is_refused(trained, model_copy, intruder):
     import skops.io as sio
     from sklearn.svm import SVC
 
-    bundle = classify._build(model_copy.read_bytes(), model_copy)
+    bundle = modelfile.build_bundle(model_copy.read_bytes(), model_copy)
     if intruder == "estimator_of_another_kind":
         bundle["calibrators"][0] = SVC()
         expected = "sklearn.svm._classes.SVC"
@@ -381,7 +384,7 @@ def test_untrusted_type_inside_is_refused(trained, model_copy, intruder):
         expected = "NotAModelPart"
     _rewrite(model_copy, sio.dumps(bundle))
     with pytest.raises(SelectorError) as e:
-        classify.load_model(model_copy, trained["cfg"])
+        train.load_model(model_copy, trained["cfg"])
     message = _one_line(e)
     assert str(model_copy) in message and "untrusted type" in message and expected in message
 
@@ -390,11 +393,11 @@ def test_truncated_or_changed_file_is_refused(trained, model_copy):
     data = model_copy.read_bytes()
     _rewrite(model_copy, data[: len(data) // 2], update_card=False)
     with pytest.raises(SelectorError) as e:
-        classify.load_model(model_copy, trained["cfg"])
+        train.load_model(model_copy, trained["cfg"])
     assert "differs from the one its card describes" in _one_line(e)
     _rewrite(model_copy, data[: len(data) // 2], update_card=True)
     with pytest.raises(SelectorError) as e:
-        classify.load_model(model_copy, trained["cfg"])
+        train.load_model(model_copy, trained["cfg"])
     assert str(model_copy) in _one_line(e) and "not a readable model file" in _one_line(e)
 
 
@@ -405,20 +408,20 @@ def test_foreign_files_are_refused(trained, model_copy):
     cfg = trained["cfg"]
     _rewrite(model_copy, pickle.dumps({"estimator": "anything"}))
     with pytest.raises(SelectorError) as e:
-        classify.load_model(model_copy, cfg)
+        train.load_model(model_copy, cfg)
     assert "not a readable model file" in _one_line(e)
     lr = LogisticRegression().fit(np.arange(10.0)[:, None], np.arange(10) % 2)
     _rewrite(model_copy, sio.dumps(lr))
     with pytest.raises(SelectorError) as e:
-        classify.load_model(model_copy, cfg)
+        train.load_model(model_copy, cfg)
     assert "not a model written by `selector train`" in _one_line(e)
-    classify.card_path(model_copy).write_text(json.dumps({"format": "something else"}))
+    layout.card_path(model_copy).write_text(json.dumps({"format": "something else"}))
     with pytest.raises(SelectorError) as e:
-        classify.load_model(model_copy, cfg)
+        train.load_model(model_copy, cfg)
     assert "not a model card" in _one_line(e)
-    classify.card_path(model_copy).unlink()
+    layout.card_path(model_copy).unlink()
     with pytest.raises(SelectorError) as e:
-        classify.load_model(model_copy, cfg)
+        train.load_model(model_copy, cfg)
     assert "model card not found" in _one_line(e)
 
 
@@ -427,17 +430,17 @@ def test_feature_mismatch_is_refused(trained, model_copy):
     no_fit = json.loads(json.dumps(data))
     del no_fit["astrometric"]["columns"]["fit_quality"]
     with pytest.raises(SelectorError) as e:
-        classify.load_scorer(model_copy, from_dict(no_fit, trained["dir"]))
+        train.load_scorer(model_copy, from_dict(no_fit, trained["dir"]))
     assert "needs fit_quality" in _one_line(e)
     no_22 = json.loads(json.dumps(data))
     no_22["infrared"]["magnitudes"] = [m for m in no_22["infrared"]["magnitudes"] if m["band"] != "22"]
     with pytest.raises(SelectorError) as e:
-        classify.load_model(model_copy, from_dict(no_22, trained["dir"]))
+        train.load_model(model_copy, from_dict(no_22, trained["dir"]))
     assert "ir_22_vegamag" in _one_line(e) and "ir_12_minus_22_mag" in _one_line(e)
     moved = json.loads(json.dumps(data))
     moved["motion"]["parallax_zero_point_mas"] = 0.0
     with pytest.raises(SelectorError) as e:
-        classify.load_model(model_copy, from_dict(moved, trained["dir"]))
+        train.load_model(model_copy, from_dict(moved, trained["dir"]))
     assert "motion.parallax_zero_point_mas" in _one_line(e)
 
 
@@ -455,7 +458,7 @@ def test_run_with_a_model_ranks_candidates_by_p_quasar(trained):
     p = np.asarray(t["p_quasar"])
     assert np.all(np.diff(p) <= 0) and np.all(p >= cfg.classifier.threshold)
     # the list carries the model's own probabilities
-    scorer = classify.load_scorer(trained["model"], cfg)
+    scorer = train.load_scorer(trained["model"], cfg)
     features = pa.concat_tables([read_parquet(f) for f in sorted((cfg.run_dir / "tiles").glob("tile*/features.parquet"))])
     ids = features.column("astro_id").to_numpy()
     p_all = scorer(features)

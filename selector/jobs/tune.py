@@ -40,7 +40,7 @@ from selector.core import schema, selection
 from selector.core.metrics import Score, completeness_purity
 from selector.core.photometry import CRITERIA
 from selector.errors import ConfigError, InputError, SelectorError
-from selector.jobs.classify import load_scorer
+from selector.jobs.train import load_scorer
 from selector.jobs.run import batch
 from selector.settings.config import (
     MATCH_SECTIONS,

@@ -243,3 +243,8 @@ def layout_of_run(run_dir: Path | str) -> Layout:
         raise InputError(f"{run_dir}: not a run folder (`selector run` writes its results, "
                          f"{MERGED_FILES['provenance']} among them, to <output_dir>/{layout.run_dir.name})")
     return layout
+
+
+#: The pictures of a classifier's evaluation, below ``classifier.output_folder``, in drawing order.
+TRAINING_PLOT_FILES = ("threshold_curves.png", "confusion_matrix.png", "calibration.png", "permutation_importance.png",
+                       "criteria_comparison.png")

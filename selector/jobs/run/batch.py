@@ -50,6 +50,7 @@ from selector.core.selection import check_accounting, rank_candidates
 from selector.store.tilereader import load_tile
 from selector.core.tilematch import match_tile
 from selector.jobs.run.tile import select_tile, tile_output_dir
+from selector.jobs.train import load_scorer
 
 
 #: Files of a tile that depend only on the matching (the feature cache).
@@ -214,8 +215,6 @@ def _scorer(cfg: Config, model: tuple[str, str] | None):
     if model is None:
         return None
     if model not in _SCORERS:
-        from selector.jobs.classify import load_scorer
-
         _SCORERS.clear()
         _SCORERS[model] = load_scorer(model[0], cfg)
     return _SCORERS[model]

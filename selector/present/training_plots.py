@@ -1,0 +1,129 @@
+"""Pictures of a classifier's held-out evaluation: threshold curves, confusion matrix, calibration,
+permutation importance, and the classifier against the published criteria.
+
+Figures are drawn on the Agg canvas (no display, no global pyplot state) and saved without the
+software tag, so the same evaluation gives the same bytes.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import numpy as np
+
+from selector.jobs.train.evaluation import COMPLETENESS_TARGET, TrainingEvaluation
+from selector.store.io import atomic_path
+from selector.store.layout import TRAINING_PLOT_FILES
+
+__all__ = ["write_training_plots"]
+
+
+def _save_png(fig, path: Path) -> None:
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+
+    FigureCanvasAgg(fig)
+    with atomic_path(path) as tmp:
+        fig.savefig(tmp, format="png", dpi=110, metadata={"Software": None})
+
+
+def _nan(values) -> np.ndarray:
+    """None (an undefined ratio) as NaN, which the plots leave out."""
+    return np.array([np.nan if v is None else v for v in values], float)
+
+
+def write_training_plots(evaluation: TrainingEvaluation, out_dir: Path) -> list[Path]:
+    """Draw the evaluation as PNG files in ``out_dir`` (named by :data:`~selector.store.layout.TRAINING_PLOT_FILES`).
+
+    Parameters
+    ----------
+    evaluation : TrainingEvaluation
+        The held-out figures of a training.
+    out_dir : pathlib.Path
+        The classifier's output folder.
+
+    Returns
+    -------
+    list of pathlib.Path
+        The files written, in drawing order.
+    """
+    from matplotlib.figure import Figure
+
+    out_dir = Path(out_dir)
+    paths = []
+    e = evaluation
+    classes = e.classes
+    thr = np.asarray(e.thresholds)
+
+    fig = Figure(figsize=(11, 3.6))
+    for i, name in enumerate(classes):
+        ax = fig.add_subplot(1, 3, i + 1)
+        ax.plot(thr, _nan(e.threshold_curves[name].completeness), label="completeness")
+        ax.plot(thr, _nan(e.threshold_curves[name].purity), label="purity")
+        ax.axvline(e.threshold, color="0.6", lw=0.8, ls="--")
+        ax.set(title=name, xlabel=f"threshold on P({name})", ylim=(0, 1.02))
+        if i == 0:
+            ax.legend(loc="lower left")
+    fig.suptitle("held-out completeness and purity")
+    fig.tight_layout()
+    paths.append(out_dir / TRAINING_PLOT_FILES[0])
+    _save_png(fig, paths[-1])
+
+    fig = Figure(figsize=(4.8, 4.2))
+    ax = fig.add_subplot(1, 1, 1)
+    counts = np.asarray(e.confusion_counts, float)
+    frac = counts / np.maximum(counts.sum(axis=1, keepdims=True), 1)
+    ax.imshow(frac, vmin=0, vmax=1, cmap="Blues")
+    for r in range(len(classes)):
+        for c in range(len(classes)):
+            ax.text(c, r, f"{int(counts[r, c]):,d}\n{frac[r, c]:.1%}", ha="center", va="center",
+                    color="white" if frac[r, c] > 0.5 else "black", fontsize=8)
+    ax.set(xticks=range(len(classes)), yticks=range(len(classes)), xticklabels=classes, yticklabels=classes,
+           xlabel="most probable class", ylabel="true class", title="held-out confusion matrix")
+    fig.tight_layout()
+    paths.append(out_dir / TRAINING_PLOT_FILES[1])
+    _save_png(fig, paths[-1])
+
+    fig = Figure(figsize=(11, 3.6))
+    for i, name in enumerate(classes):
+        ax = fig.add_subplot(1, 3, i + 1)
+        ax.plot([0, 1], [0, 1], color="0.7", lw=0.8)
+        curves = e.calibration_curves[name]
+        for kind, cc, style in (("raw", curves.raw, "o--"), ("calibrated", curves.calibrated, "s-")):
+            ax.plot(_nan(cc.mean_predicted), _nan(cc.observed_fraction), style, ms=3, label=kind)
+        ax.set(title=name, xlabel=f"predicted P({name})", ylabel="observed fraction", xlim=(0, 1), ylim=(0, 1))
+        if i == 0:
+            ax.legend(loc="upper left")
+    fig.suptitle("calibration on held-out folds")
+    fig.tight_layout()
+    paths.append(out_dir / TRAINING_PLOT_FILES[2])
+    _save_png(fig, paths[-1])
+
+    pi = e.importance
+    fig = Figure(figsize=(6.4, 0.25 * len(pi.features) + 1.2))
+    ax = fig.add_subplot(1, 1, 1)
+    ypos = np.arange(len(pi.features))[::-1]
+    ax.barh(ypos, _nan(pi.mean), xerr=_nan(pi.std), color="tab:blue")
+    ax.set(yticks=ypos, yticklabels=pi.features, xlabel="drop in average precision of P(quasar)",
+           title="permutation importance (held-out folds)")
+    ax.tick_params(axis="y", labelsize=7)
+    fig.tight_layout()
+    paths.append(out_dir / TRAINING_PLOT_FILES[3])
+    _save_png(fig, paths[-1])
+
+    fig = Figure(figsize=(6.0, 4.6))
+    ax = fig.add_subplot(1, 1, 1)
+    qc = e.threshold_curves["quasar"]
+    ax.plot(_nan(qc.completeness), _nan(qc.purity), "-", color="k", label="classifier P(quasar)")
+    for name, res in e.criteria.items():
+        b = res.at_published_boundary
+        # an undefined ratio (no quasar, or nothing selected) has no point to draw
+        if np.isfinite(b.completeness) and np.isfinite(b.purity):
+            ax.plot([b.completeness], [b.purity], "o", label=f"{name} (published boundary)")
+    ax.axvline(COMPLETENESS_TARGET, color="0.6", lw=0.8, ls="--")
+    ax.set(xlabel="quasar completeness", ylabel="quasar purity", xlim=(0, 1.01), ylim=(0, 1.01),
+           title="classifier against the published criteria (held out)")
+    ax.legend(loc="lower left", fontsize=7)
+    fig.tight_layout()
+    paths.append(out_dir / TRAINING_PLOT_FILES[4])
+    _save_png(fig, paths[-1])
+    return paths
