@@ -80,7 +80,7 @@ def _text_ids(col) -> np.ndarray:
 
 
 def compare(candidate_ids, truth: pa.Table, astro: pa.Table, infrared: pa.Table, limits: dict,
-            magnitude_column: str, bins) -> TruthReport:
+            *, magnitude_column: str, bins) -> TruthReport:
     """Compare candidate ids with the truth.
 
     Parameters

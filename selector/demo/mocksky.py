@@ -1298,7 +1298,7 @@ def evaluate_run(cfg, truth_path) -> "object":
 
     candidates = read_parquet(cfg.run_dir / "candidates.parquet", columns=["astro_id"])
     return compare(candidates.column("astro_id"), pq.read_table(truth_path), whole("astrometric"),
-                   whole("infrared"), COMPLETENESS, "opt_broad_abmag", RECOVERY_BINS_ABMAG)
+                   whole("infrared"), COMPLETENESS, magnitude_column="opt_broad_abmag", bins=RECOVERY_BINS_ABMAG)
 
 
 def run_demo(out_dir, seed: int = 1, scale: float = 1.0, workers=None, log=print):

@@ -143,7 +143,7 @@ def _limits(values: np.ndarray, default: tuple[float, float], pad: float = 0.05)
     return lo - pad * span, hi + pad * span
 
 
-def _density(ax, x, y, xlim, ylim, bins=120, label="matched sources"):
+def _density(ax, x, y, xlim, ylim, *, bins=120, label="matched sources"):
     from matplotlib.colors import LogNorm
 
     ok = np.isfinite(x) & np.isfinite(y)

@@ -20,6 +20,8 @@ from typing import Optional
 import astropy.units as u
 
 from selector.core import blackhole, luminosity, schema
+from selector.core.photometry import CRITERIA
+from selector.core.tiles import max_margin_arcsec
 from selector.settings.validate import build, convert, setting, suggest, to_plain
 from selector.errors import ConfigError
 
@@ -516,8 +518,6 @@ def _quantity_names(cfg: Config) -> set[str]:
 
 
 def _check_selection(cfg: Config) -> None:
-    from selector.core.photometry import CRITERIA
-
     for i, name in enumerate(cfg.colours.criteria):
         if name not in CRITERIA:
             raise ConfigError(f"colours.criteria[{i}] = {name!r} is not a known criterion; choose from "
@@ -559,8 +559,6 @@ def _check_targets(cfg: Config) -> None:
 
 
 def _check_margin(cfg: Config) -> None:
-    from selector.core.tiles import max_margin_arcsec
-
     shift = cfg.match.max_proper_motion_mas_yr * abs(cfg.epoch_difference_yr) / 1000.0
     need = cfg.match.radius_arcsec + shift
     allowed = max_margin_arcsec(cfg.tiling.order)
