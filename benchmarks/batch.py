@@ -31,10 +31,12 @@ from pathlib import Path
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
-from selector.jobs.run import batch  # noqa: E402
+from selector.jobs import run as run_job  # noqa: E402
+from selector.jobs.run.plan import tile_rel  # noqa: E402
 from selector.demo import mocksky as demo
 from selector.settings.config import load_config  # noqa: E402
 from selector.jobs.ingest import ingest  # noqa: E402
+from selector.store.layout import layout_of  # noqa: E402
 from selector.store.manifest import Manifest  # noqa: E402
 
 
@@ -68,9 +70,9 @@ def cpu_reference(jobs: int = 4) -> float:
 
 def _timed_run(cfg, **kwargs):
     t0 = time.perf_counter()
-    result = batch.run(cfg, quiet=True, log=_quiet, force=True, **kwargs)
+    result = run_job.run(cfg, quiet=True, log=_quiet, force=True, **kwargs)
     total = time.perf_counter() - t0
-    with Manifest(cfg.run_dir / "manifest.sqlite") as man:
+    with Manifest(layout_of(cfg).manifest) as man:
         work = man.run(result.run_id)["work_s"]
     return result, total, work
 
@@ -142,13 +144,15 @@ def main():
                   f"{ref_work / work:>15.2f}x {(ref_work / work) / (reference if n == 2 else 1.0):>21.2f}")
 
         # --- the manifest's overhead ------------------------------------------------------------
-        with Manifest(cfg.run_dir / "manifest.sqlite") as man:
+        with Manifest(layout_of(cfg).manifest) as man:
             durations = [r["duration_s"] for r in man.tiles().values() if r["duration_s"]]
         median_tile = statistics.median(durations)
-        with Manifest(cfg.run_dir / "bench-manifest.sqlite") as man:
+        # a scratch manifest beside the real one, so it lives on the same file system
+        scratch = layout_of(cfg).manifest
+        with Manifest(scratch.with_name("bench-" + scratch.name)) as man:
             run_id = man.begin_run(pid=0)
             n_rec = 300
-            inputs = [f"infrared/order{args.order:02d}/tile{i:08d}.parquet" for i in range(18)]
+            inputs = [tile_rel(cfg, "infrared", i) for i in range(18)]
             t0 = time.perf_counter()
             for t in range(n_rec):
                 man.record_tile(run_id, t, "computed", status="done", match_key="m" * 64, selection_key="s" * 64,
@@ -157,7 +161,7 @@ def main():
                                 cutflow=[["input", 1000], ["matched", 600]], duration_s=0.1)
             per_record = (time.perf_counter() - t0) / n_rec
         t0 = time.perf_counter()
-        idle = batch.run(cfg, workers=2, quiet=True, log=_quiet)
+        idle = run_job.run(cfg, workers=2, quiet=True, log=_quiet)
         idle_s = time.perf_counter() - t0
         assert idle.actions["computed"] == 0
         print()

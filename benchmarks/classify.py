@@ -37,7 +37,7 @@ from selector.jobs import train  # noqa: E402
 from selector.jobs.train.features import zero_motion  # noqa: E402
 from selector.jobs.train.model import make_estimator, thread_controller  # noqa: E402
 from selector.demo import mocksky as demo
-from selector.jobs.run.batch import run  # noqa: E402
+from selector.jobs.run import run  # noqa: E402
 from selector.settings.config import load_config  # noqa: E402
 from selector.jobs.ingest import ingest  # noqa: E402
 from selector.store.io import read_parquet  # noqa: E402

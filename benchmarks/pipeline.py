@@ -96,7 +96,7 @@ def config(folder: Path, order: int, workers: int, out: str):
 
 
 def measure(n: int, area: float, order: int, workers: int):
-    from selector.jobs.run.batch import run
+    from selector.jobs.run import run
     from selector.jobs.ingest import ingest
 
     with tempfile.TemporaryDirectory() as tmp:

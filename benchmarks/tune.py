@@ -39,7 +39,7 @@ import pyarrow.parquet as pq
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
-from selector.jobs.run import batch  # noqa: E402
+from selector.jobs import run as run_job  # noqa: E402
 from selector.jobs import ingest, tune
 from selector.settings.config import load_config  # noqa: E402
 
@@ -175,7 +175,7 @@ def main(argv=None) -> int:
             cfg = load_config(config_path)
             _timed("ingest (both catalogues)", lambda: ingest.ingest(cfg, log=lambda *a: None))
             _, t_full = _timed("full run (load, match, select, write, merge)",
-                               lambda: batch.run(cfg, quiet=True, log=lambda *a: None))
+                               lambda: run_job.run(cfg, quiet=True, log=lambda *a: None))
         cfg = load_config(config_path)
         # a change from what the run records (a kept folder may already hold an earlier change)
         recorded_cfg, _ = tune.run_config(cfg.run_dir, base_dir=folder)

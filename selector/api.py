@@ -14,7 +14,7 @@ from typing import Callable, Sequence
 
 from selector.errors import ConfigError
 from selector.jobs import ingest as ingest_job, targets as targets_job, train as train_job, tune as tune_job, weigh as weigh_job
-from selector.jobs.run import batch
+from selector.jobs import run as run_job
 from selector.present import plots, report as report_page, training_plots
 from selector.settings.config import Config, load_config
 from selector.store.layout import classifier_dir
@@ -37,16 +37,16 @@ def ingest(config, *, log: Log = print) -> dict:
 
 
 def run(config, *, workers: int | None = None, executor: str | None = None, scheduler: str | None = None,
-        quiet: bool = False, verbose: bool = False, force: bool = False, log: Log = print) -> batch.RunResult:
+        quiet: bool = False, verbose: bool = False, force: bool = False, log: Log = print) -> run_job.RunResult:
     """Bring the run folder up to date: cross-match, test and rank every tile, merge the ranked list."""
     config_path = None if isinstance(config, Config) else config
-    return batch.run(_config(config), workers=workers, executor=executor, scheduler=scheduler, quiet=quiet,
-                     verbose=verbose, log=log, force=force, config_path=config_path)
+    return run_job.run(_config(config), workers=workers, executor=executor, scheduler=scheduler, quiet=quiet,
+                       verbose=verbose, log=log, force=force, config_path=config_path)
 
 
 def status(config, *, runs: int = 10, failed_only: bool = False) -> str:
     """A plain-text view of the run manifest."""
-    return batch.status_text(_config(config), runs=runs, failed_only=failed_only)
+    return run_job.status_text(_config(config), runs=runs, failed_only=failed_only)
 
 
 def train(config, *, log: Log = print) -> train_job.TrainResult:

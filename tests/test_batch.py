@@ -20,13 +20,15 @@ import pyarrow.compute as pc
 import pyarrow.parquet as pq
 import pytest
 
-from selector.jobs.run import batch
+from selector.jobs import run as run_job
+from selector.jobs.run.merge import TileSummary
+from selector.jobs.run.progress import Reporter
 from selector import cli
 from selector.demo import mocksky as demo
-from selector.core import tiles
 from selector.settings.config import load_config
 from selector.errors import SelectorError
 from selector.jobs.ingest import ingest
+from selector.store.layout import layout_of
 from selector.store.manifest import Manifest
 
 MERGED = ("candidates.ecsv", "candidates.csv", "candidates.parquet", "cutflow.csv", "provenance.json")
@@ -37,11 +39,12 @@ def _quiet(*args, **kwargs):
 
 
 def _merged_bytes(cfg) -> dict:
-    return {name: (cfg.run_dir / name).read_bytes() for name in MERGED}
+    return {name: (layout_of(cfg).run_dir / name).read_bytes() for name in MERGED}
 
 
 def _tile_files(cfg) -> dict:
-    return {p.relative_to(cfg.run_dir): p for p in sorted((cfg.run_dir / "tiles").rglob("*")) if p.is_file()}
+    lay = layout_of(cfg)
+    return {p.relative_to(lay.run_dir): p for p in sorted(lay.run_tiles_dir.rglob("*")) if p.is_file()}
 
 
 def _tile_bytes(cfg) -> dict:
@@ -68,7 +71,7 @@ def reference(template, tmp_path_factory) -> dict:
     root = tmp_path_factory.mktemp("batch") / "reference"
     shutil.copytree(template, root)
     cfg = load_config(root / "demo.toml")
-    result = batch.run(cfg, workers=2, quiet=True, log=_quiet)
+    result = run_job.run(cfg, workers=2, quiet=True, log=_quiet)
     assert result.ok and result.actions["computed"] == result.tiles > 20
     return {"root": root, "result": result, "merged": _merged_bytes(cfg), "tiles": _tile_bytes(cfg)}
 
@@ -87,9 +90,9 @@ def finished(reference, tmp_path):
 
 def _cli_run(config: Path, kill_at: str | None, workers: int = 2) -> subprocess.CompletedProcess:
     env = dict(os.environ)
-    env.pop(batch.KILL_AT_ENV, None)
+    env.pop(run_job.KILL_AT_ENV, None)
     if kill_at:
-        env[batch.KILL_AT_ENV] = kill_at
+        env[run_job.KILL_AT_ENV] = kill_at
     return subprocess.run([sys.executable, "-m", "selector.cli", "run", "--config", str(config), "--workers",
                            str(workers), "--quiet"], env=env, capture_output=True, text=True, timeout=120)
 
@@ -103,27 +106,28 @@ def test_killed_runs_resume_to_identical_outputs(template, reference, tmp_path):
     # 1: the first tile's files are written, but it is not yet recorded
     proc = _cli_run(config, "tile@1")
     assert proc.returncode == -9, proc.stderr
-    with Manifest(cfg.run_dir / "manifest.sqlite") as man:
+    with Manifest(layout_of(cfg).manifest) as man:
         assert man.counts()["done"] == 0 and man.counts()["pending"] == n_tiles
         assert man.runs()[0]["status"] == "running"
 
     # 2: mid-way, right after the 25th tile is recorded
     proc = _cli_run(config, "recorded@25")
     assert proc.returncode == -9, proc.stderr
-    with Manifest(cfg.run_dir / "manifest.sqlite") as man:
+    with Manifest(layout_of(cfg).manifest) as man:
         assert man.counts()["done"] == 25
-    assert not (cfg.run_dir / "candidates.ecsv").exists()
+    assert not (layout_of(cfg).run_dir / "candidates.ecsv").exists()
 
     # 3: during the merge, after the ECSV list and before the CSV one
     proc = _cli_run(config, "merge:ecsv")
     assert proc.returncode == -9, proc.stderr
-    assert (cfg.run_dir / "candidates.ecsv").exists() and not (cfg.run_dir / "candidates.csv").exists()
+    run_dir = layout_of(cfg).run_dir
+    assert (run_dir / "candidates.ecsv").exists() and not (run_dir / "candidates.csv").exists()
 
     proc = _cli_run(config, None)
     assert proc.returncode == 0, proc.stdout + proc.stderr
     assert _merged_bytes(cfg) == reference["merged"]
     assert _tile_bytes(cfg) == reference["tiles"]
-    with Manifest(cfg.run_dir / "manifest.sqlite") as man:
+    with Manifest(layout_of(cfg).manifest) as man:
         runs = man.runs()
         assert [r["status"] for r in reversed(runs)] == ["died", "died", "died", "ok"]
         assert runs[0]["computed"] == 0  # every tile was recorded before the merge was killed
@@ -134,20 +138,20 @@ def test_killed_runs_resume_to_identical_outputs(template, reference, tmp_path):
 
 def test_unchanged_rerun_does_no_tile_work(finished, reference):
     before = _mtimes(finished)
-    merged_before = {n: (finished.run_dir / n).stat().st_mtime_ns for n in MERGED}
-    result = batch.run(finished, workers=2, quiet=True, log=_quiet)
+    merged_before = {n: (layout_of(finished).run_dir / n).stat().st_mtime_ns for n in MERGED}
+    result = run_job.run(finished, workers=2, quiet=True, log=_quiet)
     assert result.ok
     assert result.actions == {"computed": 0, "reselected": 0, "verified": 0, "failed": 0,
                               "reused": reference["result"].tiles}
     assert not result.merged
     assert _mtimes(finished) == before
-    assert {n: (finished.run_dir / n).stat().st_mtime_ns for n in MERGED} == merged_before
+    assert {n: (layout_of(finished).run_dir / n).stat().st_mtime_ns for n in MERGED} == merged_before
     assert _merged_bytes(finished) == reference["merged"]
 
 
 def test_one_changed_input_recomputes_that_tile_alone(finished, reference, tmp_path):
     # the top candidate gets a large parallax in the raw astrometric file, then everything is re-ingested
-    top = pq.read_table(finished.run_dir / "candidates.parquet").sort_by([("criteria_score", "descending")])
+    top = pq.read_table(layout_of(finished).run_dir / "candidates.parquet").sort_by([("criteria_score", "descending")])
     source, tile = top.column("astro_id")[0].as_py(), top.column("tile")[0].as_py()
     raw_dir = finished.path("catalogues/astrometric")
     for part in sorted(raw_dir.glob("*.parquet")):
@@ -159,9 +163,9 @@ def test_one_changed_input_recomputes_that_tile_alone(finished, reference, tmp_p
     ingest(finished, log=_quiet)
     before = _mtimes(finished)
 
-    result = batch.run(finished, workers=2, quiet=True, log=_quiet)
+    result = run_job.run(finished, workers=2, quiet=True, log=_quiet)
     assert result.ok and result.actions["computed"] == 1 and result.actions["reselected"] == 0
-    with Manifest(finished.run_dir / "manifest.sqlite") as man:
+    with Manifest(layout_of(finished).manifest) as man:
         worked = {e["tile"]: e["action"] for e in man.events(result.run_id)}
     assert [t for t, a in worked.items() if a == "computed"] == [tile]
     # the neighbours that read the file only re-read its positions and motions, which did not change
@@ -172,7 +176,7 @@ def test_one_changed_input_recomputes_that_tile_alone(finished, reference, tmp_p
 
     # the incremental result is the one a full recomputation gives
     forced = _copy(Path(finished.base_dir), tmp_path / "forced")
-    full = batch.run(forced, workers=2, quiet=True, log=_quiet, force=True)
+    full = run_job.run(forced, workers=2, quiet=True, log=_quiet, force=True)
     assert full.actions["computed"] == reference["result"].tiles
     assert _merged_bytes(forced) == _merged_bytes(finished)
 
@@ -188,7 +192,7 @@ def _edit_config(cfg, old: str, new: str):
 def test_selection_change_reuses_the_feature_cache_and_match_change_recomputes(finished, reference):
     features = {rel: m for rel, m in _mtimes(finished).items() if rel.name == "features.parquet"}
     loose = _edit_config(finished, "parallax_snr_max = 3.0", "parallax_snr_max = 5.0")
-    result = batch.run(loose, workers=2, quiet=True, log=_quiet)
+    result = run_job.run(loose, workers=2, quiet=True, log=_quiet)
     n = reference["result"].tiles
     assert result.actions["reselected"] == n and result.actions["computed"] == 0
     assert dict(result.cutflow)["parallax"] > dict(reference["result"].cutflow)["parallax"]
@@ -196,50 +200,52 @@ def test_selection_change_reuses_the_feature_cache_and_match_change_recomputes(f
 
     # back to the original cuts: re-selection from the cache gives the bytes of the first computation
     back = _edit_config(finished, "parallax_snr_max = 5.0", "parallax_snr_max = 3.0")
-    result = batch.run(back, workers=2, quiet=True, log=_quiet)
+    result = run_job.run(back, workers=2, quiet=True, log=_quiet)
     assert result.actions["reselected"] == n
     assert _merged_bytes(back) == reference["merged"] and _tile_bytes(back) == reference["tiles"]
 
     wider = _edit_config(finished, "radius_arcsec = 2.0", "radius_arcsec = 2.5")
-    result = batch.run(wider, workers=2, quiet=True, log=_quiet)
+    result = run_job.run(wider, workers=2, quiet=True, log=_quiet)
     assert result.actions["computed"] == n
 
 
 def test_second_run_on_the_same_folder_is_refused(finished, capsys):
-    with Manifest(finished.run_dir / "manifest.sqlite") as man:
+    with Manifest(layout_of(finished).manifest) as man:
         n_runs = len(man.runs())
-    with batch.run_lock(finished):
-        with pytest.raises(SelectorError, match=rf"{finished.run_dir}: another `selector run` .*pid {os.getpid()}"):
-            batch.run(finished, workers=1, quiet=True, log=_quiet)
+    with run_job.run_lock(finished):
+        run_dir = layout_of(finished).run_dir
+        with pytest.raises(SelectorError, match=rf"{run_dir}: another `selector run` .*pid {os.getpid()}"):
+            run_job.run(finished, workers=1, quiet=True, log=_quiet)
         code = cli.main(["run", "--config", str(Path(finished.base_dir) / "demo.toml"), "--quiet"])
     assert code == 2
     err = capsys.readouterr().err
-    assert "another `selector run` is using this folder" in err and str(finished.run_dir) in err
+    assert "another `selector run` is using this folder" in err and str(layout_of(finished).run_dir) in err
     assert len(err.strip().splitlines()) == 1
-    with Manifest(finished.run_dir / "manifest.sqlite") as man:
+    with Manifest(layout_of(finished).manifest) as man:
         assert len(man.runs()) == n_runs  # the refused run recorded nothing
-    assert batch.run(finished, workers=1, quiet=True, log=_quiet).ok  # free again afterwards
+    assert run_job.run(finished, workers=1, quiet=True, log=_quiet).ok  # free again afterwards
 
 
 def test_corrupt_tiles_fail_alone_and_a_retry_redoes_only_them(finished, reference, capsys):
     order = finished.tiling.order
-    with Manifest(finished.run_dir / "manifest.sqlite") as man:
+    with Manifest(layout_of(finished).manifest) as man:
         inputs = {t: set(r["inputs"]) for t, r in man.tiles().items()}
     ids = sorted(inputs)
-    bad_astro = tiles.tile_file(finished.tiles_dir, "astrometric", order, ids[len(ids) // 3])
-    bad_ir_tile = tiles.list_tiles(finished.tiles_dir, "infrared", order)[-1]
-    bad_ir = tiles.tile_file(finished.tiles_dir, "infrared", order, bad_ir_tile)
+    lay = layout_of(finished)
+    bad_astro = lay.tile_file("astrometric", order, ids[len(ids) // 3])
+    bad_ir_tile = lay.list_tiles("infrared", order)[-1]
+    bad_ir = lay.tile_file("infrared", order, bad_ir_tile)
     saved = {p: p.read_bytes() for p in (bad_astro, bad_ir)}
     bad_astro.write_bytes(saved[bad_astro][: len(saved[bad_astro]) // 2])  # truncated
     ir = pq.read_table(bad_ir)
     pq.write_table(ir.drop(["ir_4p6_vegamag"]), bad_ir)  # wrong schema
-    rel = {str(p.relative_to(finished.tiles_dir)) for p in (bad_astro, bad_ir)}
+    rel = {str(p.relative_to(lay.tiles_dir)) for p in (bad_astro, bad_ir)}
     expected_failed = {t for t, used in inputs.items() if used & rel}
 
     code = cli.main(["run", "--config", str(Path(finished.base_dir) / "demo.toml"), "--workers", "2", "--quiet"])
     out = capsys.readouterr().out
     assert code == 1
-    with Manifest(finished.run_dir / "manifest.sqlite") as man:
+    with Manifest(layout_of(finished).manifest) as man:
         records = man.tiles()
         last = man.runs()[0]
     failed = {t for t, r in records.items() if r["status"] == "failed"}
@@ -253,43 +259,43 @@ def test_corrupt_tiles_fail_alone_and_a_retry_redoes_only_them(finished, referen
     assert any("cannot read" in records[t]["error"] for t in failed)
     assert f"INCOMPLETE: {len(failed)} of {len(ids)} tiles failed" in out
     assert f"selector run --config {Path(finished.base_dir) / 'demo.toml'}" in out
-    prov = json.loads((finished.run_dir / "provenance.json").read_text())
+    prov = json.loads((layout_of(finished).run_dir / "provenance.json").read_text())
     assert prov["complete"] is False and prov["failed_tiles"] == sorted(failed)
     assert prov["tiles"] == len(ids) - len(failed)
-    status = batch.status_text(finished)
+    status = run_job.status_text(finished)
     assert f"{len(failed)} failed" in status and f"failed tiles ({len(failed)})" in status
 
     for p, data in saved.items():
         p.write_bytes(data)
-    result = batch.run(finished, workers=2, quiet=True, log=_quiet)
+    result = run_job.run(finished, workers=2, quiet=True, log=_quiet)
     assert result.ok and result.actions["computed"] == len(failed)
     assert result.actions["reused"] == len(ids) - len(failed)
     assert _merged_bytes(finished) == reference["merged"]
 
 
 def test_row_accounting_that_does_not_add_up_fails_the_run(finished):
-    db = sqlite3.connect(finished.run_dir / "manifest.sqlite")
+    db = sqlite3.connect(layout_of(finished).manifest)
     with db:
         db.execute("UPDATE tiles SET rows = rows + 1 WHERE tile = (SELECT MIN(tile) FROM tiles)")
     db.close()
     with pytest.raises(SelectorError, match="row accounting does not add up"):
-        batch.run(finished, workers=1, quiet=True, log=_quiet)
-    with Manifest(finished.run_dir / "manifest.sqlite") as man:
+        run_job.run(finished, workers=1, quiet=True, log=_quiet)
+    with Manifest(layout_of(finished).manifest) as man:
         assert man.runs()[0]["status"] == "failed"
 
 
 def test_account_checks_tiles_against_the_ingest_summary():
     flow = [["input", 10], ["matched", 6], ["colour", 2]]
-    tiles_ = [{"tile": 1, "rows": 11, "rejects": 1, "cutflow": flow},
-              {"tile": 2, "rows": 10, "rejects": 0, "cutflow": flow}]
+    tiles_ = [TileSummary(1, rows=11, rejects=1, candidates=2, cutflow=flow),
+              TileSummary(2, rows=10, rejects=0, candidates=2, cutflow=flow)]
     ingest_ok = {"astrometric": {"rows_in": 30, "accepted": 28, "rejected_total": 2}}
-    lines = batch.account(tiles_, 4, ingest_ok, failed={3: "broken"}, expected_rows={1: 11, 2: 10, 3: 7})
+    lines = run_job.account(tiles_, 4, ingest_ok, failed={3: "broken"}, expected_rows={1: 11, 2: 10, 3: 7})
     assert "30 = 2 ingest rejects + 21 in finished tiles + 7 in failed tiles" in lines[0]
     assert "21 in 2 tiles = 4 candidates + 16 removed by cuts + 1 tile rejects" in lines[1]
     with pytest.raises(SelectorError, match="not 2 ingest rejects"):
-        batch.account(tiles_, 4, ingest_ok)  # tile 3's rows are nowhere
+        run_job.account(tiles_, 4, ingest_ok)  # tile 3's rows are nowhere
     with pytest.raises(SelectorError, match="does not add up"):
-        batch.account(tiles_, 5, None)
+        run_job.account(tiles_, 5, None)
 
 
 def test_progress_is_one_updating_line_on_a_terminal_and_plain_lines_otherwise(tmp_path):
@@ -299,7 +305,7 @@ def test_progress_is_one_updating_line_on_a_terminal_and_plain_lines_otherwise(t
 
     shown = []
     term = Terminal()
-    rep = batch._Reporter(shown.append, quiet=False, verbose=False, log_path=tmp_path / "a.log", interval_s=3600,
+    rep = Reporter(shown.append, quiet=False, verbose=False, log_path=tmp_path / "a.log", interval_s=3600,
                           stream=term)
     for done in range(1, 4):
         rep.progress(done, 10, 100 * done, 0)
@@ -312,7 +318,7 @@ def test_progress_is_one_updating_line_on_a_terminal_and_plain_lines_otherwise(t
     assert text.count("\r") >= 4 and "tiles 3/10" in text and "left" in text
     assert shown == ["a message"]
     plain = io.StringIO()
-    rep = batch._Reporter(shown.append, quiet=False, verbose=True, log_path=tmp_path / "b.log", interval_s=3600,
+    rep = Reporter(shown.append, quiet=False, verbose=True, log_path=tmp_path / "b.log", interval_s=3600,
                           stream=plain)
     rep.progress(1, 10, 100, 0)
     rep.progress(2, 10, 200, 0)  # within the interval: not printed
@@ -328,13 +334,13 @@ def test_progress_is_one_updating_line_on_a_terminal_and_plain_lines_otherwise(t
 def test_quiet_verbose_log_file_and_status(finished, capsys):
     cfg = _edit_config(finished, "pm_pvalue_min = 0.001", "pm_pvalue_min = 0.002")
     printed = []
-    result = batch.run(cfg, workers=1, verbose=True, log=printed.append)
+    result = run_job.run(cfg, workers=1, verbose=True, log=printed.append)
     per_tile = [line for line in printed if line.startswith("tile ") and "reselected" in line]
     assert len(per_tile) == result.actions["reselected"] > 0
     log_text = result.log_file.read_text()
     assert result.log_file.name == f"run-{result.run_id}.log" and "infrared_colour" in log_text
     printed.clear()
-    batch.run(cfg, workers=1, quiet=True, log=printed.append)
+    run_job.run(cfg, workers=1, quiet=True, log=printed.append)
     assert len(printed) == 1 and printed[0].startswith(f"run {result.run_id + 1}: 0 tiles computed")
     assert cli.main(["status", "--config", str(Path(cfg.base_dir) / "demo.toml")]) == 0
     out = capsys.readouterr().out
@@ -346,7 +352,8 @@ def test_dask_executor_gives_the_local_bytes(template, reference, tmp_path):
     distributed = pytest.importorskip("distributed", reason="dask[distributed] is not installed (the test extra has it)")
     cfg = _copy(template, tmp_path / "project")
     with distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True, dashboard_address=None) as cluster:
-        result = batch.run(cfg, executor="dask", scheduler=cluster.scheduler_address, quiet=True, log=_quiet)
+        result = run_job.run(cfg, executor="dask", scheduler=cluster.scheduler_address, quiet=True,
+                             log=_quiet)
     assert result.ok and result.actions["computed"] == reference["result"].tiles
     assert _merged_bytes(cfg) == reference["merged"]
     assert _tile_bytes(cfg) == reference["tiles"]

@@ -23,7 +23,7 @@ from selector.jobs.train import labels, modelfile
 from selector.jobs.train.features import zero_motion
 from selector.store import layout
 from selector.demo import mocksky as demo
-from selector.jobs.run.batch import run
+from selector.jobs.run import run
 from selector.cli import main
 from selector.settings.config import config_hash, from_dict, load_config
 from selector.errors import SelectorError

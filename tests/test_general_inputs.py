@@ -10,11 +10,12 @@ from astropy.table import Table
 import astropy.units as u
 
 from selector.demo import mocksky as demo
-from selector.jobs.run.batch import run
+from selector.jobs.run import run
 from selector.settings.config import from_dict, load_config
 from selector.jobs.ingest import ingest
 from selector.store.io import read_parquet
 from selector.core.photometry import VEGA_TO_AB_MAG
+from selector.store.layout import layout_of
 
 
 def _col(t: pa.Table, name: str) -> np.ndarray:
@@ -79,8 +80,8 @@ def two_runs(tmp_path_factory):
 
 def test_same_candidates_from_other_formats_names_and_units(two_runs):
     ref, other = two_runs
-    a = read_parquet(ref.run_dir / "candidates.parquet")
-    b = read_parquet(other.run_dir / "candidates.parquet")
+    a = read_parquet(layout_of(ref).merged("parquet"))
+    b = read_parquet(layout_of(other).merged("parquet"))
     assert a.num_rows > 10
     ids_a = [str(x) for x in a.column("astro_id").to_pylist()]
     ids_b = b.column("astro_id").to_pylist()  # CSV identifiers are kept as text

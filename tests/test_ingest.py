@@ -12,6 +12,7 @@ import pytest
 from selector.core import tiles
 from selector.errors import InputError
 from selector.jobs.ingest import ingest, ingest_catalogue
+from selector.store.layout import layout_of
 
 from conftest import base_config, build, random_astro, random_ir, write_parquet
 
@@ -24,8 +25,8 @@ def _setup(tmp_path, rng, n=2000, astro=None):
 
 
 def _read_tiles(cfg, kind):
-    parts = [pq.read_table(tiles.tile_file(cfg.tiles_dir, kind, cfg.tiling.order, t))
-             for t in tiles.list_tiles(cfg.tiles_dir, kind, cfg.tiling.order)]
+    parts = [pq.read_table(layout_of(cfg).tile_file(kind, cfg.tiling.order, t))
+             for t in layout_of(cfg).list_tiles(kind, cfg.tiling.order)]
     return pa.concat_tables(parts)
 
 
@@ -38,11 +39,11 @@ def test_accounting_and_tile_assignment(tmp_path, rng):
     assert t.num_rows == 2000
     assert sorted(t.column("astro_id").to_pylist()) == list(range(1, 2001))
     # every row sits in the tile its position falls in (reference: healpy ang2pix, nested)
-    for tile in tiles.list_tiles(cfg.tiles_dir, "astrometric", cfg.tiling.order):
-        part = pq.read_table(tiles.tile_file(cfg.tiles_dir, "astrometric", cfg.tiling.order, tile))
+    for tile in layout_of(cfg).list_tiles("astrometric", cfg.tiling.order):
+        part = pq.read_table(layout_of(cfg).tile_file("astrometric", cfg.tiling.order, tile))
         got = tiles.tile_of(part.column("ra_deg").to_numpy(), part.column("dec_deg").to_numpy(), cfg.tiling.order)
         assert np.all(got == tile)
-    summary = json.loads((cfg.tiles_dir / "astrometric" / "summary.json").read_text())
+    summary = json.loads(layout_of(cfg).ingest_summary("astrometric").read_text())
     assert summary["rows_in"] == summary["accepted"] + summary["rejected_total"]
     assert sum(summary["rows_per_tile"].values()) == summary["accepted"]
 
@@ -74,7 +75,7 @@ def test_each_bad_row_has_its_own_reason(tmp_path, rng):
     assert s.rejected == {"non_finite_position": 1, "dec_out_of_range": 1, "negative_error": 1, "duplicate_id": 1,
                           "non_finite_value": 1, "missing_id": 1, "correlation_out_of_range": 1}
     assert s.rows_in == 30 and s.accepted == 23
-    rej = pq.read_table(cfg.tiles_dir / "astrometric" / "rejects.parquet").to_pylist()
+    rej = pq.read_table(layout_of(cfg).ingest_rejects("astrometric")).to_pylist()
     by_row = {r["input_row"]: r for r in rej}
     assert by_row[1]["reason"] == "non_finite_position" and by_row[1]["column"] == "ra"
     assert by_row[3]["reason"] == "negative_error" and by_row[3]["column"] == "eplx"
@@ -104,7 +105,7 @@ def test_unparsable_csv_value_rejects_its_row_only(tmp_path, rng):
     cfg = build(data, tmp_path)
     s = ingest_catalogue(cfg, "astrometric", log=lambda *a: None)
     assert s.rejected == {"unparsable_value": 1} and s.accepted == 11
-    rej = pq.read_table(cfg.tiles_dir / "astrometric" / "rejects.parquet").to_pylist()
+    rej = pq.read_table(layout_of(cfg).ingest_rejects("astrometric")).to_pylist()
     assert rej[0]["input_row"] == 4 and rej[0]["column"] == "plx"
     kept = _read_tiles(cfg, "astrometric")
     pmdec = dict(zip(kept.column("astro_id").to_pylist(), kept.column("pmdec_mas_yr").to_pylist()))
@@ -134,12 +135,13 @@ def test_chunked_spooled_reading_gives_the_same_tiles(tmp_path, rng, monkeypatch
 def test_ingesting_twice_gives_identical_files(tmp_path, rng):
     cfg = _setup(tmp_path, rng, n=500)
     ingest(cfg, log=lambda *a: None)
-    first = {p: p.read_bytes() for p in sorted(cfg.tiles_dir.rglob("*")) if p.is_file()}
+    first = {p: p.read_bytes() for p in sorted(layout_of(cfg).tiles_dir.rglob("*")) if p.is_file()}
     ingest(cfg, log=lambda *a: None)
-    second = {p: p.read_bytes() for p in sorted(cfg.tiles_dir.rglob("*")) if p.is_file()}
+    second = {p: p.read_bytes() for p in sorted(layout_of(cfg).tiles_dir.rglob("*")) if p.is_file()}
     assert first.keys() == second.keys()
     assert all(first[k] == second[k] for k in first)
-    assert not list(cfg.tiles_dir.rglob("*.tmp")) and not list(cfg.tiles_dir.rglob(".spool"))
+    tiles_dir = layout_of(cfg).tiles_dir
+    assert not list(tiles_dir.rglob("*.tmp")) and not list(tiles_dir.rglob(".spool"))
 
 
 def test_missing_column_is_one_line_error(tmp_path, rng):

@@ -18,9 +18,9 @@ import pytest
 from astropy.table import MaskedColumn, Table
 
 from selector.store import io
-from selector.core import tiles
 from selector.errors import InputError
 from selector.jobs.ingest import ingest_catalogue
+from selector.store.layout import layout_of
 
 from conftest import base_config, build, random_astro
 
@@ -102,8 +102,8 @@ def _config(tmp_path, files, units_in_config=False, extra=None):
 
 def _tiles(cfg) -> pa.Table:
     order = cfg.tiling.order
-    parts = [pq.read_table(tiles.tile_file(cfg.tiles_dir, "astrometric", order, t))
-             for t in tiles.list_tiles(cfg.tiles_dir, "astrometric", order)]
+    parts = [pq.read_table(layout_of(cfg).tile_file("astrometric", order, t))
+             for t in layout_of(cfg).list_tiles("astrometric", order)]
     return pa.concat_tables(parts).sort_by("astro_id")
 
 

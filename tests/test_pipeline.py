@@ -11,12 +11,13 @@ import pytest
 from selector.demo import mocksky as demo
 from selector.core import tiles
 from selector.core.astrometry import propagate
-from selector.jobs.run.batch import run
+from selector.jobs.run import run
 from selector.settings.config import load_config
 from selector.jobs.ingest import ingest
 from selector.store.io import read_parquet
 from selector.core.selection import check_accounting
 from selector.jobs.run.tile import process_tile
+from selector.store.layout import layout_of
 
 from conftest import base_config, build, write_parquet
 
@@ -82,7 +83,7 @@ def edge_sky(tmp_path_factory):
     cfg = build(data, tmp)
     ingest(cfg, log=lambda *a: None)
     results = [process_tile(cfg, t, keep_pairs=True)
-               for t in tiles.list_tiles(cfg.tiles_dir, "astrometric", cfg.tiling.order)]
+               for t in layout_of(cfg).list_tiles("astrometric", cfg.tiling.order)]
     return cfg, astro, ir, moved, results
 
 
@@ -176,7 +177,7 @@ def test_mock_recovers_quasars_and_rejects_movers(mock_run):
     assert report.quasars_above_limit > 50
     assert report.completeness_above_limit >= 0.90
     assert report.by_population.get("brown_dwarf", 0) == 0
-    cands = read_parquet(cfg.run_dir / "candidates.parquet")
+    cands = read_parquet(layout_of(cfg).merged("parquet"))
     truth = sky.truth.filter(pc.equal(sky.truth.column("catalogue"), "astrometric"))
     pop = dict(zip(truth.column("id").to_pylist(), truth.column("population").to_pylist()))
     stars = [pop[str(i)] == "star" for i in cands.column("astro_id").to_pylist()]
@@ -191,22 +192,22 @@ def test_ranked_list_has_units_provenance_and_order(mock_run):
     from astropy.table import Table
 
     cfg, sky, paths, result = mock_run
-    t = Table.read(cfg.run_dir / "candidates.ecsv")
+    t = Table.read(layout_of(cfg).merged("ecsv"))
     assert list(t["rank"]) == list(range(1, len(t) + 1))
     assert str(t["ra_deg"].unit) == "deg" and str(t["pmra_mas_yr"].unit) == "mas / yr"
     assert np.all(np.diff(t["criteria_score"]) <= 0)
     prov = t.meta["selector_provenance"]
     assert len(prov["config_hash"]) == 64 and prov["selector_version"]
     assert set(prov["input_fingerprints"]) == {"astrometric", "infrared"}
-    csv = Table.read(cfg.run_dir / "candidates.csv", format="ascii.csv")
+    csv = Table.read(layout_of(cfg).merged("csv"), format="ascii.csv")
     assert len(csv) == len(t)
 
 
 def test_run_is_deterministic(mock_run, tmp_path):
     cfg, sky, paths, result = mock_run
-    first = {p.name: p.read_bytes() for p in cfg.run_dir.glob("candidates.*")}
+    first = {p.name: p.read_bytes() for p in layout_of(cfg).run_dir.glob("candidates.*")}
     run(cfg, workers=2, quiet=True)
-    second = {p.name: p.read_bytes() for p in cfg.run_dir.glob("candidates.*")}
+    second = {p.name: p.read_bytes() for p in layout_of(cfg).run_dir.glob("candidates.*")}
     assert first == second
 
 
@@ -214,8 +215,8 @@ def test_parquet_list_is_ranked_like_the_ecsv(mock_run):
     from astropy.table import Table
 
     cfg, sky, paths, result = mock_run
-    pq_list = read_parquet(cfg.run_dir / "candidates.parquet")
-    ecsv = Table.read(cfg.run_dir / "candidates.ecsv")
+    pq_list = read_parquet(layout_of(cfg).merged("parquet"))
+    ecsv = Table.read(layout_of(cfg).merged("ecsv"))
     assert pq_list.column("rank").to_pylist() == list(range(1, pq_list.num_rows + 1))
     assert pq_list.column("astro_id").to_pylist() == list(ecsv["astro_id"])
 

@@ -13,7 +13,7 @@ import numpy as np
 import pytest
 from PIL import Image
 
-from selector.jobs.run import batch
+from selector.jobs import run as run_job
 from selector.demo import mocksky as demo
 from selector.jobs import ingest, tune
 from selector.core import photometry as ph
@@ -31,7 +31,7 @@ def demo_run(tmp_path_factory):
     demo.write_mock_sky(demo.make_mock_sky(seed=2, scale=0.03), tmp / "catalogues")
     cfg = load_config(demo.write_demo_config(tmp))
     ingest.ingest(cfg, log=lambda *a: None)
-    batch.run(cfg, workers=1, quiet=True, log=lambda *a: None)
+    run_job.run(cfg, workers=1, quiet=True, log=lambda *a: None)
     return cfg
 
 

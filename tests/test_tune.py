@@ -14,7 +14,8 @@ import pyarrow.csv as pacsv
 import pyarrow.parquet as pq
 import pytest
 
-from selector.jobs.run import batch, tile as tile_job
+from selector.jobs import run as run_job
+from selector.jobs.run import tile as tile_job
 from selector.demo import mocksky as demo
 from selector.jobs import ingest, tune
 from selector.core import selection
@@ -45,7 +46,7 @@ def demo_run(tmp_path_factory):
     path = demo.write_demo_config(tmp)
     cfg = load_config(path)
     ingest.ingest(cfg, log=lambda *a: None)
-    batch.run(cfg, workers=1, quiet=True, log=lambda *a: None)
+    run_job.run(cfg, workers=1, quiet=True, log=lambda *a: None)
     return cfg, path, paths["truth"]
 
 
@@ -56,7 +57,7 @@ def _full_rerun(cfg, settings, folder: Path):
     new = from_dict(data, base_dir=cfg.base_dir)
     folder.mkdir(parents=True)
     (folder / "tiles").symlink_to(cfg.tiles_dir, target_is_directory=True)
-    batch.run(new, workers=1, quiet=True, log=lambda *a: None)
+    run_job.run(new, workers=1, quiet=True, log=lambda *a: None)
     return new
 
 

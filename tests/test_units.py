@@ -16,9 +16,10 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
 
-from selector.core import schema, tiles
+from selector.core import schema
 from selector.errors import ConfigError
 from selector.jobs.ingest import ingest_catalogue
+from selector.store.layout import layout_of
 
 from conftest import base_config, build
 
@@ -84,8 +85,8 @@ def _ingest(tmp_path, kind, columns: dict, spec: dict, magnitudes=None, extra_as
     cfg = build(data, tmp_path)
     s = ingest_catalogue(cfg, kind, log=lambda *a: None)
     assert s.rows_in == N and s.accepted == N, s.rejected
-    parts = [pq.read_table(tiles.tile_file(cfg.tiles_dir, kind, cfg.tiling.order, t))
-             for t in tiles.list_tiles(cfg.tiles_dir, kind, cfg.tiling.order)]
+    parts = [pq.read_table(layout_of(cfg).tile_file(kind, cfg.tiling.order, t))
+             for t in layout_of(cfg).list_tiles(kind, cfg.tiling.order)]
     return pa.concat_tables(parts).sort_by(schema.ID_COLUMN[kind])
 
 

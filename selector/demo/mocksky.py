@@ -1304,7 +1304,7 @@ def evaluate_run(cfg, truth_path) -> "object":
 def run_demo(out_dir, seed: int = 1, scale: float = 1.0, workers=None, log=print):
     """Write the mock sky and its config into ``out_dir``, ingest, run, score against the truth,
     then make the follow-up list for the demo site and the HTML report."""
-    from selector.jobs.run.batch import run
+    from selector.jobs.run import run
     from selector.settings.config import load_config
     from selector.jobs.targets import make_targets
     from selector.jobs.ingest import ingest

@@ -32,6 +32,7 @@ from selector.core import schema, tiles
 from selector.settings.config import CatalogueConfig, Config, config_hash
 from selector.errors import InputError, SelectorError
 from selector.store.io import expand_files, fingerprint, iter_chunks, write_json, write_parquet
+from selector.store.layout import layout_of
 from selector.core.photometry import VEGA_TO_AB_MAG
 
 #: Reason codes, in the order they are tested; a row is rejected for the first that applies.
@@ -304,10 +305,6 @@ class IngestSummary:
         }
 
 
-def catalogue_dir(cfg: Config, kind: str) -> Path:
-    return cfg.tiles_dir / kind
-
-
 def ingest_catalogue(cfg: Config, kind: str, log=print) -> IngestSummary:
     """Ingest one catalogue (``astrometric``, ``infrared`` or ``known``) into tiles."""
     cat: CatalogueConfig = getattr(cfg, kind)
@@ -315,8 +312,8 @@ def ingest_catalogue(cfg: Config, kind: str, log=print) -> IngestSummary:
     sources = _source_columns(fields)
     paths = expand_files(cat.files, cfg.path("."))
     order = cfg.tiling.order
-    out_dir = catalogue_dir(cfg, kind)
-    spool = out_dir / ".spool"
+    lay = layout_of(cfg)
+    spool = lay.ingest_spool(kind)
     if spool.exists():
         shutil.rmtree(spool)
     spool.mkdir(parents=True)
@@ -368,7 +365,7 @@ def ingest_catalogue(cfg: Config, kind: str, log=print) -> IngestSummary:
     def flush():
         nonlocal buffered
         number = len(spool_files)
-        paths_ = (spool / f"tiles-{number:05d}.arrow", spool / f"ids-{number:05d}.arrow")
+        paths_ = (lay.ingest_spool_file(kind, "tiles", number), lay.ingest_spool_file(kind, "ids", number))
         if buffers:
             write_spool(paths_[0], by_tile(), tile_index, number)
         if id_buffers:
@@ -432,15 +429,15 @@ def ingest_catalogue(cfg: Config, kind: str, log=print) -> IngestSummary:
     file_list = [str(p) for p in paths]
     if duplicates.size:
         rejected["duplicate_id"] += int(duplicates.size)
-    rows_per_tile = _write_tiles(cfg, kind, tile_parts, out_dir, order, duplicates, id_col, fields, tiled, reject_parts,
-                                 file_list, np.asarray(file_starts))
+    rows_per_tile = _write_tiles(cfg, kind, tile_parts, duplicates=duplicates, id_col=id_col, fields=fields,
+                                 reject_parts=reject_parts, file_list=file_list, file_starts=np.asarray(file_starts))
     accepted = sum(rows_per_tile.values())
     del tile_parts, id_parts, readers  # closes the spool files before they are removed
     shutil.rmtree(spool)
 
     rejects = pa.concat_tables(reject_parts) if reject_parts else REJECT_SCHEMA.empty_table()
     rejects = rejects.sort_by([("input_file", "ascending"), ("input_row", "ascending")])
-    write_parquet(rejects, out_dir / "rejects.parquet")
+    write_parquet(rejects, lay.ingest_rejects(kind))
     summary = IngestSummary(kind, rows_in, accepted, dict(rejected), rows_per_tile,
                             {str(p): fingerprint(p) for p in paths})
     if rows_in != accepted + sum(rejected.values()) or len(rejects) != sum(rejected.values()):
@@ -449,7 +446,7 @@ def ingest_catalogue(cfg: Config, kind: str, log=print) -> IngestSummary:
     info = summary.as_dict()
     info.update({"order": order, "epoch_jyear": cat.epoch_jyear, "version": __version__,
                  "config_hash": config_hash(cfg, (kind, "tiling"))})
-    write_json(info, out_dir / "summary.json")
+    write_json(info, lay.ingest_summary(kind))
     return summary
 
 
@@ -510,8 +507,9 @@ def _find_duplicates(buckets: dict) -> np.ndarray:
     return np.sort(np.concatenate(out)) if out else np.zeros(0, np.int64)
 
 
-def _write_tiles(cfg, kind, parts, out_dir, order, duplicates, id_col, fields, tiled, reject_parts, file_list,
-                 file_starts):
+def _write_tiles(cfg, kind, parts, *, duplicates, id_col, fields, reject_parts, file_list, file_starts):
+    # every catalogue but the known objects is tiled; those are one file
+    lay, order, tiled = layout_of(cfg), cfg.tiling.order, kind != "known"
     units = {f.canonical: f.unit for f in fields if f.unit}
     meta = {"catalogue": kind, "order": str(order), "epoch_jyear": json.dumps(getattr(cfg, kind).epoch_jyear),
             "version": __version__}
@@ -539,21 +537,21 @@ def _write_tiles(cfg, kind, parts, out_dir, order, duplicates, id_col, fields, t
         t = _take(t, _fine_then_id_order(t, id_col)).drop(["_fine", "_row"])
         t = _with_units(t, units)
         if tiled:
-            path = tiles.tile_file(out_dir.parent, kind, order, tile)
+            path = lay.tile_file(kind, order, tile)
             write_parquet(t, path, {**meta, "tile": str(tile)})
             written.add(path.name)
         else:
-            write_parquet(t, out_dir / "objects.parquet", meta)
+            write_parquet(t, lay.known_objects, meta)
         rows_per_tile[tile] = t.num_rows
     if tiled:
-        folder = tiles.tile_file(out_dir.parent, kind, order, 0).parent
+        folder = lay.order_dir(kind, order)
         # tiles left from an earlier ingest of other data would otherwise be read as current
         for stale in folder.glob("tile*.parquet") if folder.exists() else []:
             if stale.name not in written:
                 stale.unlink()
     elif not parts:
         empty = pa.table({f.canonical: pa.array([], pa.float64()) for f in fields})
-        write_parquet(empty, out_dir / "objects.parquet", meta)
+        write_parquet(empty, lay.known_objects, meta)
     return rows_per_tile
 
 

@@ -5,6 +5,7 @@
     <output_dir>/
       tiles/<catalogue>/order<NN>/tile<NNNNNNNN>.parquet   ingested tiles
       tiles/<catalogue>/summary.json, rejects.parquet        ingest accounting
+      tiles/<catalogue>/.spool/{tiles,ids}-<NNNNN>.arrow     scratch of an ingest in progress
       tiles/known/objects.parquet                            the known-objects catalogue (not tiled)
       run/manifest.sqlite, run/.lock, run/logs/run-<n>.log   the run's record
       run/tiles/tile<NNNNNNNN>/{features,infrared,candidates,rejects}.parquet, cutflow.json
@@ -91,6 +92,14 @@ class Layout:
 
     def ingest_rejects(self, catalogue: str) -> Path:
         return self.catalogue_dir(catalogue) / "rejects.parquet"
+
+    def ingest_spool(self, catalogue: str) -> Path:
+        """Scratch folder of an ingest in progress (removed when it ends)."""
+        return self.catalogue_dir(catalogue) / ".spool"
+
+    def ingest_spool_file(self, catalogue: str, part: str, number: int) -> Path:
+        """The ``number``-th spilled file of a part (``tiles`` or ``ids``) of an ingest in progress."""
+        return self.ingest_spool(catalogue) / f"{part}-{number:05d}.arrow"
 
     @property
     def known_objects(self) -> Path:

@@ -12,6 +12,7 @@ from selector.core import schema, tiles
 from selector.settings.config import Config
 from selector.core.frames import radec_to_xyz
 from selector.store.io import read_parquet
+from selector.store.layout import layout_of
 
 
 def _disc_filter(table: pa.Table, tile: int, order: int, margin_arcsec: float) -> pa.Table:
@@ -48,8 +49,8 @@ def load_tile(cfg: Config, tile: int, on_input=None):
         Infrared sources within the match margin.
     """
     order = cfg.tiling.order
-    root = cfg.tiles_dir
-    own_path = tiles.tile_file(root, "astrometric", order, tile)
+    lay = layout_of(cfg)
+    own_path = lay.tile_file("astrometric", order, tile)
     own = read_parquet(own_path)
     report = on_input or (lambda *args: None)
     report("astrometric", tile, own_path, own)
@@ -62,14 +63,14 @@ def load_tile(cfg: Config, tile: int, on_input=None):
     astro_margin = ir_margin + r + cfg.match.max_proper_motion_mas_yr * dt / 1000.0
     ir_parts = []
     for t in tiles.tiles_near(tile, order, ir_margin):
-        path = tiles.tile_file(root, "infrared", order, int(t))
+        path = lay.tile_file("infrared", order, int(t))
         part = _disc_filter(read_parquet(path), tile, order, ir_margin) if path.exists() else None
         report("infrared", int(t), path, part)
         if part is not None:
             ir_parts.append(part)
     neighbour_parts = []
     for t in tiles.tiles_near(tile, order, astro_margin):
-        path = tiles.tile_file(root, "astrometric", order, int(t))
+        path = lay.tile_file("astrometric", order, int(t))
         if t != tile and path.exists():
             # neighbours only compete for counterparts: their positions and motions are all we need
             neighbour_parts.append(_disc_filter(read_parquet(path, columns=_NEIGHBOUR_COLUMNS), tile, order,

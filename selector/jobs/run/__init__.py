@@ -1,1 +1,334 @@
-"""The nightly run over tiles: plan, execute, merge, progress and status."""
+"""The nightly run over tiles: lock, plan, execute, merge; progress and status.
+
+A run goes through four steps, all recorded in the run manifest (:mod:`selector.store.manifest`):
+
+1. **Lock** (:mod:`selector.store.lock`). The run folder's lock is held with ``flock`` for the whole
+   run, so a second run on the same folder is refused; the kernel drops the lock when the process
+   dies, however it dies.
+2. **Plan** (:mod:`.plan`). Each tile is reused, re-selected, checked or computed, from the keys its
+   record holds, the input fingerprints and its output files.
+3. **Work** (:mod:`.execute`). :func:`~.execute.run_tile` does one tile on any executor (in-process,
+   a local process pool, or Dask) and writes its files atomically; the manifest records it when its
+   outcome arrives. A tile whose input is damaged fails alone, with its error recorded.
+4. **Merge** (:mod:`.merge`). The per-tile candidates become the ranked list, the cut-flows are
+   summed, the rows accounted for, and the provenance written.
+"""
+
+from __future__ import annotations
+
+import os
+import shutil
+import socket
+import time
+import traceback
+from dataclasses import dataclass, field, replace
+from pathlib import Path
+
+from selector import __version__
+from selector.errors import SelectorError
+from selector.jobs.run.execute import KILL_AT_ENV, TileOutcome, execute, fault, one_line, run_tile, worker_count
+from selector.jobs.run.merge import (TileSummary, account, file_stats, format_cutflow, merge, merged_from_summaries,
+                                     merged_paths, provenance, total_cutflow)
+from selector.jobs.run.plan import (TilePlan, compute_plan, expected_rows, file_digest, ingest_summaries, inputs_key,
+                                    output_stats, plan_tiles, scan_inputs, tile_ids)
+from selector.jobs.run.progress import Reporter
+from selector.jobs.run.status import status_text
+from selector.settings.config import Config
+from selector.store.keys import digest
+from selector.store.layout import FEATURE_FILES, SELECTION_FILES, Layout, layout_of
+from selector.store.lock import RunLock, run_lock
+from selector.store.manifest import Manifest
+
+__all__ = ["KILL_AT_ENV", "RunLock", "RunResult", "TileOutcome", "TilePlan", "TileSummary", "account",
+           "format_cutflow", "provenance", "run", "run_lock", "run_tile", "status_text", "total_cutflow"]
+
+
+@dataclass
+class RunResult:
+    """What a run did.
+
+    Attributes
+    ----------
+    ok : bool
+        Every tile finished and the merged outputs are complete.
+    tiles : int
+        Tiles in the merged outputs.
+    candidates : int
+        Rows of the ranked list.
+    cutflow : list of (stage, rows left)
+        Summed over the merged tiles.
+    outputs : dict
+        Paths of the merged outputs.
+    failed : dict
+        Tile id → one-line error, for tiles that failed.
+    run_id : int or None
+        The run's number in the manifest.
+    actions : dict
+        Tiles ``computed``, ``reselected``, ``verified`` (inputs re-read, nothing rewritten),
+        ``reused`` and ``failed`` by this run.
+    merged : bool
+        Whether the merged outputs were (re)written; false when they were already up to date.
+    complete : bool
+        Whether the merged outputs cover every tile.
+    accounting : list of str
+        The row-accounting lines.
+    log_file : pathlib.Path or None
+        The run log.
+    """
+
+    ok: bool
+    tiles: int
+    candidates: int
+    cutflow: list
+    outputs: dict = field(default_factory=dict)
+    failed: dict = field(default_factory=dict)
+    run_id: int | None = None
+    actions: dict = field(default_factory=dict)
+    merged: bool = True
+    complete: bool = True
+    accounting: list = field(default_factory=list)
+    log_file: Path | None = None
+
+
+@dataclass(kw_only=True)
+class _Run:
+    """What one run's steps share: the configuration, its folder, the manifest and what it knows."""
+
+    cfg: Config
+    layout: Layout
+    man: Manifest
+    run_id: int
+    rep: Reporter
+    executor: str
+    workers: int
+    scheduler: str | None
+    force: bool
+    config_path: str | os.PathLike | None
+    records: dict = field(default_factory=dict)
+    shas: dict = field(default_factory=dict)
+    expected_rows: dict = field(default_factory=dict)
+
+
+def run(cfg: Config, workers: int | None = None, executor: str | None = None, scheduler: str | None = None, *,
+        quiet: bool = False, verbose: bool = False, log=print, force: bool = False,
+        config_path: str | os.PathLike | None = None) -> RunResult:
+    """Bring the run folder up to date with the ingested tiles and the configuration.
+
+    Parameters
+    ----------
+    cfg : Config
+    workers : int, optional
+        Worker processes (local) or local Dask workers; default ``run.workers`` (0: one per core).
+    executor : {"local", "dask"}, optional
+        Default ``run.executor``.
+    scheduler : str, optional
+        Dask scheduler address; default ``run.scheduler``; a local Dask cluster when neither is set.
+    quiet, verbose : bool
+        Print only the final summary, or also a line per tile.
+    log : callable
+        Where messages go (progress goes to standard error).
+    force : bool
+        Recompute every tile whatever the manifest says.
+    config_path : path, optional
+        The configuration file, named in the retry advice after failures.
+
+    Returns
+    -------
+    RunResult
+        ``ok`` is false when a tile failed (the others are finished and merged).
+
+    Raises
+    ------
+    SelectorError
+        When the folder is in use by another run, the tiles are missing, or the row accounting of
+        the merged result does not add up (the run is then recorded as failed).
+    """
+    if executor is None and scheduler is not None:
+        executor = "dask"  # a scheduler address only means something to Dask
+    executor = executor or cfg.run.executor
+    scheduler = scheduler or cfg.run.scheduler
+    n = worker_count(cfg, workers)
+    lay = layout_of(cfg)
+    with RunLock(lay.run_lock), Manifest(lay.manifest) as man:
+        man.mark_dead_runs()
+        run_id = man.begin_run(pid=os.getpid(), host=socket.gethostname(), version=__version__,
+                               executor=executor, workers=n)
+        log_path = lay.run_log(run_id)
+        rep = Reporter(log, quiet=quiet, verbose=verbose, log_path=log_path,
+                       interval_s=cfg.run.progress_interval_s)
+        man.update_run(run_id, log_file=str(log_path))
+        ctx = _Run(cfg=cfg, layout=lay, man=man, run_id=run_id, rep=rep, executor=executor, workers=n,
+                   scheduler=scheduler, force=force, config_path=config_path)
+        try:
+            result = _run(ctx)
+        except KeyboardInterrupt:
+            man.end_run(run_id, "interrupted", message="interrupted by the user; run again to continue")
+            rep.always("interrupted: finished tiles are kept; run again to continue")
+            rep.close()
+            raise
+        except SelectorError as exc:
+            man.end_run(run_id, "failed", message=str(exc))
+            rep.to_file(f"failed: {exc}")
+            rep.close()
+            raise
+        except BaseException as exc:
+            man.end_run(run_id, "failed", message=one_line(exc))
+            rep.to_file(traceback.format_exc())
+            rep.close()
+            raise
+        rep.close()
+        result.run_id, result.log_file = run_id, log_path
+        return result
+
+
+def _run(ctx: _Run) -> RunResult:
+    cfg, lay, man, run_id, rep = ctx.cfg, ctx.layout, ctx.man, ctx.run_id, ctx.rep
+    prov = provenance(cfg)
+    ingest = ingest_summaries(cfg)
+    man.update_run(run_id, config_hash=prov["config_hash"], match_hash=prov["match_config_hash"],
+                   selection_hash=prov["selection_config_hash"])
+    rep.to_file(f"run {run_id}: selector {__version__}, executor {ctx.executor}, {ctx.workers} workers, "
+                f"pid {os.getpid()}")
+    ctx.expected_rows = expected_rows(ingest)
+    ids = tile_ids(cfg, ctx.expected_rows)
+    ctx.records = records = man.tiles()
+    recorded_inputs = {rel for rec in records.values() for rel in (rec.get("inputs") or [])}
+    ctx.shas = scan_inputs(cfg, man, recorded_inputs, ctx.workers)
+    plans, reused = plan_tiles(cfg, records, ctx.shas, tiles=ids,
+                               compute=compute_plan(cfg, prov["classifier_model_sha256"]), force=ctx.force)
+    stale = sorted(set(records) - set(ids))
+    man.plan(sorted(plans), stale)
+    for t in stale:  # tiles gone from the ingested catalogue must not be merged
+        shutil.rmtree(lay.tile_output_dir(t), ignore_errors=True)
+    # temporary files of writes cut short by a killed run (only tiles never recorded can have them)
+    for folder in [lay.run_dir] + [lay.tile_output_dir(t) for t in plans]:
+        for tmp in folder.glob(".*.tmp"):
+            tmp.unlink(missing_ok=True)
+    modes = {m: sum(p.mode == m for p in plans.values()) for m in ("compute", "check", "select")}
+    rep.info(f"run {run_id}: {len(ids)} tiles — {modes['compute']} to compute, {modes['select']} to re-select, "
+             f"{modes['check']} to check (an input file changed), {len(reused)} unchanged")
+    man.update_run(run_id, tiles=len(ids), reused=len(reused))
+    fault("planned")
+
+    actions, work_s = _work(ctx, plans, reused)
+
+    records = man.tiles()
+    failed = {t: records[t]["error"] for t in ids if records[t]["status"] != "done"}
+    finished = [t for t in ids if t not in failed]
+    summaries = [TileSummary.from_record(records[t]) for t in finished]
+    complete = not failed
+    merge_prov = {**prov, "complete": complete, "failed_tiles": sorted(failed)}
+    outputs = merged_paths(cfg)
+    merge_key = digest("merge", merge_prov, [(t, records[t]["match_key"], records[t]["content_key"],
+                                             records[t]["selection_key"]) for t in finished])
+    state = man.get("merge") or {}
+    up_to_date = (state.get("key") == merge_key and state.get("outputs") == file_stats(outputs.values()))
+    if failed and not cfg.run.merge_incomplete:
+        merged_out = merged_from_summaries(cfg, summaries)
+        merged = False
+        rep.always(f"{len(failed)} tiles failed; run.merge_incomplete = false, so the merged outputs in {lay.run_dir} "
+                   "were left as they were")
+    elif up_to_date and not ctx.force:
+        merged_out = merged_from_summaries(cfg, summaries)
+        merged = False
+    else:
+        merged_out = merge(cfg, summaries, merge_prov, fault=fault)
+        merged = True
+        man.set("merge", {"key": merge_key, "outputs": file_stats(outputs.values())})
+    fault("merged")
+    lines = account(summaries, merged_out.candidates, ingest, failed=failed, expected_rows=ctx.expected_rows)
+    result = RunResult(complete, merged_out.tiles, merged_out.candidates, merged_out.cutflow, merged_out.outputs,
+                       failed=failed, actions=actions, merged=merged, complete=complete, accounting=lines)
+    status = "ok" if complete else "incomplete"
+    man.end_run(run_id, status, rows=sum(s.rows for s in summaries), candidates=result.candidates,
+                merged=int(merged), message=None if complete else f"{len(failed)} tiles failed")
+    _summarise(ctx, result, work_s)
+    return result
+
+
+def _work(ctx: _Run, plans: dict[int, TilePlan], reused: list[int]) -> tuple[dict, float]:
+    """Do the planned tiles and record each as it finishes; returns the actions and the seconds of work."""
+    rep, man = ctx.rep, ctx.man
+    # biggest tiles first, so no worker is left with a large tile at the end
+    items = sorted(plans.items(), key=lambda kv: (-ctx.expected_rows.get(kv[0], 0), kv[0]))
+    actions = dict.fromkeys(("computed", "reselected", "verified", "failed"), 0)
+    actions["reused"] = len(reused)
+    done_rows, t_work = 0, time.monotonic()
+    if items:
+        rep.progress(0, len(items), 0, 0)
+    for t, res in execute(ctx.cfg, items, executor=ctx.executor, workers=ctx.workers, scheduler=ctx.scheduler,
+                          note=rep.info):
+        fault("tile")
+        res = _record(ctx, t, plans[t], res)
+        fault("recorded")
+        actions[res.action] += 1
+        done_rows += int(res.rows or 0)
+        if res.action == "failed":
+            rep.detail(f"tile {t}: FAILED: {res.error}")
+            if res.traceback:
+                rep.to_file(res.traceback)
+        else:
+            rep.detail(f"tile {t}: {res.action}, {res.rows:,} rows, {res.candidates or 0:,} candidates, "
+                       f"{res.duration_s:.2f} s")
+        rep.progress(sum(actions.values()) - len(reused), len(items), done_rows, actions["failed"])
+    if items:
+        rep.progress(len(items), len(items), done_rows, actions["failed"], final=True)
+    work_s = time.monotonic() - t_work
+    man.update_run(ctx.run_id, computed=actions["computed"], reselected=actions["reselected"],
+                   verified=actions["verified"], failed=actions["failed"], work_s=work_s)
+    return actions, work_s
+
+
+def _record(ctx: _Run, t: int, plan: TilePlan, res: TileOutcome) -> TileOutcome:
+    """Check a tile's outcome against the ingest summary and store it in the manifest."""
+    cfg, lay, expected = ctx.cfg, ctx.layout, ctx.expected_rows
+    if res.action != "failed" and t in expected and res.rows != expected[t]:
+        own = lay.tile_file("astrometric", cfg.tiling.order, t)
+        res = replace(res, action="failed",
+                      error=f"{own}: holds {res.rows:,} rows but the ingest summary says {expected[t]:,}; the tiles "
+                            "changed after ingest, run `selector ingest --config ...` again")
+    if res.action == "failed":
+        ctx.man.record_tile(ctx.run_id, t, "failed", status="failed", error=res.error, duration_s=res.duration_s)
+        return res
+    # the manifest's stored fields, exactly as before the outcomes were typed
+    fields = {"status": "done", "error": None, "duration_s": res.duration_s, "match_key": plan.match_key,
+              "selection_key": plan.selection_key}
+    if res.inputs is not None:
+        inputs = [rel for rel, _ in res.inputs]
+        for rel, existed in res.inputs:
+            if rel not in ctx.shas or (ctx.shas[rel] is None) == existed:
+                # appeared or vanished while the run went on: fingerprint what is there now
+                ctx.shas[rel] = file_digest(lay.tiles_dir / rel)
+        fields.update(inputs=inputs, inputs_key=inputs_key(inputs, ctx.shas), content_key=res.content_key)
+    if res.action != "verified":
+        fields.update(rows=res.rows, rejects=res.rejects, candidates=res.candidates, cutflow=res.cutflow,
+                      outputs=output_stats(cfg, t, FEATURE_FILES + SELECTION_FILES))
+    else:
+        old = ctx.records[t]
+        res = replace(res, rows=old["rows"], candidates=old["candidates"])
+    ctx.man.record_tile(ctx.run_id, t, res.action, **fields)
+    return res
+
+
+def _summarise(ctx: _Run, result: RunResult, work_s: float) -> None:
+    rep, a = ctx.rep, result.actions
+    rep.info(format_cutflow(result.cutflow))
+    for line in result.accounting:
+        rep.info(line)
+    rep.always(f"run {ctx.run_id}: {a['computed']} tiles computed, {a['reselected']} re-selected, {a['verified']} "
+               f"checked unchanged, {a['reused']} reused, {a['failed']} failed ({work_s:.1f} s of tile work); "
+               f"{result.candidates:,} candidates in {result.outputs['ecsv']}"
+               + ("" if result.merged else " (already up to date)"))
+    if result.failed:
+        where = f"--config {ctx.config_path}" if ctx.config_path else "--config <your config file>"
+        rep.always(f"INCOMPLETE: {len(result.failed)} of {len(result.failed) + result.tiles} tiles failed"
+                   + (" (the merged list holds the finished tiles only; its provenance says complete: false):"
+                      if result.merged else ":"))
+        shown = sorted(result.failed.items())
+        for t, err in shown[:20]:
+            rep.always(f"  tile {t}: {err}")
+        if len(shown) > 20:
+            rep.always(f"  ... and {len(shown) - 20} more (`selector status {where} --failed` lists them all)")
+        rep.always(f"fix the files named above (a damaged ingested tile: run `selector ingest {where}` again), then "
+                   f"run `selector run {where}`: only the failed tiles are recomputed")
+    rep.info(f"run log: {result.log_file or ctx.layout.run_log(ctx.run_id)}")

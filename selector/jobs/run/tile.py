@@ -11,6 +11,7 @@ from selector.core.selection import TILE_REJECT_REASONS, candidates_table, cutfl
 from selector.core.tilematch import match_tile
 from selector.store.tilereader import load_tile
 from selector.settings.config import Config
+from selector.store.layout import layout_of
 
 
 @dataclass
@@ -48,8 +49,10 @@ def select_tile(cfg: Config, tile: int, n_rows: int, features: pa.Table, scorer=
 
 
 def tile_output_dir(cfg: Config, tile: int):
-    return cfg.run_dir / "tiles" / f"tile{int(tile):08d}"
+    """The folder of a tile's run outputs (feature cache, candidates, rejects, cut-flow)."""
+    return layout_of(cfg).tile_output_dir(tile)
 
 
 def read_tile_cutflow(cfg: Config, tile: int) -> dict:
-    return json.loads((tile_output_dir(cfg, tile) / "cutflow.json").read_text())
+    """A tile's recorded cut-flow file: ``tile``, ``rows``, ``rejects``, ``cutflow``."""
+    return json.loads(layout_of(cfg).tile_cutflow(tile).read_text())

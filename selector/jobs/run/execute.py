@@ -1,0 +1,344 @@
+"""Doing the tiles: one tile's work, and the executors that run many (in-process, local pool, Dask).
+
+:func:`run_tile` does one tile on any executor and writes its files atomically; it never raises, a
+tile's failure is its outcome. The executors yield outcomes as tiles finish; only the process that
+holds the run lock records them in the manifest.
+"""
+
+from __future__ import annotations
+
+import os
+import signal
+import sys
+import time
+import traceback
+from concurrent.futures import ProcessPoolExecutor, as_completed
+from dataclasses import dataclass
+
+import pyarrow as pa
+
+from selector import __version__
+from selector.core import schema
+from selector.core.frames import galactic_matrix
+from selector.core.selection import check_accounting
+from selector.core.tilematch import match_tile
+from selector.errors import InputError, SelectorError
+from selector.jobs.train import load_scorer
+from selector.jobs.run.plan import TilePlan, compute_plan, tile_rel
+from selector.jobs.run.tile import select_tile
+from selector.settings.config import Config
+from selector.store.io import read_parquet, write_json, write_parquet
+from selector.store.keys import combined_digest, model_sha, table_digest
+from selector.store.layout import layout_of
+from selector.store.lock import close_inherited_lock
+from selector.store.tilereader import load_tile
+
+#: Environment variable naming a moment at which the run kills itself with SIGKILL (tests only):
+#: ``planned``, ``tile@N`` (N-th tile result received, not yet recorded), ``recorded@N``,
+#: ``merge:<ecsv|csv|parquet|cutflow|provenance>`` (after writing that merged file) or ``merged``.
+KILL_AT_ENV = "SELECTOR_TEST_KILL_AT"
+
+
+@dataclass
+class TileOutcome:
+    """What one tile's work gave; returned by the worker, so plain and picklable.
+
+    Attributes
+    ----------
+    tile : int
+    action : {"computed", "reselected", "verified", "failed"}
+    duration_s : float
+        Wall time of the tile's work.
+    rows, rejects, candidates : int or None
+        Own rows, tile rejects and candidates (finished tiles; ``rows`` also after loading).
+    cutflow : list of [stage, rows left] or None
+        The tile's cut-flow (finished tiles).
+    inputs : list of (str, bool) or None
+        After loading: each consulted tile file, relative to the tiles folder, and whether it existed.
+    content_key : str or None
+        After loading: digest of the rows actually used.
+    error : str or None
+        Failures: the one-line error.
+    traceback : str or None
+        Failures not caused by the input: the traceback, for the run log.
+    """
+
+    tile: int
+    action: str = ""
+    duration_s: float = 0.0
+    rows: int | None = None
+    rejects: int | None = None
+    candidates: int | None = None
+    cutflow: list | None = None
+    inputs: list | None = None
+    content_key: str | None = None
+    error: str | None = None
+    traceback: str | None = None
+
+
+def failure(tile: int, message: str) -> TileOutcome:
+    """The outcome of a tile whose worker could not report one."""
+    return TileOutcome(int(tile), "failed", error=message)
+
+
+def one_line(exc: BaseException) -> str:
+    """An exception as one line: its message for our errors, its type and first line otherwise."""
+    text = str(exc).strip().splitlines()
+    first = text[0] if text else ""
+    if isinstance(exc, SelectorError):
+        return first
+    return f"{type(exc).__name__}: {first} (unexpected; the run log has the traceback)"
+
+
+_SCORERS: dict = {}
+
+
+def _scorer(cfg: Config, model: tuple[str, str] | None):
+    # one model per worker process: loading it is slow, and a worker only ever sees one run's model
+    if model is None:
+        return None
+    if model not in _SCORERS:
+        _SCORERS.clear()
+        _SCORERS[model] = load_scorer(model[0], cfg)
+    return _SCORERS[model]
+
+
+def _required_columns(cfg: Config, kind: str) -> list[str]:
+    cat = getattr(cfg, kind)
+    cols = [schema.role(kind, name).canonical for name in cat.columns]
+    for m in cat.magnitudes:
+        if kind == "infrared":
+            cols.append(schema.infrared_mag_column(m.band))
+            if m.error_column:
+                cols.append(schema.infrared_error_column(m.band))
+        else:
+            cols.append(schema.optical_mag_column(m.band))
+            if m.error_column:
+                cols.append(schema.optical_error_column(m.band))
+    return cols
+
+
+def _check_columns(cfg: Config, kind: str, path, table: pa.Table) -> None:
+    missing = [c for c in _required_columns(cfg, kind) if c not in table.column_names]
+    if missing:
+        raise InputError(f"{path}: column '{missing[0]}' is missing ({len(missing)} of the ingested {kind} columns "
+                         f"are); this is not a tile of this configuration, run `selector ingest --config ...` again")
+
+
+def _normalised(features: pa.Table) -> pa.Table:
+    # the same table whether it comes from the match or from the cache file, so both give equal bytes
+    return features.replace_schema_metadata(None).combine_chunks()
+
+
+def run_tile(cfg: Config, tile: int, plan: TilePlan | None = None) -> TileOutcome:
+    """Do one tile's work and write its files; the unit of work of every executor.
+
+    Parameters
+    ----------
+    cfg : Config
+    tile : int
+    plan : TilePlan, optional
+        What to do, as made by the planner. Default: compute with ``cfg``'s keys.
+
+    Returns
+    -------
+    TileOutcome
+        Exceptions never escape: a tile's failure is its outcome, with its one-line error.
+    """
+    t0 = time.perf_counter()
+    if plan is None:
+        plan = compute_plan(cfg, model_sha(cfg))
+    try:
+        out = _work(cfg, int(tile), plan)
+    except Exception as exc:  # a tile's failure must not end the run: it is recorded instead
+        out = TileOutcome(int(tile), "failed", error=one_line(exc),
+                          traceback=None if isinstance(exc, SelectorError) else traceback.format_exc())
+    out.duration_s = time.perf_counter() - t0
+    return out
+
+
+def _work(cfg: Config, tile: int, plan: TilePlan) -> TileOutcome:
+    lay = layout_of(cfg)
+    mode = plan.mode
+    out = TileOutcome(tile)
+    features = None
+    if mode in ("compute", "check"):
+        consulted, digests = {}, {}
+
+        def on_input(kind, t, path, part):
+            rel = tile_rel(cfg, kind, t)
+            consulted[rel] = part is not None
+            if part is None:
+                return
+            if t == tile and kind == "astrometric" or kind == "infrared":
+                _check_columns(cfg, kind, path, part)
+            if part.num_rows:
+                digests[rel] = table_digest(part)
+
+        own, neighbours, infrared = load_tile(cfg, tile, on_input)
+        content_key = combined_digest(digests)
+        rows = own.num_rows
+        out.inputs, out.content_key, out.rows = sorted(consulted.items()), content_key, rows
+        if mode == "check" and content_key == plan.content_key:
+            if not plan.reselect:
+                out.action = "verified"
+                return out
+            mode = "select"
+        else:
+            m = match_tile(own, neighbours, infrared, tile, cfg.match.radius_arcsec, cfg.epoch_difference_yr,
+                           cfg.tiling.order)
+            features = _normalised(m.features)
+            match_prov = {"provenance": {"tile": tile, "match_key": plan.match_key, "content_key": content_key,
+                                         "selector_version": __version__}}
+            write_parquet(features, lay.tile_output(tile, "features.parquet"), match_prov)
+            # the blend count of every infrared source the tile owns, matched or not
+            write_parquet(m.infrared, lay.tile_output(tile, "infrared.parquet"), match_prov)
+            out.action = "computed"
+    else:
+        rows = int(plan.rows)
+    if features is None:
+        features = _normalised(read_parquet(lay.tile_output(tile, "features.parquet")))
+        out.action = "reselected"
+    result = select_tile(cfg, tile, rows, features, _scorer(cfg, plan.model))
+    check_accounting(result.n_rows, result.rejects.num_rows, result.cutflow)
+    tile_prov = {"tile": tile, "match_key": plan.match_key, "selection_key": plan.selection_key,
+                 "selector_version": __version__}
+    write_parquet(result.candidates, lay.tile_output(tile, "candidates.parquet"), {"provenance": tile_prov})
+    write_parquet(result.rejects, lay.tile_output(tile, "rejects.parquet"))
+    write_json({"tile": tile, "rows": result.n_rows, "rejects": result.rejects.num_rows, "cutflow": result.cutflow},
+               lay.tile_output(tile, "cutflow.json"))
+    out.rows, out.rejects, out.candidates = result.n_rows, result.rejects.num_rows, result.candidates.num_rows
+    out.cutflow = [[n, int(c)] for n, c in result.cutflow]
+    return out
+
+
+def worker_count(cfg: Config, workers: int | None) -> int:
+    """Workers to use: ``workers``, else ``run.workers``; 0 or less means one per core."""
+    n = cfg.run.workers if workers is None else workers
+    return n if n and n > 0 else (os.cpu_count() or 1)
+
+
+def _worker_init(parent_pid: int) -> None:
+    """Start of a pool worker: die with the parent, and let go of the inherited lock descriptor."""
+    try:
+        import ctypes
+
+        libc = ctypes.CDLL(None, use_errno=True)
+        libc.prctl(1, signal.SIGKILL)  # PR_SET_PDEATHSIG (Linux): a killed run leaves no orphan writers
+    except (OSError, AttributeError):
+        pass
+    if os.getppid() != parent_pid:
+        os._exit(1)
+    close_inherited_lock()
+
+
+def _local_pool(cfg: Config, items: list, n: int):
+    import multiprocessing as mp
+    from concurrent.futures.process import BrokenProcessPool
+
+    ctx = mp.get_context("fork") if "fork" in mp.get_all_start_methods() else None
+    if ctx is not None:
+        galactic_matrix()  # built once here (astropy frames are slow to start); forked workers inherit it
+    pool = ProcessPoolExecutor(max_workers=min(n, len(items)), mp_context=ctx, initializer=_worker_init,
+                               initargs=(os.getpid(),))
+    try:
+        futures = {pool.submit(run_tile, cfg, t, p): t for t, p in items}
+        for f in as_completed(futures):
+            t = futures[f]
+            try:
+                yield t, f.result()
+            except BrokenProcessPool:
+                yield t, failure(t, "its worker process died (killed, or out of memory?); run again to retry")
+    finally:
+        pool.shutdown(wait=False, cancel_futures=True)
+
+
+def _dask(cfg: Config, items: list, *, workers: int, scheduler: str | None, note):
+    try:
+        from distributed import Client, LocalCluster
+        from distributed import as_completed as dask_as_completed
+    except ImportError:
+        raise SelectorError("run.executor = 'dask' needs the dask[distributed] package; install it with "
+                            "`pip install 'selector[cluster]'`") from None
+    import logging
+    import uuid
+    import warnings
+
+    cluster = None
+    try:
+        if scheduler:
+            client = Client(scheduler, timeout="20s")
+            note(f"Dask scheduler {scheduler}: {len(client.scheduler_info().get('workers', {}))} workers")
+        else:
+            with warnings.catch_warnings():
+                warnings.simplefilter("ignore")  # "port 8787 in use": its status page moves to a free port
+                cluster = LocalCluster(n_workers=workers, threads_per_worker=1, processes=True, host="127.0.0.1",
+                                       dashboard_address=None, silence_logs=logging.ERROR)
+            client = Client(cluster)
+            note(f"local Dask cluster with {workers} worker processes")
+    except (OSError, TimeoutError) as exc:
+        if cluster is not None:
+            cluster.close()
+        raise SelectorError(f"cannot reach the Dask scheduler at {scheduler} ({one_line(exc)}); check "
+                            "run.scheduler / --scheduler, or leave it out for a local cluster") from None
+    token = uuid.uuid4().hex[:12]
+    try:
+        futures = {client.submit(run_tile, cfg, t, p, key=f"selector-tile-{t}-{token}", pure=False, retries=0): t
+                   for t, p in items}
+        for f in dask_as_completed(list(futures)):
+            t = futures[f]
+            if f.status == "finished":
+                yield t, f.result()
+            else:
+                exc = f.exception()
+                yield t, failure(t, f"the Dask worker running it failed ({one_line(exc)}); run again to retry")
+    finally:
+        client.close()
+        if cluster is not None:
+            cluster.close()
+
+
+def execute(cfg: Config, items: list, *, executor: str, workers: int, scheduler: str | None = None,
+            note=print):
+    """Run the planned tiles; yield ``(tile, TileOutcome)`` as tiles finish, in any order.
+
+    Parameters
+    ----------
+    cfg : Config
+    items : list of (int, TilePlan)
+        The tiles to do, in the order to start them.
+    executor : {"local", "dask"}
+    workers : int
+        Local worker processes (or local Dask workers); one means in this process.
+    scheduler : str, optional
+        Dask scheduler address; a local Dask cluster when not given.
+    note : callable
+        Where to say which executor was started.
+    """
+    if not items:
+        return
+    if executor == "dask":
+        yield from _dask(cfg, items, workers=workers, scheduler=scheduler, note=note)
+    elif workers == 1 or len(items) == 1:
+        for t, p in items:
+            yield t, run_tile(cfg, t, p)
+    else:
+        yield from _local_pool(cfg, items, workers)
+
+
+_FAULT_COUNTS: dict = {}
+
+
+def fault(event: str) -> None:
+    """Kill this process with SIGKILL at the moment named by ``$SELECTOR_TEST_KILL_AT`` (tests)."""
+    spec = os.environ.get(KILL_AT_ENV)
+    if not spec:
+        return
+    name, _, count = spec.partition("@")
+    if name != event:
+        return
+    _FAULT_COUNTS[event] = _FAULT_COUNTS.get(event, 0) + 1
+    if _FAULT_COUNTS[event] >= int(count or 1):
+        sys.stdout.flush()
+        sys.stderr.flush()
+        os.kill(os.getpid(), signal.SIGKILL)
