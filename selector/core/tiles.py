@@ -80,6 +80,8 @@ def tiles_near(tile: int, order: int, margin_arcsec: float) -> np.ndarray:
     return np.unique(np.append(near, tile)).astype(np.int64)
 
 
+# transitional: file names belong to store.layout (Layout.tile_file, Layout.list_tiles); these two stay
+# only until the tune and demo modules use the layout, then they are removed from core
 def tile_file(root: Path, catalogue: str, order: int, tile: int) -> Path:
     """Path of a tile's Parquet file: ``<root>/<catalogue>/order<NN>/tile<NNNNNNNN>.parquet``."""
     return Path(root) / catalogue / f"order{order:02d}" / f"tile{int(tile):08d}.parquet"

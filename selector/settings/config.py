@@ -493,6 +493,8 @@ class Config:
     def output_dir(self) -> Path:
         return self.path(self.project.output_dir)
 
+    # transitional: store.layout owns these paths; kept only until the train, targets, tune, report
+    # and demo modules ask layout_of(cfg) instead, then removed
     @property
     def tiles_dir(self) -> Path:
         return self.output_dir / "tiles"
