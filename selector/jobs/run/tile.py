@@ -31,12 +31,14 @@ def process_tile(cfg: Config, tile: int, scorer=None, keep_pairs: bool = False) 
     own, neighbours, infrared = load_tile(cfg, tile)
     m = match_tile(own, neighbours, infrared, tile, cfg.match.radius_arcsec, cfg.epoch_difference_yr,
                    cfg.tiling.order)
-    result = select_tile(cfg, tile, own.num_rows, m.features, scorer, m.pairs if keep_pairs else None)
+    result = select_tile(cfg, tile, own.num_rows, m.features, scorer,
+                         pairs=m.pairs if keep_pairs else None)
     result.infrared = m.infrared
     return result
 
 
-def select_tile(cfg: Config, tile: int, n_rows: int, features: pa.Table, scorer=None, pairs=None) -> TileResult:
+def select_tile(cfg: Config, tile: int, n_rows: int, features: pa.Table, scorer=None, *,
+                pairs=None) -> TileResult:
     """The selection half of a tile: rejects, cuts, scores, cut-flow (shared by run and tune)."""
     bad = tile_rejects(features)
     rejects = features.filter(pa.array(bad)).select(["astro_id"]).append_column(
