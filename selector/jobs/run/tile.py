@@ -50,11 +50,6 @@ def select_tile(cfg: Config, tile: int, n_rows: int, features: pa.Table, scorer=
     return TileResult(tile, n_rows, features, candidates_table(usable, sel), rejects, flow, pairs)
 
 
-def tile_output_dir(cfg: Config, tile: int):
-    """The folder of a tile's run outputs (feature cache, candidates, rejects, cut-flow)."""
-    return layout_of(cfg).tile_output_dir(tile)
-
-
 def read_tile_cutflow(cfg: Config, tile: int) -> dict:
     """A tile's recorded cut-flow file: ``tile``, ``rows``, ``rejects``, ``cutflow``."""
     return json.loads(layout_of(cfg).tile_cutflow(tile).read_text())
