@@ -61,7 +61,7 @@ class TileMatch:
     infrared: pa.Table | None = None
 
 
-def match_tile(own: pa.Table, neighbours: pa.Table, infrared: pa.Table, tile: int, radius_arcsec: float,
+def match_tile(own: pa.Table, neighbours: pa.Table, infrared: pa.Table, tile: int, *, radius_arcsec: float,
                dt_yr: float, order: int | None = None) -> TileMatch:
     """Cross-match the owned sources of a tile against the infrared sources around it.
 

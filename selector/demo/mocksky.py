@@ -51,6 +51,15 @@ import pyarrow as pa
 import pyarrow.csv as pacsv
 import pyarrow.parquet as pq
 
+from selector.core import tiles
+from selector.core.truth import compare
+from selector.jobs.ingest import ingest
+from selector.jobs.run import run
+from selector.jobs.targets import make_targets
+from selector.present.report import write_report
+from selector.settings.config import load_config
+from selector.store.io import read_parquet
+
 __all__ = [
     "ASTROMETRIC_EPOCH_JYEAR",
     "INFRARED_EPOCH_JYEAR",
@@ -1287,9 +1296,6 @@ def write_demo_config(out_dir) -> pathlib.Path:
 
 def evaluate_run(cfg, truth_path) -> "object":
     """Completeness and contamination of a finished run against the mock truth."""
-    from selector.core import tiles
-    from selector.store.io import read_parquet
-    from selector.core.truth import compare
 
     def whole(kind):
         parts = [read_parquet(tiles.tile_file(cfg.tiles_dir, kind, cfg.tiling.order, t))
@@ -1304,11 +1310,6 @@ def evaluate_run(cfg, truth_path) -> "object":
 def run_demo(out_dir, seed: int = 1, scale: float = 1.0, workers=None, log=print):
     """Write the mock sky and its config into ``out_dir``, ingest, run, score against the truth,
     then make the follow-up list for the demo site and the HTML report."""
-    from selector.jobs.run import run
-    from selector.settings.config import load_config
-    from selector.jobs.targets import make_targets
-    from selector.jobs.ingest import ingest
-    from selector.present.report import write_report
 
     out = pathlib.Path(out_dir)
     log(f"writing an invented mock sky (seed {seed}, scale {scale}) to {out / 'catalogues'}")

@@ -185,8 +185,8 @@ def _work(cfg: Config, tile: int, plan: TilePlan) -> TileOutcome:
                 return out
             mode = "select"
         else:
-            m = match_tile(own, neighbours, infrared, tile, cfg.match.radius_arcsec, cfg.epoch_difference_yr,
-                           cfg.tiling.order)
+            m = match_tile(own, neighbours, infrared, tile, radius_arcsec=cfg.match.radius_arcsec,
+                           dt_yr=cfg.epoch_difference_yr, order=cfg.tiling.order)
             features = _normalised(m.features)
             match_prov = {"provenance": {"tile": tile, "match_key": plan.match_key, "content_key": content_key,
                                          "selector_version": __version__}}

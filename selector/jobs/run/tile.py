@@ -29,8 +29,8 @@ class TileResult:
 def process_tile(cfg: Config, tile: int, scorer=None, keep_pairs: bool = False) -> TileResult:
     """Run every stage for one tile and return its tables (nothing written)."""
     own, neighbours, infrared = load_tile(cfg, tile)
-    m = match_tile(own, neighbours, infrared, tile, cfg.match.radius_arcsec, cfg.epoch_difference_yr,
-                   cfg.tiling.order)
+    m = match_tile(own, neighbours, infrared, tile, radius_arcsec=cfg.match.radius_arcsec,
+                   dt_yr=cfg.epoch_difference_yr, order=cfg.tiling.order)
     result = select_tile(cfg, tile, own.num_rows, m.features, scorer,
                          pairs=m.pairs if keep_pairs else None)
     result.infrared = m.infrared
