@@ -41,6 +41,7 @@ from selector.jobs.run import run  # noqa: E402
 from selector.settings.config import load_config  # noqa: E402
 from selector.jobs.ingest import ingest  # noqa: E402
 from selector.store.io import read_parquet  # noqa: E402
+from selector.store.layout import layout_of
 
 
 def _quiet(*args):
@@ -103,7 +104,7 @@ def main(argv=None) -> int:
         print(f"  one plain fit (reference)       {t_fit:8.1f} s")
         print(f"  selector train_labelled         {t_train:8.1f} s   ratio {t_train / t_fit:5.2f}")
 
-        features = pa.concat_tables([read_parquet(f) for f in sorted((cfg.run_dir / "tiles").glob(
+        features = pa.concat_tables([read_parquet(f) for f in sorted((layout_of(cfg).run_dir / "tiles").glob(
             "tile*/features.parquet"))], promote_options="permissive")
         model = result.model
         model.score_table(features.slice(0, 100), cfg)  # warm up imports and the thread controller

@@ -42,6 +42,7 @@ sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 from selector.jobs import run as run_job  # noqa: E402
 from selector.jobs import ingest, tune
 from selector.settings.config import load_config  # noqa: E402
+from selector.store.layout import layout_of
 
 _PIECE = 1_000_000
 
@@ -178,7 +179,7 @@ def main(argv=None) -> int:
                                lambda: run_job.run(cfg, quiet=True, log=lambda *a: None))
         cfg = load_config(config_path)
         # a change from what the run records (a kept folder may already hold an earlier change)
-        recorded_cfg, _ = tune.run_config(cfg.run_dir, base_dir=folder)
+        recorded_cfg, _ = tune.run_config(layout_of(cfg).run_dir, base_dir=folder)
         change = ["motion.parallax_snr_max=4", 'colours.criteria=["assef2018_r75"]']
         if not tune.setting_changes(recorded_cfg, tune.with_settings(recorded_cfg, change)):
             change = ["motion.parallax_snr_max=3", 'colours.criteria=["stern2012"]']

@@ -29,6 +29,7 @@ from selector.settings.config import config_hash, from_dict, load_config
 from selector.errors import SelectorError
 from selector.jobs.ingest import ingest
 from selector.store.io import read_parquet
+from selector.store.layout import layout_of
 
 from conftest import base_config, build
 
@@ -363,7 +364,7 @@ class NotAModelPart:
 
 def test_model_loads_and_scores(trained, model_copy):
     model = train.load_model(model_copy, trained["cfg"])
-    features = read_parquet(sorted((trained["cfg"].run_dir / "tiles").glob("tile*/features.parquet"))[0])
+    features = read_parquet(sorted((layout_of(trained["cfg"]).run_dir / "tiles").glob("tile*/features.parquet"))[0])
     p = train.load_scorer(model_copy, trained["cfg"])(features)
     passed, _, _ = zero_motion(features, trained["cfg"])
     assert np.all(np.isnan(p[~passed])) and np.all((p[passed] >= 0) & (p[passed] <= 1))
@@ -454,12 +455,12 @@ def test_run_with_a_model_ranks_candidates_by_p_quasar(trained):
     assert result.ok
     flow = dict(result.cutflow)
     assert flow["classifier"] <= flow["infrared_colour"] and flow["classifier"] == result.candidates > 0
-    t = Table.read(cfg.run_dir / "candidates.ecsv")
+    t = Table.read(layout_of(cfg).run_dir / "candidates.ecsv")
     p = np.asarray(t["p_quasar"])
     assert np.all(np.diff(p) <= 0) and np.all(p >= cfg.classifier.threshold)
     # the list carries the model's own probabilities
     scorer = train.load_scorer(trained["model"], cfg)
-    features = pa.concat_tables([read_parquet(f) for f in sorted((cfg.run_dir / "tiles").glob("tile*/features.parquet"))])
+    features = pa.concat_tables([read_parquet(f) for f in sorted((layout_of(cfg).run_dir / "tiles").glob("tile*/features.parquet"))])
     ids = features.column("astro_id").to_numpy()
     p_all = scorer(features)
     lookup = dict(zip(ids.tolist(), p_all.tolist()))
@@ -473,4 +474,4 @@ def test_run_with_a_model_ranks_candidates_by_p_quasar(trained):
     # back to the criteria-based ranking without a model
     plain_run = run(_config(trained), workers=1, quiet=True, log=_quiet)
     assert "classifier" not in dict(plain_run.cutflow)
-    assert "p_quasar" not in Table.read(cfg.run_dir / "candidates.ecsv").colnames
+    assert "p_quasar" not in Table.read(layout_of(cfg).run_dir / "candidates.ecsv").colnames

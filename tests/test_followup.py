@@ -23,6 +23,7 @@ from selector.store.history import read_history, score_history
 from selector.cli import main
 from selector.errors import ConfigError, InputError
 from selector.store.io import write_parquet
+from selector.store.layout import layout_of
 
 from conftest import base_config, build
 
@@ -50,7 +51,7 @@ def _candidates(cfg, ids, ra, dec, score, mag46=None, run_hash="run-a"):
         "opt_broad_abmag": np.full(n, 18.0), "criteria_score": np.asarray(score, float),
         "ir_id": pa.array([f"IR{i}" for i in range(n)]),
     })
-    write_parquet(table, cfg.run_dir / "candidates.parquet",
+    write_parquet(table, layout_of(cfg).run_dir / "candidates.parquet",
                   {"provenance": {"config_hash": run_hash, "selector_version": "test"}})
 
 
@@ -58,7 +59,7 @@ def _known_objects(cfg, names, ra, dec, classes, z):
     table = pa.table({"known_name": pa.array(names), "ra_deg": np.asarray(ra, float),
                       "dec_deg": np.asarray(dec, float), "known_class": pa.array(classes),
                       "redshift": np.asarray(z, float)})
-    write_parquet(table, cfg.tiles_dir / "known" / "objects.parquet")
+    write_parquet(table, layout_of(cfg).tiles_dir / "known" / "objects.parquet")
 
 
 def _toml(data: dict, prefix: str = "") -> str:
@@ -537,5 +538,5 @@ def test_demo_config_has_a_semester_for_the_demo_site():
 
     cfg = load_config(Path(__file__).resolve().parents[1] / "configs" / "demo.toml")
     t = cfg.targets
-    assert t.site.name == "the demo site" and (t.start_date, t.end_date) == ("2027-04-01", "2027-10-01")
+    assert t.site.name == "Demo Flats" and (t.start_date, t.end_date) == ("2027-04-01", "2027-10-01")
     assert math.isclose(t.altitude_limit_deg, 30.0)

@@ -21,6 +21,7 @@ from selector.present import plots, report
 from selector.cli import main
 from selector.settings.config import load_config
 from selector.store.cache import load_cache
+from selector.store.layout import layout_of
 
 PNG_MAGIC = b"\x89PNG\r\n\x1a\n"
 
@@ -210,7 +211,7 @@ def _check_self_contained(text: str) -> None:
 def moved_run(demo_run, tmp_path_factory):
     """The run folder alone, copied somewhere else (no config file, no ingested tiles beside it)."""
     dest = tmp_path_factory.mktemp("moved") / "run"
-    shutil.copytree(demo_run.run_dir, dest)
+    shutil.copytree(layout_of(demo_run).run_dir, dest)
     return dest
 
 
@@ -226,7 +227,7 @@ def test_report_is_self_contained_and_complete(demo_run, moved_run):
         _png_size(base64.b64decode(src.split(",", 1)[1]))
     import json
 
-    prov = json.loads((demo_run.run_dir / "provenance.json").read_text())
+    prov = json.loads((layout_of(demo_run).run_dir / "provenance.json").read_text())
     assert prov["config_hash"] in text and prov["match_config_hash"] in text
     assert "Note:" not in text  # the recorded candidates are what the cache gives
     assert report.build_report(moved_run, top=20) == text  # no clock in the page
@@ -235,7 +236,7 @@ def test_report_is_self_contained_and_complete(demo_run, moved_run):
 def load_config_candidates(cfg) -> int:
     from selector.store.io import read_parquet
 
-    return read_parquet(cfg.run_dir / "candidates.parquet").num_rows
+    return read_parquet(layout_of(cfg).run_dir / "candidates.parquet").num_rows
 
 
 def test_report_command(moved_run, tmp_path, capsys):

@@ -25,6 +25,7 @@ from selector.errors import ConfigError, SelectorError
 from selector.store.cache import load_cache
 from selector.store.io import read_parquet
 from selector.store.truth import load_truth
+from selector.store.layout import layout_of
 
 ROOT = Path(__file__).resolve().parents[1]
 
@@ -56,7 +57,7 @@ def _full_rerun(cfg, settings, folder: Path):
     data["project"]["output_dir"] = str(folder)
     new = from_dict(data, base_dir=cfg.base_dir)
     folder.mkdir(parents=True)
-    (folder / "tiles").symlink_to(cfg.tiles_dir, target_is_directory=True)
+    (folder / "tiles").symlink_to(layout_of(cfg).tiles_dir, target_is_directory=True)
     run_job.run(new, workers=1, quiet=True, log=lambda *a: None)
     return new
 
@@ -129,18 +130,18 @@ def test_tune_equals_a_full_rerun(demo_run, reruns, name, block_rows, monkeypatc
     assert len(out.after.blocks) == (1 if block_rows is None else -(-out.cache.n_rows // block_rows))
     cache, ev = out.cache, out.after
     # the candidates, every column, as the re-run's merged list holds them
-    rerun_cands = read_parquet(new.run_dir / "candidates.parquet")
+    rerun_cands = read_parquet(layout_of(new).run_dir / "candidates.parquet")
     assert rerun_cands.num_rows > 0
     assert _same(tune.candidates(cache, ev), rerun_cands)
     # cut-flow totals and every tile's cut-flow, as the re-run's select_tile wrote them
-    prov = json.loads((new.run_dir / "provenance.json").read_text())
+    prov = json.loads((layout_of(new).run_dir / "provenance.json").read_text())
     assert [list(x) for x in ev.cutflow] == prov["cutflow"]
     for i, tile in enumerate(cache.tiles):
         recorded = tile_job.read_tile_cutflow(new, int(tile))
         assert [list(x) for x in ev.tile_cutflow(i)] == recorded["cutflow"], tile
         assert cache.rejects_per_tile[i] == recorded["rejects"]
     # the "before" side is the run as recorded
-    run_prov = json.loads((cfg.run_dir / "provenance.json").read_text())
+    run_prov = json.loads((layout_of(cfg).run_dir / "provenance.json").read_text())
     assert [list(x) for x in out.before.cutflow] == run_prov["cutflow"]
 
 
@@ -148,7 +149,7 @@ def test_tile_rejects_are_counted_as_the_run_counts_them(demo_run, tmp_path):
     """Rows with a zero astrometric error leave the cut-flow per tile exactly as select_tile says."""
     cfg, _, _ = demo_run
     run_dir = tmp_path / "run"
-    shutil.copytree(cfg.run_dir, run_dir)
+    shutil.copytree(layout_of(cfg).run_dir, run_dir)
     moved, _ = tune.run_config(run_dir)
     cache0 = load_cache(moved, tune.needed_columns(moved))
     i = int(np.argmax(np.diff(cache0.offsets)))  # the tile with most cached rows
@@ -184,7 +185,7 @@ def test_stage_list_follows_the_config(demo_run):
 def test_classifier_scores_are_applied_like_select_tile(demo_run):
     """With probabilities from a model, the vectorised path equals select_tile tile by tile."""
     cfg, _, _ = demo_run
-    changed = tune.with_settings(cfg, ["classifier.threshold=0.6"])
+    changed = tune.with_settings(cfg, ["classifier.threshold=0.8"])
 
     def scorer(table):  # any per-row function of the features will do
         c = selection._col(table, "ir_3p4_vegamag") - selection._col(table, "ir_4p6_vegamag")
@@ -338,8 +339,8 @@ def test_write_makes_the_tuned_selection_the_run_result(demo_run, reruns, tmp_pa
     code = main(["tune", "--config", str(copy / path.name), *sum((["--set", s] for s in CHANGES["thresholds"]), []),
                  "--write"])
     assert code == 0
-    run_dir = load_config(copy / path.name).run_dir
-    rerun = reruns["thresholds"].run_dir
+    run_dir = layout_of(load_config(copy / path.name)).run_dir
+    rerun = layout_of(reruns["thresholds"]).run_dir
     assert _same(read_parquet(run_dir / "candidates.parquet"), read_parquet(rerun / "candidates.parquet"))
     assert (run_dir / "cutflow.csv").read_bytes() == (rerun / "cutflow.csv").read_bytes()
     # the run now records the tuned settings: tuning again from it changes nothing

@@ -7,7 +7,6 @@ on the sky close in the file and makes the order deterministic.
 
 from __future__ import annotations
 
-from pathlib import Path
 
 import healpy as hp
 import numpy as np
@@ -82,14 +81,3 @@ def tiles_near(tile: int, order: int, margin_arcsec: float) -> np.ndarray:
 
 # transitional: file names belong to store.layout (Layout.tile_file, Layout.list_tiles); these two stay
 # only until the tune and demo modules use the layout, then they are removed from core
-def tile_file(root: Path, catalogue: str, order: int, tile: int) -> Path:
-    """Path of a tile's Parquet file: ``<root>/<catalogue>/order<NN>/tile<NNNNNNNN>.parquet``."""
-    return Path(root) / catalogue / f"order{order:02d}" / f"tile{int(tile):08d}.parquet"
-
-
-def list_tiles(root: Path, catalogue: str, order: int) -> list[int]:
-    """Tile ids present on disk for a catalogue, ascending."""
-    folder = Path(root) / catalogue / f"order{order:02d}"
-    if not folder.is_dir():
-        return []
-    return sorted(int(p.stem[4:]) for p in folder.glob("tile*.parquet"))

@@ -80,7 +80,6 @@ import pyarrow as pa
 import pyarrow.csv as pacsv
 import pyarrow.parquet as pq
 
-from selector.core import tiles
 from selector.core.truth import compare
 from selector.jobs.ingest import ingest
 from selector.jobs.run import run
@@ -88,6 +87,7 @@ from selector.jobs.targets import make_targets
 from selector.present.report import write_report
 from selector.settings.config import load_config
 from selector.store.io import read_parquet
+from selector.store.layout import layout_of, targets_dir
 
 __all__ = [
     "ASTROMETRIC_EPOCH_JYEAR",
@@ -1628,11 +1628,12 @@ def evaluate_run(cfg, truth_path) -> "object":
     """Completeness and contamination of a finished run against the mock truth."""
 
     def whole(kind):
-        parts = [read_parquet(tiles.tile_file(cfg.tiles_dir, kind, cfg.tiling.order, t))
-                 for t in tiles.list_tiles(cfg.tiles_dir, kind, cfg.tiling.order)]
+        lay = layout_of(cfg)
+        parts = [read_parquet(lay.tile_file(kind, cfg.tiling.order, t))
+                 for t in lay.list_tiles(kind, cfg.tiling.order)]
         return pa.concat_tables(parts)
 
-    candidates = read_parquet(cfg.run_dir / "candidates.parquet", columns=["astro_id"])
+    candidates = read_parquet(layout_of(cfg).candidates, columns=["astro_id"])
     return compare(candidates.column("astro_id"), pq.read_table(truth_path), whole("astrometric"),
                    whole("infrared"), COMPLETENESS, magnitude_column="opt_broad_abmag", bins=RECOVERY_BINS_ABMAG)
 
@@ -1654,11 +1655,11 @@ def run_demo(out_dir, seed: int = 1, scale: float = 1.0, workers=None, log=print
     log(report.as_text("optical broad-band AB magnitude"))
     log("")
     targets = make_targets(cfg, log=log)
-    page = write_report(cfg.run_dir)
+    page = write_report(layout_of(cfg).run_dir)
     log("")
     log(f"ranked candidates: {result.outputs['ecsv']} (also .csv and .parquet)")
-    log(f"per-tile feature cache and cut-flow: {cfg.run_dir / 'tiles'}")
-    log(f"follow-up list for the demo site: {targets.outputs.get('ecsv', cfg.output_dir / 'targets')}")
+    log(f"per-tile feature cache and cut-flow: {layout_of(cfg).run_tiles_dir}")
+    log(f"follow-up list for the demo site: {targets.outputs.get('ecsv', targets_dir(cfg))}")
     log(f"report: {page}")
     log("next: `selector tune --config {0} --set motion.parallax_snr_max=4`, or `selector train --config {0}` "
         "and set classifier.model".format(out / "demo.toml"))

@@ -41,7 +41,7 @@ from selector.core.metrics import Score, completeness_purity
 from selector.core.photometry import CRITERIA
 from selector.errors import ConfigError, InputError, SelectorError
 from selector.jobs.train import load_scorer
-from selector.jobs.run import batch
+from selector.jobs import run as run_job
 from selector.settings.config import (
     MATCH_SECTIONS,
     SELECTION_SECTIONS,
@@ -54,7 +54,7 @@ from selector.settings.config import (
 from selector.settings.validate import suggest
 from selector.store.cache import FeatureCache, find_rows, load_cache, tile_features
 from selector.store.io import read_parquet
-from selector.store.layout import layout_of_run
+from selector.store.layout import layout_of_run, layout_of
 from selector.store.truth import TruthLabels, find_truth, load_truth
 
 __all__ = [
@@ -185,7 +185,7 @@ def run_config(run_dir: Path, base_dir: Path | None = None) -> tuple[Config, dic
     Parameters
     ----------
     run_dir : Path
-        The run folder (``cfg.run_dir``).
+        The run folder (``layout_of(cfg).run_dir``).
     base_dir : Path, optional
         Folder the config's relative paths are taken from. Without it, ``project.output_dir`` is
         pointed at ``run_dir``'s parent, so the run folder alone is enough.
@@ -401,7 +401,7 @@ def write_results(ev: Evaluation, config_path=None, log=print):
     then holds exactly what ``selector run`` with ``ev.cfg`` writes, and a later ``selector run``
     with another configuration re-selects from it as usual.
     """
-    result = batch.run(ev.cfg, quiet=True, log=log, config_path=config_path)
+    result = run_job.run(ev.cfg, quiet=True, log=log, config_path=config_path)
     log(f"wrote the tuned selection as the run's result: {result.candidates:,} candidates in "
         f"{result.outputs['ecsv']}")
     return result
@@ -504,7 +504,7 @@ def _check_same_match(cfg: Config, prov: dict, where: str) -> None:
         differ = [s for s in MATCH_SECTIONS if json.dumps(run_cfg.get(s), sort_keys=True)
                   != json.dumps(now.get(s), sort_keys=True)]
         which = ", ".join(f"[{s}]" for s in differ) or "the matching sections"
-        raise ConfigError(f"{where}: {which} differ from the run in {cfg.run_dir}, so its feature cache does not "
+        raise ConfigError(f"{where}: {which} differ from the run in {layout_of(cfg).run_dir}, so its feature cache does not "
                           "apply; a full `selector run` is needed")
 
 
@@ -531,14 +531,14 @@ def tune(config_path: Path | str, settings: Sequence[str] = (), truth: Path | st
         after_cfg = from_dict(data, base_dir=config_path.resolve().parent)
     except ConfigError as exc:
         raise ConfigError(f"{config_path} with --set {' '.join(settings)}: {exc}") from None
-    before_cfg, prov = run_config(base.run_dir, base_dir=config_path.resolve().parent)
+    before_cfg, prov = run_config(layout_of(base).run_dir, base_dir=config_path.resolve().parent)
     _check_same_match(after_cfg, prov, str(config_path))
     truth_path = Path(truth) if truth is not None else find_truth(after_cfg)
     cache = load_cache(after_cfg, needed_columns(after_cfg, plots, ids=truth_path is not None))
     after = evaluate(cache, after_cfg)  # scores with the classifier, when one is set
     labels = load_truth(truth_path, cache) if truth_path is not None else None
     # the run's own record is the "before": nothing to re-evaluate, and exactly what the run gave
-    before = recorded(base.run_dir, before_cfg, prov, cache if labels is not None else None)
+    before = recorded(layout_of(base).run_dir, before_cfg, prov, cache if labels is not None else None)
     return compare(cache, before, after, labels)
 
 

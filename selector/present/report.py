@@ -138,7 +138,7 @@ def build_report(run_dir: Path | str, top: int = 50) -> str:
     Parameters
     ----------
     run_dir : path
-        The run folder (``cfg.run_dir``: it holds the provenance record, the merged candidates and
+        The run folder (``layout_of(cfg).run_dir``: it holds the provenance record, the merged candidates and
         the per-tile feature caches).
     top : int
         Rows of the top-targets table.

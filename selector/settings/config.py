@@ -496,14 +496,6 @@ class Config:
     # transitional: store.layout owns these paths; kept only until the train, targets, tune, report
     # and demo modules ask layout_of(cfg) instead, then removed
     @property
-    def tiles_dir(self) -> Path:
-        return self.output_dir / "tiles"
-
-    @property
-    def run_dir(self) -> Path:
-        return self.output_dir / "run"
-
-    @property
     def epoch_difference_yr(self) -> float:
         """Infrared epoch minus astrometric epoch, in Julian years."""
         return float(self.infrared.epoch_jyear - self.astrometric.epoch_jyear)
