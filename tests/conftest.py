@@ -83,3 +83,23 @@ def write_parquet(columns: dict, path: Path):
 @pytest.fixture
 def rng():
     return np.random.default_rng(12345)
+
+
+@pytest.fixture(scope="session")
+def small_demo(tmp_path_factory):
+    """One finished demo run at a small scale, shared by every test module that only reads it.
+
+    Returns (config, config path, truth path). Tests that change a run copy its folder first.
+    """
+    from selector.demo import mocksky
+    from selector.jobs.ingest import ingest
+    from selector.jobs.run import run
+    from selector.settings.config import load_config
+
+    tmp = tmp_path_factory.mktemp("small_demo")
+    paths = mocksky.write_mock_sky(mocksky.make_mock_sky(seed=2, scale=0.03), tmp / "catalogues")
+    path = mocksky.write_demo_config(tmp)
+    cfg = load_config(path)
+    ingest(cfg, log=lambda *a: None)
+    run(cfg, workers=1, quiet=True, log=lambda *a: None)
+    return cfg, path, paths["truth"]

@@ -13,13 +13,10 @@ import numpy as np
 import pytest
 from PIL import Image
 
-from selector.jobs import run as run_job
-from selector.demo import mocksky as demo
-from selector.jobs import ingest, tune
+from selector.jobs import tune
 from selector.core import photometry as ph
 from selector.present import plots, report
 from selector.cli import main
-from selector.settings.config import load_config
 from selector.store.cache import load_cache
 from selector.store.layout import layout_of
 
@@ -27,13 +24,9 @@ PNG_MAGIC = b"\x89PNG\r\n\x1a\n"
 
 
 @pytest.fixture(scope="module")
-def demo_run(tmp_path_factory):
-    tmp = tmp_path_factory.mktemp("report_demo")
-    demo.write_mock_sky(demo.make_mock_sky(seed=2, scale=0.03), tmp / "catalogues")
-    cfg = load_config(demo.write_demo_config(tmp))
-    ingest.ingest(cfg, log=lambda *a: None)
-    run_job.run(cfg, workers=1, quiet=True, log=lambda *a: None)
-    return cfg
+def demo_run(small_demo):
+    """The shared small demo run (read-only): its configuration."""
+    return small_demo[0]
 
 
 @pytest.fixture(scope="module")

@@ -17,7 +17,7 @@ import pytest
 from selector.jobs import run as run_job
 from selector.jobs.run import tile as tile_job
 from selector.demo import mocksky as demo
-from selector.jobs import ingest, tune
+from selector.jobs import tune
 from selector.core import selection
 from selector.cli import main
 from selector.settings.config import from_dict, load_config, plain
@@ -40,15 +40,9 @@ CHANGES = {
 
 
 @pytest.fixture(scope="module")
-def demo_run(tmp_path_factory):
-    """A finished demo run at a small scale: (config, config path, truth path)."""
-    tmp = tmp_path_factory.mktemp("tune_demo")
-    paths = demo.write_mock_sky(demo.make_mock_sky(seed=2, scale=0.03), tmp / "catalogues")
-    path = demo.write_demo_config(tmp)
-    cfg = load_config(path)
-    ingest.ingest(cfg, log=lambda *a: None)
-    run_job.run(cfg, workers=1, quiet=True, log=lambda *a: None)
-    return cfg, path, paths["truth"]
+def demo_run(small_demo):
+    """A finished demo run at a small scale (shared, read-only): (config, config path, truth path)."""
+    return small_demo
 
 
 def _full_rerun(cfg, settings, folder: Path):
