@@ -17,7 +17,8 @@ from selector.jobs import ingest as ingest_job, targets as targets_job, train as
 from selector.jobs import run as run_job
 from selector.present import plots, report as report_page, training_plots
 from selector.settings.config import Config, load_config
-from selector.store.layout import classifier_dir
+from selector.store.layout import classifier_dir, layout_of_run
+from selector.store.lock import FolderLock, output_lock
 
 Log = Callable[[str], None]
 
@@ -55,8 +56,9 @@ def train(config, *, log: Log = print) -> train_job.TrainResult:
     Also writes the evaluation's pictures beside the model (the job itself draws nothing).
     """
     cfg = _config(config)
-    result = train_job.train(cfg, log=log)
-    result.outputs.plots = training_plots.write_training_plots(result.evaluation, classifier_dir(cfg))
+    with output_lock(cfg, "train", exclusive=False):
+        result = train_job.train(cfg, log=log)
+        result.outputs.plots = training_plots.write_training_plots(result.evaluation, classifier_dir(cfg))
     for line in train_job.written_lines(cfg, result):
         log(line)
     return result
@@ -68,12 +70,14 @@ def tune(config: str | os.PathLike, *, settings: Sequence[str] = (), truth=None,
 
     ``config`` is the path of the TOML file (the changes are applied to the file as written).
     """
-    out = tune_job.tune(config, settings, truth=truth, plots=plots_dir is not None)
-    log(tune_job.format_outcome(out))
-    if plots_dir is not None:
-        data = plots.PlotData.from_evaluation(out.cache, out.after)
-        paths = plots.write_plots(data, Path(plots_dir))
-        log(f"plots of the new selection: {len(paths)} PNG files in {plots_dir}")
+    with output_lock(load_config(config), "tune", exclusive=False):
+        out = tune_job.tune(config, settings, truth=truth, plots=plots_dir is not None)
+        log(tune_job.format_outcome(out))
+        if plots_dir is not None:
+            data = plots.PlotData.from_evaluation(out.cache, out.after)
+            paths = plots.write_plots(data, Path(plots_dir))
+            log(f"plots of the new selection: {len(paths)} PNG files in {plots_dir}")
+    # the shared lock is let go first: writing runs the selection, which holds the folder alone
     if write:
         tune_job.write_results(out.after, config_path=config, log=log)
     return out
@@ -84,7 +88,8 @@ def targets(config, *, new_only: bool = False, log: Log = print) -> targets_job.
     cfg = _config(config)
     if cfg.targets is None:
         raise ConfigError(f"{config}: no [targets] section; add one (every key is in configs/default.toml)")
-    return targets_job.make_targets(cfg, new_only=new_only, log=log)
+    with output_lock(cfg, "targets", exclusive=False):
+        return targets_job.make_targets(cfg, new_only=new_only, log=log)
 
 
 def outcomes(config, file, *, log: Log = print) -> int:
@@ -92,7 +97,8 @@ def outcomes(config, file, *, log: Log = print) -> int:
     cfg = _config(config)
     if cfg.targets is None:
         raise ConfigError(f"{config}: no [targets] section, so there is no candidate history to record into")
-    return targets_job.record_outcomes(cfg, file, log=log)
+    with output_lock(cfg, "outcome", exclusive=False):
+        return targets_job.record_outcomes(cfg, file, log=log)
 
 
 def weigh(config, file, *, log: Log = print) -> weigh_job.WeighResult:
@@ -102,11 +108,14 @@ def weigh(config, file, *, log: Log = print) -> weigh_job.WeighResult:
     in :mod:`selector.jobs.weigh`); ``[physics]`` sets the cosmology, bolometric corrections,
     efficiencies and calibrations. Results go below ``project.output_dir/physics``.
     """
-    return weigh_job.weigh(_config(config), file, log=log)
+    cfg = _config(config)
+    with output_lock(cfg, "weigh", exclusive=False):
+        return weigh_job.weigh(cfg, file, log=log)
 
 
 def report(run_dir, *, out=None, top: int = 50, log: Log = print) -> Path:
     """Write the self-contained HTML report of a run folder."""
-    path = report_page.write_report(run_dir, out, top)
+    with FolderLock(layout_of_run(run_dir).output_dir, "report", exclusive=False):
+        path = report_page.write_report(run_dir, out, top)
     log(f"report: {path}")
     return path

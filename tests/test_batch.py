@@ -214,12 +214,12 @@ def test_second_run_on_the_same_folder_is_refused(finished, capsys):
         n_runs = len(man.runs())
     with run_job.run_lock(finished):
         run_dir = layout_of(finished).run_dir
-        with pytest.raises(SelectorError, match=rf"{run_dir}: another `selector run` .*pid {os.getpid()}"):
+        with pytest.raises(SelectorError, match=rf"{finished.output_dir}: another `selector run` .*pid {os.getpid()}"):
             run_job.run(finished, workers=1, quiet=True, log=_quiet)
         code = cli.main(["run", "--config", str(Path(finished.base_dir) / "demo.toml"), "--quiet"])
     assert code == 2
     err = capsys.readouterr().err
-    assert "another `selector run` is using this folder" in err and str(layout_of(finished).run_dir) in err
+    assert "another `selector run` is using this folder" in err and str(finished.output_dir) in err
     assert len(err.strip().splitlines()) == 1
     with Manifest(layout_of(finished).manifest) as man:
         assert len(man.runs()) == n_runs  # the refused run recorded nothing

@@ -135,9 +135,13 @@ def test_chunked_spooled_reading_gives_the_same_tiles(tmp_path, rng, monkeypatch
 def test_ingesting_twice_gives_identical_files(tmp_path, rng):
     cfg = _setup(tmp_path, rng, n=500)
     ingest(cfg, log=lambda *a: None)
-    first = {p: p.read_bytes() for p in sorted(layout_of(cfg).tiles_dir.rglob("*")) if p.is_file()}
+    lay = layout_of(cfg)
+    first_gen = lay.current_generation()
+    first = {p.relative_to(lay.tiles_dir): p.read_bytes() for p in sorted(lay.tiles_dir.rglob("*")) if p.is_file()}
     ingest(cfg, log=lambda *a: None)
-    second = {p: p.read_bytes() for p in sorted(layout_of(cfg).tiles_dir.rglob("*")) if p.is_file()}
+    second = {p.relative_to(lay.tiles_dir): p.read_bytes() for p in sorted(lay.tiles_dir.rglob("*")) if p.is_file()}
+    # a new generation in force, the old one removed, the same bytes in it
+    assert lay.current_generation() != first_gen and not lay.generation_dir(first_gen).exists()
     assert first.keys() == second.keys()
     assert all(first[k] == second[k] for k in first)
     tiles_dir = layout_of(cfg).tiles_dir

@@ -32,7 +32,9 @@ from selector.core import schema, tiles
 from selector.settings.config import CatalogueConfig, Config, config_hash
 from selector.errors import InputError, SelectorError
 from selector.store.io import expand_files, fingerprint, iter_chunks, write_json, write_parquet
-from selector.store.layout import layout_of
+from selector.store.generations import carry_over, commit_generation, new_generation
+from selector.store.layout import Layout, layout_of
+from selector.store.lock import output_lock
 from selector.core.photometry import VEGA_TO_AB_MAG
 
 #: Reason codes, in the order they are tested; a row is rejected for the first that applies.
@@ -306,13 +308,18 @@ class IngestSummary:
 
 
 def ingest_catalogue(cfg: Config, kind: str, log=print) -> IngestSummary:
-    """Ingest one catalogue (``astrometric``, ``infrared`` or ``known``) into tiles."""
+    """Ingest one catalogue (``astrometric``, ``infrared`` or ``known``) into a new generation of
+    tiles; the other catalogues of the generation in force are carried over (see :func:`ingest`)."""
+    return ingest(cfg, log=log, kinds=(kind,))[kind]
+
+
+def _ingest_into(cfg: Config, kind: str, lay: Layout) -> IngestSummary:
+    """Ingest one catalogue into the generation of ``lay`` (pinned to a new, not yet current one)."""
     cat: CatalogueConfig = getattr(cfg, kind)
     fields = plan_fields(cat, kind)
     sources = _source_columns(fields)
     paths = expand_files(cat.files, cfg.path("."))
     order = cfg.tiling.order
-    lay = layout_of(cfg)
     spool = lay.ingest_spool(kind)
     if spool.exists():
         shutil.rmtree(spool)
@@ -429,7 +436,7 @@ def ingest_catalogue(cfg: Config, kind: str, log=print) -> IngestSummary:
     file_list = [str(p) for p in paths]
     if duplicates.size:
         rejected["duplicate_id"] += int(duplicates.size)
-    rows_per_tile = _write_tiles(cfg, kind, tile_parts, duplicates=duplicates, id_col=id_col, fields=fields,
+    rows_per_tile = _write_tiles(cfg, kind, tile_parts, lay=lay, duplicates=duplicates, id_col=id_col, fields=fields,
                                  reject_parts=reject_parts, file_list=file_list, file_starts=np.asarray(file_starts))
     accepted = sum(rows_per_tile.values())
     del tile_parts, id_parts, readers  # closes the spool files before they are removed
@@ -439,7 +446,7 @@ def ingest_catalogue(cfg: Config, kind: str, log=print) -> IngestSummary:
     rejects = rejects.sort_by([("input_file", "ascending"), ("input_row", "ascending")])
     write_parquet(rejects, lay.ingest_rejects(kind))
     summary = IngestSummary(kind, rows_in, accepted, dict(rejected), rows_per_tile,
-                            {str(p): fingerprint(p) for p in paths})
+                            {input_name(cfg, p): fingerprint(p) for p in paths})
     if rows_in != accepted + sum(rejected.values()) or len(rejects) != sum(rejected.values()):
         raise SelectorError(f"internal error: {kind} ingest lost rows ({rows_in} in, {accepted} accepted, "
                             f"{sum(rejected.values())} rejected); nothing was trusted, please report this")
@@ -507,9 +514,9 @@ def _find_duplicates(buckets: dict) -> np.ndarray:
     return np.sort(np.concatenate(out)) if out else np.zeros(0, np.int64)
 
 
-def _write_tiles(cfg, kind, parts, *, duplicates, id_col, fields, reject_parts, file_list, file_starts):
+def _write_tiles(cfg, kind, parts, *, lay, duplicates, id_col, fields, reject_parts, file_list, file_starts):
     # every catalogue but the known objects is tiled; those are one file
-    lay, order, tiled = layout_of(cfg), cfg.tiling.order, kind != "known"
+    order, tiled = cfg.tiling.order, kind != "known"
     units = {f.canonical: f.unit for f in fields if f.unit}
     meta = {"catalogue": kind, "order": str(order), "epoch_jyear": json.dumps(getattr(cfg, kind).epoch_jyear),
             "version": __version__}
@@ -573,15 +580,69 @@ def _with_units(table: pa.Table, units: dict[str, str]) -> pa.Table:
     return table.cast(pa.schema(fields, metadata=table.schema.metadata))
 
 
-def ingest(cfg: Config, log=print) -> dict[str, IngestSummary]:
-    """Ingest every configured catalogue; returns the summaries by catalogue."""
+CATALOGUES = ("astrometric", "infrared", "known")
+
+
+def ingest(cfg: Config, log=print, *, kinds: tuple[str, ...] | None = None) -> dict[str, IngestSummary]:
+    """Ingest the configured catalogues into a new generation of tiles and put it in force.
+
+    The output folder is held alone for the whole ingest (:mod:`selector.store.lock`), so no run
+    reads tiles while they change and a second ingest is refused. Every catalogue is written into a
+    new generation folder beside the one in force; the pointer to it is replaced in one atomic step
+    only after every file is durable (:mod:`selector.store.generations`), so an ingest killed or
+    stopped by a full disk leaves the previous tiles in force, whole.
+
+    Parameters
+    ----------
+    cfg : Config
+    log : callable
+        Where the per-catalogue lines go.
+    kinds : tuple of str, optional
+        The catalogues to ingest (default: every configured one); the other configured catalogues
+        of the generation in force are carried over unchanged.
+
+    Returns
+    -------
+    dict
+        The :class:`IngestSummary` of each ingested catalogue, by catalogue.
+    """
+    configured = [k for k in CATALOGUES if getattr(cfg, k) is not None]
+    kinds = tuple(configured if kinds is None else kinds)
+    lay = layout_of(cfg)
     out = {}
-    for kind in ("astrometric", "infrared", "known"):
-        if getattr(cfg, kind) is None:
-            continue
-        s = ingest_catalogue(cfg, kind, log)
-        log(f"{kind}: {s.rows_in} rows in, {s.accepted} accepted, {sum(s.rejected.values())} rejected"
-            + (f" ({', '.join(f'{k}: {v}' for k, v in sorted(s.rejected.items()))})" if s.rejected else "")
-            + (f", {len(s.rows_per_tile)} tiles" if kind != "known" else ""))
-        out[kind] = s
+    with output_lock(cfg, "ingest", exclusive=True):
+        current = lay.pinned()
+        new = new_generation(lay)
+        try:
+            for kind in kinds:
+                s = out[kind] = _ingest_into(cfg, kind, new)
+                log(f"{kind}: {s.rows_in} rows in, {s.accepted} accepted, {sum(s.rejected.values())} rejected"
+                    + (f" ({', '.join(f'{k}: {v}' for k, v in sorted(s.rejected.items()))})" if s.rejected else "")
+                    + (f", {len(s.rows_per_tile)} tiles" if kind != "known" else ""))
+            for kind in configured:
+                if kind not in kinds:
+                    carry_over(current, new, kind)
+            commit_generation(lay, new)
+        except BaseException:
+            # the generation in force stays; this one's files go now (a kill leaves them to the next start)
+            if _in_force(lay) != new.generation:
+                shutil.rmtree(new.generation_dir(new.generation), ignore_errors=True)
+            raise
     return out
+
+
+def _in_force(lay: Layout) -> str | None:
+    try:
+        return lay.current_generation()
+    except SelectorError:
+        return None
+
+
+def input_name(cfg: Config, path: Path) -> str:
+    """An input file as recorded in summaries and provenance: relative to the config's folder when
+    it lies below it, so the same job run from another folder records the same names."""
+    base = Path(cfg.base_dir)
+    try:
+        return Path(path).resolve().relative_to(base.resolve()).as_posix()
+    except ValueError:
+        return str(path)

@@ -3,11 +3,14 @@
 ::
 
     <output_dir>/
-      tiles/<catalogue>/order<NN>/tile<NNNNNNNN>.parquet   ingested tiles
-      tiles/<catalogue>/summary.json, rejects.parquet        ingest accounting
-      tiles/<catalogue>/.spool/{tiles,ids}-<NNNNN>.arrow     scratch of an ingest in progress
-      tiles/known/objects.parquet                            the known-objects catalogue (not tiled)
-      run/manifest.sqlite, run/.lock, run/logs/run-<n>.log   the run's record
+      .lock                                                  the folder's lock (store/lock.py)
+      tiles/current                                          name of the generation in force
+      tiles/<gen>/<catalogue>/order<NN>/tile<NNNNNNNN>.parquet   ingested tiles, one generation
+      tiles/<gen>/<catalogue>/summary.json, rejects.parquet  ingest accounting
+      tiles/<gen>/<catalogue>/.spool/{tiles,ids}-<NNNNN>.arrow   scratch of an ingest in progress
+      tiles/<gen>/known/objects.parquet                      the known-objects catalogue (not tiled)
+      run/manifest.sqlite, run/logs/run-<n>.log              the run's record
+      run/commit.json                                        the record of the committed merged set
       run/tiles/tile<NNNNNNNN>/{features,infrared,candidates,rejects}.parquet, cutflow.json
       run/candidates.{ecsv,csv,parquet}, run/cutflow.csv, run/provenance.json
       <classifier.output_folder>/quasar_classifier.skops (+ .card.json), evaluation.json, ...
@@ -18,10 +21,19 @@
 Modules never spell these names themselves: they ask a :class:`Layout`. A layout is built from the
 output folder alone (``Layout(cfg.output_dir)``, or :func:`layout_of` for a configuration), so a run
 folder can be read without its configuration.
+
+**Generations.** Each ingest writes a whole new generation of tiles (``tiles/g000007/…``) beside the
+one in force and then replaces the small pointer file ``tiles/current`` in one atomic rename, so a
+reader sees either the old tiles or the new ones, never a mixture. A layout without a pinned
+``generation`` follows the pointer (re-read whenever the pointer file changes); :meth:`Layout.pinned`
+fixes the one in force. Without a pointer (nothing ingested yet, or tiles of an older version) the
+tiles folder itself is read.
 """
 
 from __future__ import annotations
 
+import os
+import re
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -62,14 +74,47 @@ class Layout:
     """Paths below one output folder."""
 
     output_dir: Path
+    generation: str | None = None
 
     def __post_init__(self):
         object.__setattr__(self, "output_dir", Path(self.output_dir))
 
     # --- ingested tiles ------------------------------------------------------------------------
     @property
-    def tiles_dir(self) -> Path:
+    def tiles_root(self) -> Path:
+        """The folder holding every generation of tiles and the ``current`` pointer."""
         return self.output_dir / "tiles"
+
+    @property
+    def current_pointer(self) -> Path:
+        """The file naming the generation in force (replaced atomically by ingest)."""
+        return self.tiles_root / CURRENT_POINTER
+
+    def current_generation(self) -> str:
+        """The generation the pointer names; ``""`` when there is no pointer (see the module notes)."""
+        return current_generation(self.tiles_root)
+
+    def pinned(self) -> "Layout":
+        """This layout fixed to the generation in force now."""
+        return Layout(self.output_dir, self.current_generation() if self.generation is None else self.generation)
+
+    def at(self, generation: str) -> "Layout":
+        """This layout fixed to ``generation``."""
+        return Layout(self.output_dir, generation)
+
+    def generation_dir(self, generation: str) -> Path:
+        return self.tiles_root / generation if generation else self.tiles_root
+
+    @property
+    def tiles_dir(self) -> Path:
+        """The tiles of this layout's generation (the one in force when none is pinned)."""
+        gen = self.current_generation() if self.generation is None else self.generation
+        return self.generation_dir(gen)
+
+    @property
+    def lock_file(self) -> Path:
+        """The output folder's lock (:mod:`selector.store.lock`)."""
+        return self.output_dir / ".lock"
 
     def catalogue_dir(self, catalogue: str) -> Path:
         return self.tiles_dir / catalogue
@@ -113,10 +158,6 @@ class Layout:
     @property
     def manifest(self) -> Path:
         return self.run_dir / "manifest.sqlite"
-
-    @property
-    def run_lock(self) -> Path:
-        return self.run_dir / ".lock"
 
     def run_log(self, run_id: int) -> Path:
         return self.run_dir / "logs" / f"run-{run_id}.log"
@@ -163,6 +204,11 @@ class Layout:
     @property
     def report(self) -> Path:
         return self.run_dir / "report.html"
+
+    @property
+    def commit_record(self) -> Path:
+        """Written last by a merge: which merged files make the set, and what they were made from."""
+        return self.run_dir / COMMIT_FILE
 
 
 def layout_of(cfg) -> Layout:
@@ -257,3 +303,65 @@ def layout_of_run(run_dir: Path | str) -> Layout:
 #: The pictures of a classifier's evaluation, below ``classifier.output_folder``, in drawing order.
 TRAINING_PLOT_FILES = ("threshold_curves.png", "confusion_matrix.png", "calibration.png", "permutation_importance.png",
                        "criteria_comparison.png")
+
+
+# --- generations of ingested tiles (see the module notes) -------------------------------------------
+
+#: The pointer file below ``tiles/`` naming the generation in force.
+CURRENT_POINTER = "current"
+#: How a generation folder is named: ``g`` and six digits, counting up.
+GENERATION_PATTERN = re.compile(r"^g\d{6}$")
+#: The catalogue folders of tiles written before generations existed (read when there is no pointer).
+LEGACY_CATALOGUES = ("astrometric", "infrared", "known")
+
+# pointer file → ((inode, size, mtime), generation): re-read only when the file changes
+_POINTER_CACHE: dict[Path, tuple[tuple, str]] = {}
+
+
+def generation_name(number: int) -> str:
+    return f"g{int(number):06d}"
+
+
+def current_generation(tiles_root: Path) -> str:
+    """The generation named by ``tiles_root/current``; ``""`` when there is none.
+
+    The pointer is replaced by a rename, so a changed file has a new inode: the stat says when to
+    read it again, and a long-lived process (a Dask worker) never keeps a stale generation.
+
+    Raises
+    ------
+    InputError
+        When the pointer is damaged or names a generation that is not there.
+    """
+    pointer = Path(tiles_root) / CURRENT_POINTER
+    try:
+        st = os.stat(pointer)
+    except FileNotFoundError:
+        return ""
+    except OSError as exc:
+        raise InputError(f"{pointer}: cannot read ({exc.strerror}); check the output folder") from None
+    key = (st.st_ino, st.st_size, st.st_mtime_ns)
+    cached = _POINTER_CACHE.get(pointer)
+    if cached and cached[0] == key:
+        return cached[1]
+    try:
+        name = pointer.read_text(encoding="ascii").strip()
+    except (OSError, ValueError):
+        name = ""
+    if not GENERATION_PATTERN.match(name) or not (pointer.parent / name).is_dir():
+        raise InputError(f"{pointer}: damaged or names a missing generation ({name[:40]!r}); run `selector ingest "
+                         "--config ...` again")
+    _POINTER_CACHE[pointer] = (key, name)
+    return name
+
+
+def generations(tiles_root: Path) -> list[str]:
+    """Generation folders present below ``tiles_root``, oldest first."""
+    root = Path(tiles_root)
+    if not root.is_dir():
+        return []
+    return sorted(p.name for p in root.iterdir() if p.is_dir() and GENERATION_PATTERN.match(p.name))
+
+
+#: The commit record of a run's merged outputs, below the run folder (see ``jobs/run/commit.py``).
+COMMIT_FILE = "commit.json"

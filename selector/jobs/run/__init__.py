@@ -36,10 +36,10 @@ from selector.jobs.run.status import status_text
 from selector.settings.config import Config
 from selector.store.keys import digest
 from selector.store.layout import FEATURE_FILES, SELECTION_FILES, Layout, layout_of
-from selector.store.lock import RunLock, run_lock
+from selector.store.lock import FolderLock, output_lock, run_lock
 from selector.store.manifest import Manifest
 
-__all__ = ["KILL_AT_ENV", "RunLock", "RunResult", "TileOutcome", "TilePlan", "TileSummary", "account",
+__all__ = ["KILL_AT_ENV", "FolderLock", "RunResult", "TileOutcome", "TilePlan", "TileSummary", "account",
            "format_cutflow", "provenance", "run", "run_lock", "run_tile", "status_text", "total_cutflow"]
 
 
@@ -149,7 +149,7 @@ def run(cfg: Config, workers: int | None = None, executor: str | None = None, sc
     scheduler = scheduler or cfg.run.scheduler
     n = worker_count(cfg, workers)
     lay = layout_of(cfg)
-    with RunLock(lay.run_lock), Manifest(lay.manifest) as man:
+    with output_lock(cfg, "run", exclusive=True), Manifest(lay.manifest) as man:
         man.mark_dead_runs()
         run_id = man.begin_run(pid=os.getpid(), host=socket.gethostname(), version=__version__,
                                executor=executor, workers=n)
@@ -183,12 +183,15 @@ def run(cfg: Config, workers: int | None = None, executor: str | None = None, sc
 
 def _run(ctx: _Run) -> RunResult:
     cfg, lay, man, run_id, rep = ctx.cfg, ctx.layout, ctx.man, ctx.run_id, ctx.rep
+    # the lock keeps ingest out for the whole run, so the generation in force now is the one read
+    generation = lay.current_generation()
     prov = provenance(cfg)
     ingest = ingest_summaries(cfg)
     man.update_run(run_id, config_hash=prov["config_hash"], match_hash=prov["match_config_hash"],
                    selection_hash=prov["selection_config_hash"])
     rep.to_file(f"run {run_id}: selector {__version__}, executor {ctx.executor}, {ctx.workers} workers, "
-                f"pid {os.getpid()}")
+                f"pid {os.getpid()}, tiles generation {generation or '(none)'}")
+    man.set("generation", {"run": run_id, "name": generation, "digest": prov["tiles_generation"]})
     ctx.expected_rows = expected_rows(ingest)
     ids = tile_ids(cfg, ctx.expected_rows)
     ctx.records = records = man.tiles()
@@ -212,6 +215,10 @@ def _run(ctx: _Run) -> RunResult:
 
     actions, work_s = _work(ctx, plans, reused)
 
+    if lay.current_generation() != generation:
+        raise SelectorError(f"{lay.current_pointer}: the tiles changed generation during the run ({generation} → "
+                            f"{lay.current_generation()}) although the run held the folder; nothing was merged, run "
+                            "`selector run --config ...` again")
     records = man.tiles()
     failed = {t: records[t]["error"] for t in ids if records[t]["status"] != "done"}
     finished = [t for t in ids if t not in failed]

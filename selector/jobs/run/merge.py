@@ -22,6 +22,7 @@ from selector.core.selection import check_accounting, rank_candidates
 from selector.errors import SelectorError
 from selector.jobs.run.plan import ingest_summaries
 from selector.settings.config import MATCH_SECTIONS, SELECTION_SECTIONS, Config, config_hash
+from selector.store.generations import generation_digest
 from selector.store.io import read_parquet, write_json, write_parquet, write_table, write_text
 from selector.store.keys import model_sha, result_config
 from selector.store.layout import MERGED_FILES, layout_of
@@ -105,6 +106,8 @@ def provenance(cfg: Config) -> dict:
         "classifier_model_sha256": model_sha(cfg),
         "input_fingerprints": {k: s["input_fingerprints"] for k, s in summaries.items()},
         "selector_version": __version__,
+        # which whole generation of tiles the run read, by content (see store/generations.py)
+        "tiles_generation": generation_digest(layout_of(cfg)),
     }
 
 
