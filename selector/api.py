@@ -17,7 +17,7 @@ from selector.jobs import ingest as ingest_job, targets as targets_job, train as
 from selector.jobs import run as run_job
 from selector.present import plots, report as report_page, training_plots
 from selector.settings.config import Config, load_config
-from selector.store.layout import classifier_dir, layout_of_run
+from selector.store.layout import classifier_dir, layout_of, layout_of_run
 from selector.store.lock import FolderLock, output_lock
 
 Log = Callable[[str], None]
@@ -50,14 +50,29 @@ def status(config, *, runs: int = 10, failed_only: bool = False) -> str:
     return run_job.status_text(_config(config), runs=runs, failed_only=failed_only)
 
 
-def train(config, *, log: Log = print) -> train_job.TrainResult:
+def _name(config) -> str | None:
+    return None if isinstance(config, Config) else str(config)
+
+
+def _incomplete_note(record: dict, log: Log) -> None:
+    if not record.get("complete", True):
+        log(f"note: the run is incomplete ({len(record.get('failed_tiles', []))} tiles failed); going ahead on the "
+            "finished tiles only, as --allow-incomplete asked")
+
+
+def train(config, *, allow_incomplete: bool = False, log: Log = print) -> train_job.TrainResult:
     """Train the quasar classifier on the labelled sources of the feature cache; write the model and its card.
 
-    Also writes the evaluation's pictures beside the model (the job itself draws nothing).
+    Also writes the evaluation's pictures beside the model (the job itself draws nothing). Refuses a
+    run folder whose outputs are not one committed, complete set made with this configuration's
+    matching sections (``allow_incomplete``: go ahead on the finished tiles, said in the card).
     """
     cfg = _config(config)
     with output_lock(cfg, "train", exclusive=False):
-        result = train_job.train(cfg, log=log)
+        record = run_job.committed_run(layout_of(cfg), "train", cfg=cfg, config_name=_name(config),
+                                       allow_incomplete=allow_incomplete)
+        _incomplete_note(record, log)
+        result = train_job.train(cfg, log=log, run_complete=record.get("complete", True))
         result.outputs.plots = training_plots.write_training_plots(result.evaluation, classifier_dir(cfg))
     for line in train_job.written_lines(cfg, result):
         log(line)
@@ -65,12 +80,18 @@ def train(config, *, log: Log = print) -> train_job.TrainResult:
 
 
 def tune(config: str | os.PathLike, *, settings: Sequence[str] = (), truth=None, plots_dir=None,
-         write: bool = False, log: Log = print) -> tune_job.TuneOutcome:
+         write: bool = False, allow_incomplete: bool = False, log: Log = print) -> tune_job.TuneOutcome:
     """Re-apply the configuration's selection, with ``KEY=VALUE`` changes, to the run's feature cache.
 
-    ``config`` is the path of the TOML file (the changes are applied to the file as written).
+    ``config`` is the path of the TOML file (the changes are applied to the file as written). The
+    run's outputs must be one committed, complete set (``allow_incomplete``: go ahead, said in the
+    output).
     """
-    with output_lock(load_config(config), "tune", exclusive=False):
+    cfg = load_config(config)
+    with output_lock(cfg, "tune", exclusive=False):
+        record = run_job.committed_run(layout_of(cfg), "tune", cfg=cfg, config_name=str(config),
+                                       allow_incomplete=allow_incomplete)
+        _incomplete_note(record, log)
         out = tune_job.tune(config, settings, truth=truth, plots=plots_dir is not None)
         log(tune_job.format_outcome(out))
         if plots_dir is not None:
@@ -83,12 +104,21 @@ def tune(config: str | os.PathLike, *, settings: Sequence[str] = (), truth=None,
     return out
 
 
-def targets(config, *, new_only: bool = False, log: Log = print) -> targets_job.TargetsResult:
-    """Build the follow-up target list: known objects out, observability from the site, priorities."""
+def targets(config, *, new_only: bool = False, allow_incomplete: bool = False,
+            log: Log = print) -> targets_job.TargetsResult:
+    """Build the follow-up target list: known objects out, observability from the site, priorities.
+
+    The run's list must be one committed, complete set made with this configuration's matching and
+    selection sections and classifier model (``allow_incomplete``: go ahead on the finished tiles;
+    the list's provenance says ``complete: false``).
+    """
     cfg = _config(config)
     if cfg.targets is None:
         raise ConfigError(f"{config}: no [targets] section; add one (every key is in configs/default.toml)")
     with output_lock(cfg, "targets", exclusive=False):
+        record = run_job.committed_run(layout_of(cfg), "targets", cfg=cfg, config_name=_name(config),
+                                       allow_incomplete=allow_incomplete)
+        _incomplete_note(record, log)
         return targets_job.make_targets(cfg, new_only=new_only, log=log)
 
 
@@ -113,9 +143,13 @@ def weigh(config, file, *, log: Log = print) -> weigh_job.WeighResult:
         return weigh_job.weigh(cfg, file, log=log)
 
 
-def report(run_dir, *, out=None, top: int = 50, log: Log = print) -> Path:
-    """Write the self-contained HTML report of a run folder."""
-    with FolderLock(layout_of_run(run_dir).output_dir, "report", exclusive=False):
+def report(run_dir, *, out=None, top: int = 50, allow_incomplete: bool = False, log: Log = print) -> Path:
+    """Write the self-contained HTML report of a run folder (one committed set; an incomplete run only
+    with ``allow_incomplete``, and the page says so)."""
+    layout = layout_of_run(run_dir)
+    with FolderLock(layout.output_dir, "report", exclusive=False):
+        record = run_job.committed_run(layout, "report", allow_incomplete=allow_incomplete)
+        _incomplete_note(record, log)
         path = report_page.write_report(run_dir, out, top)
     log(f"report: {path}")
     return path

@@ -47,7 +47,7 @@ def _cmd_status(args) -> int:
 def _cmd_train(args) -> int:
     from selector import api
 
-    api.train(args.config, log=print)
+    api.train(args.config, allow_incomplete=args.allow_incomplete, log=print)
     return 0
 
 
@@ -55,7 +55,7 @@ def _cmd_tune(args) -> int:
     from selector import api
 
     api.tune(args.config, settings=args.set or (), truth=args.truth, plots_dir=args.plots, write=args.write,
-             log=print)
+             allow_incomplete=args.allow_incomplete, log=print)
     return 0
 
 
@@ -64,14 +64,14 @@ def _cmd_report(args) -> int:
 
     if args.top < 1:
         raise SelectorError(f"--top {args.top}: give at least 1 row")
-    api.report(args.run, out=args.out, top=args.top, log=print)
+    api.report(args.run, out=args.out, top=args.top, allow_incomplete=args.allow_incomplete, log=print)
     return 0
 
 
 def _cmd_targets(args) -> int:
     from selector import api
 
-    api.targets(args.config, new_only=args.new_only, log=print)
+    api.targets(args.config, new_only=args.new_only, allow_incomplete=args.allow_incomplete, log=print)
     return 0
 
 
@@ -94,6 +94,11 @@ def _cmd_demo(args) -> int:
 
     run_demo(Path(args.out), seed=args.seed, scale=args.scale, workers=args.workers)
     return 0
+
+
+def _allow_incomplete_arg(p: argparse.ArgumentParser) -> None:
+    p.add_argument("--allow-incomplete", action="store_true",
+                   help="go ahead on a run whose failed tiles are missing from its outputs (stated in the outputs)")
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -135,12 +140,14 @@ def build_parser() -> argparse.ArgumentParser:
     p = sub.add_parser("train", help="train the quasar classifier on labelled sources of the feature cache; write "
                                      "the model, its card and a held-out evaluation")
     _config_arg(p)
+    _allow_incomplete_arg(p)
     p.set_defaults(func=_cmd_train)
 
     p = sub.add_parser("targets", help="follow-up list: known objects out, observability from a site, priorities")
     _config_arg(p)
     p.add_argument("--new-only", action="store_true",
                    help="list only candidates that are new since the previous run")
+    _allow_incomplete_arg(p)
     p.set_defaults(func=_cmd_targets)
 
     p = sub.add_parser("outcome", help="record follow-up outcomes (spectroscopic class, redshift) of candidates")
@@ -182,6 +189,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--plots", metavar="DIR", default=None, help="write PNG diagnostics of the new selection here")
     p.add_argument("--write", action="store_true",
                    help="make the new selection the run's result (rewrites the run's candidates and cut-flows)")
+    _allow_incomplete_arg(p)
     p.set_defaults(func=_cmd_tune)
 
     p = sub.add_parser("report", help="one self-contained HTML page of a run: provenance, cut-flow, plots, top targets",
@@ -190,6 +198,7 @@ def build_parser() -> argparse.ArgumentParser:
                    help="the run folder (project.output_dir/run), which holds provenance.json")
     p.add_argument("--out", default=None, metavar="FILE", help="where to write the page (default: DIR/report.html)")
     p.add_argument("--top", type=int, default=50, help="rows of the top-targets table")
+    _allow_incomplete_arg(p)
     p.set_defaults(func=_cmd_report)
     return parser
 

@@ -22,7 +22,8 @@ from selector.jobs.targets.known import read_known
 from selector.store.history import read_history, score_history
 from selector.cli import main
 from selector.errors import ConfigError, InputError
-from selector.store.io import write_parquet
+from selector.jobs.run.commit import commit
+from selector.store.io import write_json, write_parquet, write_text
 from selector.store.layout import layout_of
 
 from conftest import base_config, build
@@ -53,6 +54,17 @@ def _candidates(cfg, ids, ra, dec, score, mag46=None, run_hash="run-a"):
     })
     write_parquet(table, layout_of(cfg).run_dir / "candidates.parquet",
                   {"provenance": {"config_hash": run_hash, "selector_version": "test"}})
+
+
+def _commit(cfg):
+    """Make a hand-written candidate list a committed run set, as `selector run` leaves it, so the
+    commands (which check the commit record) accept it."""
+    lay = layout_of(cfg)
+    prov = {"config_hash": "run-a", "selector_version": "test", "complete": True, "failed_tiles": []}
+    for kind in ("ecsv", "csv", "cutflow"):
+        write_text("", lay.merged(kind))
+    write_json(prov, lay.provenance)
+    commit(cfg, lay, prov, merge_key="test")
 
 
 def _known_objects(cfg, names, ra, dec, classes, z):
@@ -503,6 +515,9 @@ def test_commands_targets_and_outcome(tmp_path, capsys):
     path = _write_config(tmp_path, data)
     cfg = build(data, tmp_path)
     _candidates(cfg, [1, 2], [195.0, 196.0], [-30.0, 80.0], [2.0, 1.0])
+    assert main(["targets", "--config", str(path)]) == 2  # no commit record: not a finished run
+    assert "the run's merge did not finish" in capsys.readouterr().err
+    _commit(cfg)
     assert main(["targets", "--config", str(path)]) == 0
     out = capsys.readouterr().out
     assert "targets: 1 listed of 2 candidates" in out and "targets.ecsv" in out

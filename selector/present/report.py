@@ -180,6 +180,8 @@ def build_report(run_dir: Path | str, top: int = 50) -> str:
         ("astrometric rows", f"{prov.get('rows', 0):,d}"),
         ("tile rejects", f"{prov.get('tile_rejects', 0):,d}"),
         ("candidates", f"{cands.num_rows:,d}"),
+        ("complete", "yes" if prov.get("complete", True) else
+         f"no: {len(prov.get('failed_tiles', []))} tiles failed and are missing from this report"),
         ("match radius", f"{cfg.match.radius_arcsec:g} arcsec"),
         ("epochs", f"astrometric {cfg.astrometric.epoch_jyear}, infrared {cfg.infrared.epoch_jyear} (Julian years)"),
     ]

@@ -26,6 +26,7 @@ from pathlib import Path
 
 from selector import __version__
 from selector.errors import SelectorError
+from selector.jobs.run.commit import commit, committed_run, read_record, withdraw
 from selector.jobs.run.execute import KILL_AT_ENV, TileOutcome, execute, fault, one_line, run_tile, worker_count
 from selector.jobs.run.merge import (TileSummary, account, file_stats, format_cutflow, merge, merged_from_summaries,
                                      merged_paths, provenance, total_cutflow)
@@ -40,6 +41,7 @@ from selector.store.lock import FolderLock, output_lock, run_lock
 from selector.store.manifest import Manifest
 
 __all__ = ["KILL_AT_ENV", "FolderLock", "RunResult", "TileOutcome", "TilePlan", "TileSummary", "account",
+           "committed_run",
            "format_cutflow", "provenance", "run", "run_lock", "run_tile", "status_text", "total_cutflow"]
 
 
@@ -229,17 +231,22 @@ def _run(ctx: _Run) -> RunResult:
     merge_key = digest("merge", merge_prov, [(t, records[t]["match_key"], records[t]["content_key"],
                                              records[t]["selection_key"]) for t in finished])
     state = man.get("merge") or {}
-    up_to_date = (state.get("key") == merge_key and state.get("outputs") == file_stats(outputs.values()))
-    if failed and not cfg.run.merge_incomplete:
+    up_to_date = (state.get("key") == merge_key and state.get("outputs") == file_stats(outputs.values())
+                  and (read_record(lay) or {}).get("merge_key") == merge_key)
+    if failed and (not cfg.run.merge_incomplete or not finished):
         merged_out = merged_from_summaries(cfg, summaries)
         merged = False
-        rep.always(f"{len(failed)} tiles failed; run.merge_incomplete = false, so the merged outputs in {lay.run_dir} "
-                   "were left as they were")
+        why = "run.merge_incomplete = false" if finished else "no tile finished"
+        rep.always(f"{len(failed)} tiles failed; {why}, so the merged outputs in {lay.run_dir} were left as they "
+                   "were (their commit record still names the run that made them)")
     elif up_to_date and not ctx.force:
         merged_out = merged_from_summaries(cfg, summaries)
         merged = False
     else:
+        # the merged files become visible as one set: the record goes first and comes back last
+        withdraw(lay)
         merged_out = merge(cfg, summaries, merge_prov, fault=fault)
+        commit(cfg, lay, merge_prov, merge_key=merge_key)
         merged = True
         man.set("merge", {"key": merge_key, "outputs": file_stats(outputs.values())})
     fault("merged")

@@ -64,7 +64,9 @@ def _band_column(band: str) -> str:
 
 # --- inputs ------------------------------------------------------------------------------------
 
-_PROVENANCE_KEYS = ("config_hash", "match_config_hash", "input_fingerprints", "selector_version")
+# "complete"/"failed_tiles": a list made from an incomplete run (--allow-incomplete) says so
+_PROVENANCE_KEYS = ("config_hash", "match_config_hash", "input_fingerprints", "selector_version", "complete",
+                    "failed_tiles")
 
 
 class Candidates(NamedTuple):

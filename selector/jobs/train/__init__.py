@@ -52,7 +52,7 @@ __all__ = [
 ]
 
 
-def train(cfg: Config, log=print) -> TrainResult:
+def train(cfg: Config, log=print, *, run_complete: bool = True) -> TrainResult:
     """``selector train``: labelled set from the feature cache, cross-validation, final model, model files.
 
     Parameters
@@ -60,6 +60,8 @@ def train(cfg: Config, log=print) -> TrainResult:
     cfg : Config
     log : callable
         Receives the progress lines and the summary of the training set and held-out figures.
+    run_complete : bool
+        False when the run's outputs are incomplete (allowed by the caller); the card records it.
 
     Returns
     -------
@@ -67,6 +69,9 @@ def train(cfg: Config, log=print) -> TrainResult:
         With ``outputs`` set (its ``plots`` empty: the job draws nothing).
     """
     data = collect_labelled(cfg)
+    if not run_complete:
+        # trained on the finished tiles of an incomplete run (--allow-incomplete): the card says so
+        data.summary["from_incomplete_run"] = True
     log(f"labelled set: {data.summary['rows']:,d} sources; training {cfg.classifier.folds} folds and the final model")
     result = train_labelled(cfg, data, log=log)
     write_model_files(cfg, data, result)
