@@ -146,7 +146,9 @@ def build_parser() -> argparse.ArgumentParser:
     p = sub.add_parser("targets", help="follow-up list: known objects out, observability from a site, priorities")
     _config_arg(p)
     p.add_argument("--new-only", action="store_true",
-                   help="list only candidates that are new since the previous run")
+                   help="write only the targets that are not in the previous list (each `selector targets` makes "
+                        "a numbered list in the candidate history; running it again on the same run's candidates "
+                        "is the same list, so nothing is new the second time)")
     _allow_incomplete_arg(p)
     p.set_defaults(func=_cmd_targets)
 

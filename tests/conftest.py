@@ -103,3 +103,26 @@ def small_demo(tmp_path_factory):
     ingest(cfg, log=lambda *a: None)
     run(cfg, workers=1, quiet=True, log=lambda *a: None)
     return cfg, path, paths["truth"]
+
+
+class DemoCommand:
+    """The demo run once per session: its folder, exit code and what it printed."""
+
+    def __init__(self, folder: Path, code: int, out: str):
+        self.folder, self.code, self.out = folder, code, out
+
+
+@pytest.fixture(scope="session")
+def demo_command(tmp_path_factory) -> DemoCommand:
+    """``selector demo`` at scale 0.03 with one worker (ingest, run, truth, targets, report), run once for the
+    tests of the whole command and of its written tables."""
+    import contextlib
+    import io
+
+    from selector.cli import main
+
+    folder = tmp_path_factory.mktemp("demo")
+    out = io.StringIO()
+    with contextlib.redirect_stdout(out):
+        code = main(["demo", "--out", str(folder), "--scale", "0.03", "--workers", "1"])
+    return DemoCommand(folder, code, out.getvalue())

@@ -55,10 +55,12 @@ def test_missing_input_file_is_one_line(tmp_path):
     assert proc.stderr.strip().splitlines() == [f"selector: {tmp_path / 'nowhere.parquet'}: no such file"]
 
 
-def test_demo_runs_the_whole_job(tmp_path, capsys):
-    assert main(["demo", "--out", str(tmp_path), "--scale", "0.03", "--workers", "1"]) == 0
-    out = capsys.readouterr().out
+def test_demo_runs_the_whole_job(demo_command):
+    # the demo is run once per session (tests/conftest.py); tests/test_tables.py reads its outputs too
+    assert demo_command.code == 0
+    out = demo_command.out
     assert "true quasars recovered above the completeness limit" in out
     for path in ("demo.toml", "catalogues/truth.parquet", "output/run/candidates.ecsv", "output/run/report.html",
-                 "output/targets/targets.ecsv", "output/targets/summary.txt"):
-        assert (tmp_path / path).is_file(), path
+                 "output/targets/targets.ecsv", "output/targets/targets.txt", "output/targets/targets_full.ecsv",
+                 "output/targets/summary.txt"):
+        assert (demo_command.folder / path).is_file(), path

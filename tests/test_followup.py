@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import json
 import math
+import re
 import sqlite3
 
 import numpy as np
@@ -23,7 +24,7 @@ from selector.store.history import read_history, score_history
 from selector.cli import main
 from selector.errors import ConfigError, InputError
 from selector.jobs.run.commit import commit
-from selector.store.io import write_json, write_parquet, write_text
+from selector.store.io import format_columns, write_json, write_parquet, write_text
 from selector.store.layout import layout_of
 
 from conftest import base_config, build
@@ -251,9 +252,12 @@ def test_priority_classes_in_output_and_summary(tmp_path):
     assert list(t["priority"]) == [1, 2, 3, 3, 3]
     assert result.counts["priority"] == {"1": 1, "2": 1, "3": 3}
     text = result.summary
-    assert "priority class 1:" in text and "Total observable hours of the listed targets:" in text
-    total = float(np.sum(t["observable_hours"]))
-    assert f"{total:.1f} h" in text
+    assert "priority class 1:" in text and "observable hours" not in text.lower().replace("most observable hours", "")
+    # hours per class: targets × (exposure + overhead), 30 + 10 min by default; cumulative by class
+    assert result.counts["hours"] == {"1": pytest.approx(40 / 60), "2": pytest.approx(40 / 60),
+                                      "3": pytest.approx(3 * 40 / 60)}
+    assert re.search(r"priority class 1\s+1\s+0\.7\s+1\n", text)
+    assert re.search(r"all classes\s+5\s+3\.3\s+1\n", text)
 
 
 # --- output formats -----------------------------------------------------------------------------
@@ -282,21 +286,11 @@ def test_every_format_reads_back_with_units_and_provenance(tmp_path):
                 mag46=[13.0, 14.2, np.nan])
     _known_objects(cfg, ["K1"], [200.25], [-45.5], ["quasar"], [1.5])
     result = fu.make_targets(cfg, log=lambda *a: None)
-    ref = result.targets
-    assert len(ref) == 3
+    assert len(result.targets) == 3 and result.compact.colnames == list(lists.COMPACT_COLUMNS)
     out = result.outputs
-    read = {"ecsv": Table.read(out["ecsv"], format="ascii.ecsv"), "csv": Table.read(out["csv"], format="ascii.csv"),
-            "votable": Table.read(out["votable"], format="votable"), "fits": Table.read(out["fits"], format="fits")}
-    for fmt, t in read.items():
-        assert t.colnames == ref.colnames, fmt
-        for name in ref.colnames:
-            assert _same(t[name], ref[name]), (fmt, name)
-            want = lists.unit_of(name)
-            # CSV has no unit field: its units come from the column names, as everywhere in the project
-            got = lists.unit_of(name) if fmt == "csv" else (None if t[name].unit is None else t[name].unit.to_string())
-            assert (got is None) == (want is None), (fmt, name)
-            if want:
-                assert t[name].unit == want if fmt != "csv" else got == want, (fmt, name)
+    for kind, ref in (("", result.compact), ("full_", result.targets)):
+        _reads_back(out, kind, ref)
+    read = {"ecsv": Table.read(out["ecsv"], format="ascii.ecsv"), "fits": Table.read(out["fits"], format="fits")}
     assert read["ecsv"]["ra_deg"].unit == "deg" and read["fits"]["observable_hours"].unit == "h"
     prov = json.loads(out["provenance"].read_text())
     assert read["ecsv"].meta["selector_provenance"] == prov
@@ -305,6 +299,29 @@ def test_every_format_reads_back_with_units_and_provenance(tmp_path):
     assert json.loads(infos["selector_provenance"]) == prov
     assert prov["candidates"]["config_hash"] == "run-a" and prov["known_objects"]["files"] == "objects.parquet"
     assert "refraction ignored" in prov["method"]
+    # provenance names files relative to the config's folder
+    assert prov["candidates"]["file"] == "out/run/candidates.parquet"
+
+
+def _reads_back(out, kind, ref):
+    """Every format of one table reads back with its columns, values (text formats at their written
+    precision, FITS in full) and units."""
+    rounded = format_columns(ref)
+    read = {"ecsv": Table.read(out[f"{kind}ecsv"], format="ascii.ecsv"),
+            "csv": Table.read(out[f"{kind}csv"], format="ascii.csv"),
+            "votable": Table.read(out[f"{kind}votable"], format="votable"),
+            "fits": Table.read(out[f"{kind}fits"], format="fits")}
+    for fmt, t in read.items():
+        assert t.colnames == ref.colnames, fmt
+        expect = ref if fmt == "fits" else rounded
+        for name in ref.colnames:
+            assert _same(t[name], expect[name]), (fmt, name)
+            want = lists.unit_of(name)
+            # CSV has no unit field: its units come from the column names, as everywhere in the project
+            got = lists.unit_of(name) if fmt == "csv" else (None if t[name].unit is None else t[name].unit.to_string())
+            assert (got is None) == (want is None), (fmt, name)
+            if want:
+                assert t[name].unit == want if fmt != "csv" else got == want, (fmt, name)
 
 
 def test_sexagesimal_matches_astropy_formatting():
@@ -328,7 +345,7 @@ def test_output_is_deterministic(tmp_path):
     first = fu.make_targets(cfg, log=lambda *a: None)
     before = {k: p.read_bytes() for k, p in first.outputs.items()}
     second = fu.make_targets(cfg, log=lambda *a: None)
-    assert second.history_reused and second.history_run == first.history_run
+    assert second.list_reused and second.list_number == first.list_number
     assert {k: p.read_bytes() for k, p in second.outputs.items()} == before
 
 
@@ -346,23 +363,29 @@ def test_history_over_three_runs(tmp_path):
 
     _candidates(cfg, [1, 2, 3], ra[:3], dec[:3], [3.0, 2.0, 1.0], run_hash="run-1")
     r1 = fu.make_targets(cfg, **quiet)
-    assert r1.history_run == 1 and _statuses(cfg) == {1: "new", 2: "new", 3: "new"}
+    assert r1.list_number == 1 and _statuses(cfg) == {1: "new", 2: "new", 3: "new"}
 
-    # run 2: candidate 2's score changes, 3 disappears, 4 appears
+    # list 2: candidate 2's score changes, 3 disappears, 4 appears; --new-only lists what list 1 did not
     _candidates(cfg, [1, 2, 4], ra[[0, 1, 3]], dec[[0, 1, 3]], [3.0, 2.5, 1.0], run_hash="run-2")
-    r2 = fu.make_targets(cfg, **quiet)
-    assert r2.history_run == 2
-    assert _statuses(cfg) == {1: "unchanged", 2: "score_changed", 3: "dropped", 4: "new"}
     new = fu.make_targets(cfg, new_only=True, **quiet)
-    assert new.history_run == 2 and list(new.targets["astro_id"]) == [4]
+    assert new.list_number == 2 and list(new.targets["astro_id"]) == [4]
+    assert _statuses(cfg) == {1: "unchanged", 2: "score_changed", 3: "dropped", 4: "new"}
     assert new.outputs["ecsv"].name == "targets_new.ecsv" and new.counts["not_new"] == 2
+    assert new.outputs["text"].name == "targets_new.txt" and new.outputs["full_ecsv"].name == "targets_new_full.ecsv"
+    # the same again: list 2 is the previous list now, and it holds every target, so nothing is new
+    again = fu.make_targets(cfg, new_only=True, **quiet)
+    assert again.list_number == 2 and again.list_reused and len(again.targets) == 0 and again.counts["not_new"] == 3
+    assert "in the previous list:" in again.summary
+    # the full list of the same candidates is that same list 2, with every target
+    r2 = fu.make_targets(cfg, **quiet)
+    assert r2.list_number == 2 and r2.list_reused and list(r2.targets["astro_id"]) == [1, 2, 4]
 
     # an outcome for 4, then run 3: 3 comes back, 2 is gone, 4 stays observed and is not re-proposed
     (tmp_path / "spectra.csv").write_text("astro_id,spec_class,redshift\n4,QSO,2.75\n")
     assert fu.record_outcomes(cfg, tmp_path / "spectra.csv", log=lambda *a: None) == 1
     _candidates(cfg, [1, 3, 4], ra[[0, 2, 3]], dec[[0, 2, 3]], [3.0, 1.0, 1.0], run_hash="run-3")
     r3 = fu.make_targets(cfg, **quiet)
-    assert r3.history_run == 3
+    assert r3.list_number == 3
     assert _statuses(cfg) == {1: "unchanged", 2: "dropped", 3: "new", 4: "observed"}
     assert list(r3.targets["astro_id"]) == [1, 3]
     assert list(r3.dropped["reason"]) == ["observed"]
@@ -370,7 +393,7 @@ def test_history_over_three_runs(tmp_path):
     assert [s for _, _, s in score_history(cfg, 3)] == ["new", "new"]
     h = read_history(cfg).to_pylist()
     row1 = next(r for r in h if r["astro_id"] == 1)
-    assert (row1["first_run"], row1["last_run"], row1["n_runs"]) == (1, 3, 3)
+    assert (row1["first_list"], row1["last_list"], row1["n_lists"]) == (1, 3, 3)
     assert row1["first_seen_utc"] <= row1["last_seen_utc"]
 
 
@@ -424,18 +447,18 @@ def test_history_commits_only_when_files_are_written(tmp_path, monkeypatch):
     cfg = build(_data(tmp_path, formats=["ecsv", "fits"]), tmp_path)
     _candidates(cfg, [1, 2], [195.0, 196.0], [-30.0, -30.0], [2.0, 1.0])
 
-    def broken(table, tmp, fmt, prov):
+    def broken(table, tmp, fmt):
         if fmt == "fits":
             raise OSError("disk full")
         tmp.write_text("partial")
 
-    monkeypatch.setattr(lists, "_write", broken)
+    monkeypatch.setattr(lists, "write_table_file", broken)
     with pytest.raises(OSError):
         fu.make_targets(cfg, log=lambda *a: None)
     folder = cfg.output_dir / "targets"
     assert not folder.exists() or not any(folder.iterdir())
     with sqlite3.connect(cfg.output_dir / "history.sqlite") as conn:
-        assert conn.execute("SELECT COUNT(*) FROM runs").fetchone()[0] == 0
+        assert conn.execute("SELECT COUNT(*) FROM lists").fetchone()[0] == 0
 
 
 def test_observability_is_computed_before_the_history_is_locked(tmp_path, monkeypatch):
@@ -458,7 +481,7 @@ def test_observability_is_computed_before_the_history_is_locked(tmp_path, monkey
 
     monkeypatch.setattr(lists, "observability", probe)
     result = fu.make_targets(cfg, log=lambda *a: None)
-    assert calls == [2] and result.history_run == 2
+    assert calls == [2] and result.list_number == 2
 
 
 def test_outcome_recorded_while_the_list_is_computed(tmp_path, monkeypatch):

@@ -319,13 +319,13 @@ def test_write_json_and_text_failures_leave_no_temp(tmp_path):
 
 
 def test_write_table_failure_leaves_no_temp(tmp_path):
-    class Failing:
+    class Failing(Table):
         def write(self, where, **kwargs):
             Path(where).write_text("half")
             raise ValueError("cannot encode")
 
     with pytest.raises(ValueError):
-        io.write_table(Failing(), tmp_path / "a.ecsv", "ecsv")
+        io.write_table(Failing({"a": [1.0]}), tmp_path / "a.ecsv", "ecsv")
     assert _leftovers(tmp_path) == []
     io.write_table(Table({"a": [1.0]}), tmp_path / "a.ecsv", "ecsv")
     assert Table.read(tmp_path / "a.ecsv")["a"][0] == 1.0 and _leftovers(tmp_path) == ["a.ecsv"]

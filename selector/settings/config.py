@@ -322,9 +322,19 @@ class TargetsConfig:
     output_folder: str = setting("targets", doc="folder below project.output_dir for the lists")
     history_file: str = setting("history.sqlite", doc="candidate history database, below project.output_dir")
     score_tolerance: float = setting(1e-9, min=0.0, doc="score changes up to this count as unchanged")
+    name_prefix: str = setting("cand", doc="first part of each target's short name: 1 to 8 letters or digits, "
+                                           "starting with a letter")
+    exposure_min: float = setting(30.0, min=0.0, min_exclusive=True, max=1440.0,
+                                  doc="exposure time per target, minutes (for the nights needed in the summary)")
+    overhead_min: float = setting(10.0, min=0.0, max=1440.0,
+                                  doc="overhead per target (slew, acquisition, readout), minutes")
 
     def _check(self, where):
         import datetime
+
+        if not re.fullmatch(r"[A-Za-z][A-Za-z0-9]{0,7}", self.name_prefix):
+            raise ConfigError(f"{where}.name_prefix = {self.name_prefix!r} is not 1 to 8 letters or digits starting "
+                              "with a letter (e.g. \"cand\")")
 
         dates = {}
         for key in ("start_date", "end_date"):

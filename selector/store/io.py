@@ -24,6 +24,7 @@ import pyarrow as pa
 import pyarrow.csv as pacsv
 import pyarrow.parquet as pq
 
+from selector.core.columns import describe
 from selector.errors import InputError
 
 _ENDINGS = {
@@ -244,6 +245,16 @@ def fingerprint(path: Path, sample_bytes: int = 1 << 20) -> str:
     return f"{size}:{h.hexdigest()[:32]}"
 
 
+def provenance_path(path: Path | str, base: Path | str) -> str:
+    """A file name as provenance records it: relative to ``base`` (the config's folder), with ``/``.
+
+    Results then hold no absolute paths (no home folders, no machine layout), and a project folder
+    moved or copied elsewhere keeps records that still name its files. A file outside ``base`` gets
+    a ``../`` path.
+    """
+    return Path(os.path.relpath(Path(path).resolve(), Path(base).resolve())).as_posix()
+
+
 def file_sha256(path: Path) -> str:
     """Full SHA-256 of a (small) file."""
     h = hashlib.sha256()
@@ -317,11 +328,117 @@ def write_text(text: str, path: Path) -> Path:
     return Path(path)
 
 
+#: Table writers by format name (``fmt`` of :func:`write_table`).
+TABLE_FORMATS = ("ecsv", "csv", "votable", "fits")
+#: Table metadata key under which a result's provenance (a dict) travels to the writers.
+PROVENANCE_META = "selector_provenance"
+
+
+def format_columns(table, *, round_floats: bool = True):
+    """A shallow copy of an astropy Table ready to be written: every known column described, floats rounded.
+
+    The one formatting step shared by every table writer (the run's merged candidates, the target
+    lists and their side tables). For each column :func:`selector.core.columns.describe` knows, the
+    copy carries its description and UCD (``meta['ucd']``, which the VOTable writer turns into the
+    ``FIELD``'s ``ucd``); with ``round_floats`` its float values are rounded to the decimals their
+    unit warrants, so text formats (CSV, ECSV, VOTable) write ``62.7770503`` instead of
+    ``62.777050325324694``. Rounding to ``d`` decimals is ``rint(x·10^d)/10^d``: the nearest double
+    to the short decimal, which Python writes back in its short form. Binary formats keep full
+    precision (``round_floats=False``). Columns unknown to the table of descriptions are left as they are.
+    """
+    out = table.copy(copy_data=False)
+    for name in out.colnames:
+        doc = describe(name)
+        if doc is None:
+            continue
+        col = out[name]
+        if round_floats and doc.decimals is not None and col.dtype.kind == "f":
+            col = col.copy()
+            # + 0.0 turns the -0.0 of small negative values into 0.0
+            col[...] = np.round(np.asarray(col), doc.decimals) + 0.0
+            out[name] = col
+            col = out[name]
+        col.description = doc.description
+        col.meta["ucd"] = doc.ucd
+    return out
+
+
+def describe_arrow_columns(table: pa.Table, units: dict[str, str] | None = None) -> pa.Table:
+    """The same table with each known column's description, UCD and unit (``units``) in its Parquet
+    field metadata; values untouched (Parquet keeps full precision). The Parquet twin of :func:`format_columns`."""
+    fields = []
+    for f in table.schema:
+        doc = describe(f.name)
+        meta = dict(f.metadata or {})
+        if doc is not None:
+            meta.update({b"description": doc.description.encode(), b"ucd": doc.ucd.encode()})
+        if units and units.get(f.name):
+            meta[b"unit"] = units[f.name].encode()
+        fields.append(f.with_metadata(meta) if meta else f)
+    return table.cast(pa.schema(fields, metadata=table.schema.metadata))
+
+
+def _provenance_json(table) -> str | None:
+    prov = table.meta.get(PROVENANCE_META)
+    return None if prov is None else json.dumps(prov, sort_keys=True, separators=(",", ":"))
+
+
+def write_table_file(table, path: Path, fmt: str) -> Path:
+    """Write an astropy Table in ``ecsv``, ``csv``, ``votable`` or ``fits`` at ``path`` (not atomically).
+
+    For callers that write several files inside their own :func:`atomic_path` blocks; every other
+    caller uses :func:`write_table`. Columns go through :func:`format_columns`. The provenance dict
+    in ``table.meta['selector_provenance']`` goes into the ECSV header, a FITS ``PROVJSON`` card
+    (with ``LONGSTRN``, which announces the long-string convention its length needs) and a VOTable
+    ``INFO`` element; CSV has no place for it (a ``provenance.json`` lies beside every CSV we write).
+    """
+    path = Path(path)
+    if fmt == "ecsv":
+        format_columns(table).write(path, format="ascii.ecsv", overwrite=True)
+    elif fmt == "csv":
+        plain = format_columns(table)
+        plain.meta.clear()
+        plain.write(path, format="ascii.csv", overwrite=True)
+    elif fmt == "votable":
+        prov = _provenance_json(table)
+        _write_votable_file(format_columns(table), path, {} if prov is None else {PROVENANCE_META: prov})
+    elif fmt == "fits":
+        _write_fits_file(table, path)
+    else:
+        raise ValueError(f"unknown table format {fmt!r}; one of {', '.join(TABLE_FORMATS)}")
+    return path
+
+
+def _write_fits_file(table, path: Path) -> None:
+    """A FITS binary table with full precision, units, descriptions as ``TCOMMn`` and provenance as
+    ``PROVJSON``. A card value longer than 68 characters is continued (the OGIP long-string
+    convention), and a file using the convention must say so with ``LONGSTRN``: without it a FITS
+    verifier warns."""
+    from astropy.io import fits
+
+    out = format_columns(table, round_floats=False)
+    prov = _provenance_json(table)
+    out.meta = {}
+    hdu = fits.table_to_hdu(out)
+    header = hdu.header
+    long_text = False
+    for i, name in enumerate(out.colnames, start=1):
+        text = out[name].description
+        if text:
+            header[f"TCOMM{i}"] = text
+            long_text |= len(text) > 68
+    if prov is not None:
+        header["PROVJSON"] = prov
+        long_text |= len(prov) > 68
+    if long_text:
+        header.insert("TFIELDS", ("LONGSTRN", "OGIP 1.0", "long strings continue over CONTINUE cards"), after=True)
+    fits.HDUList([fits.PrimaryHDU(), hdu]).writeto(path, overwrite=True)
+
+
 def write_table(table, path: Path, fmt: str) -> Path:
-    """Write an astropy Table atomically in ``ecsv``, ``csv``, ``votable`` or ``fits``."""
-    astropy_fmt = {"ecsv": "ascii.ecsv", "csv": "ascii.csv", "votable": "votable", "fits": "fits"}[fmt]
+    """Write an astropy Table atomically in ``ecsv``, ``csv``, ``votable`` or ``fits`` (see :func:`write_table_file`)."""
     with atomic_path(path) as tmp:
-        table.write(tmp, format=astropy_fmt, overwrite=True)
+        write_table_file(table, tmp, fmt)
     return Path(path)
 
 
@@ -357,12 +474,19 @@ def vounit_string(unit) -> str | None:
 
 
 def write_votable(table, path: Path, infos: dict[str, str] | None = None) -> Path:
-    """Write an astropy Table as a VOTable atomically, with VOUnit units and ``INFO`` elements.
+    """Write an astropy Table as a VOTable atomically, with VOUnit units, UCDs and ``INFO`` elements.
 
-    Units VOUnit cannot express are left out (the column description should say them); the table's
-    ``description`` meta becomes the table's description, and each ``infos`` entry an ``INFO``
-    element (e.g. provenance as JSON), since VOTable has no place for nested metadata.
+    Columns go through :func:`format_columns`. Units VOUnit cannot express are left out (the column
+    description should say them); the table's ``description`` meta becomes the table's description,
+    and each ``infos`` entry an ``INFO`` element (e.g. provenance as JSON), since VOTable has no
+    place for nested metadata.
     """
+    with atomic_path(path) as tmp:
+        _write_votable_file(format_columns(table), tmp, infos or {})
+    return Path(path)
+
+
+def _write_votable_file(table, path: Path, infos: dict[str, str]) -> None:
     from astropy.io.votable import from_table, writeto
     from astropy.io.votable.tree import Info
 
@@ -372,11 +496,9 @@ def write_votable(table, path: Path, infos: dict[str, str] | None = None) -> Pat
         out[name].unit = vounit_string(out[name].unit)
     vot = from_table(out)
     first = vot.get_first_table()
-    for name, value in (infos or {}).items():
+    for name, value in infos.items():
         first.infos.append(Info(name=name, value=value))
-    with atomic_path(path) as tmp:
-        writeto(vot, str(tmp))
-    return Path(path)
+    writeto(vot, str(path))
 
 
 def _json_default(obj):

@@ -14,7 +14,8 @@
       run/tiles/tile<NNNNNNNN>/{features,infrared,candidates,rejects}.parquet, cutflow.json
       run/candidates.{ecsv,csv,parquet}, run/cutflow.csv, run/provenance.json
       <classifier.output_folder>/quasar_classifier.skops (+ .card.json), evaluation.json, ...
-      <targets.output_folder>/targets.*, dropped.*, summary.txt, provenance.json
+      <targets.output_folder>/targets.{ecsv,csv,vot,fits,txt} (compact), targets_full.*, dropped.ecsv,
+                             nights.ecsv, summary.txt, provenance.json (targets_new* with --new-only)
       <targets.history_file>                                 the candidate history
       physics/<stem>_masses.{ecsv,vot,parquet}, <stem>_rejects.ecsv   `selector weigh` of <stem>.<ending>
 
@@ -365,3 +366,16 @@ def generations(tiles_root: Path) -> list[str]:
 
 #: The commit record of a run's merged outputs, below the run folder (see ``jobs/run/commit.py``).
 COMMIT_FILE = "commit.json"
+
+
+# --- the follow-up lists for a telescope (below targets_dir) -------------------------------------
+# ``target_list`` is the compact list; beside it the full table and the compact list as plain text.
+
+def target_full_list(cfg, fmt: str, *, new_only: bool = False) -> Path:
+    """The full target list (every column) in one format: ``targets_full.<ending>`` (``targets_new_full.<ending>``)."""
+    return targets_dir(cfg) / f"{'targets_new' if new_only else 'targets'}_full.{TARGET_LIST_ENDINGS[fmt]}"
+
+
+def target_text_list(cfg, *, new_only: bool = False) -> Path:
+    """The compact list as plain fixed-width text: ``targets.txt`` (``targets_new.txt``)."""
+    return targets_dir(cfg) / f"{'targets_new' if new_only else 'targets'}.txt"

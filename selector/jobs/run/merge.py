@@ -23,7 +23,7 @@ from selector.errors import SelectorError
 from selector.jobs.run.plan import ingest_summaries
 from selector.settings.config import MATCH_SECTIONS, SELECTION_SECTIONS, Config, config_hash
 from selector.store.generations import generation_digest
-from selector.store.io import read_parquet, write_json, write_parquet, write_table, write_text
+from selector.store.io import describe_arrow_columns, read_parquet, write_json, write_parquet, write_table, write_text
 from selector.store.keys import model_sha, result_config
 from selector.store.layout import MERGED_FILES, layout_of
 
@@ -261,7 +261,8 @@ def merge(cfg: Config, summaries: list[TileSummary], prov: dict, fault=None) -> 
     fault("merge:ecsv")
     write_table(table, outputs["csv"], "csv")
     fault("merge:csv")
-    write_parquet(candidates, outputs["parquet"], {"provenance": prov})
+    units = {name: schema.unit_of(name) for name in candidates.column_names}
+    write_parquet(describe_arrow_columns(candidates, units), outputs["parquet"], {"provenance": prov})
     fault("merge:parquet")
     write_text("stage,left\n" + "".join(f"{n},{c}\n" for n, c in flow), outputs["cutflow"])
     fault("merge:cutflow")
