@@ -6,6 +6,7 @@ pipeline is not run. Checks of the astronomy against astropy are in tests/extern
 
 from __future__ import annotations
 
+import hashlib
 import json
 import math
 import re
@@ -578,3 +579,167 @@ def test_demo_config_has_a_semester_for_the_demo_site():
     t = cfg.targets
     assert t.site.name == "Demo Flats" and (t.start_date, t.end_date) == ("2027-04-01", "2027-10-01")
     assert math.isclose(t.altitude_limit_deg, 30.0)
+
+
+# --- the list for a telescope ---------------------------------------------------------------------
+
+def test_short_names_are_ours_stable_and_unique(monkeypatch):
+    import base64
+
+    ids = [str(i) for i in range(2000)]
+    names = lists.short_names(ids, "cand")
+    # our scheme: prefix, hyphen, 8 of Crockford's base-32 digits (no I, L, O, U); no coordinates in it
+    assert all(re.fullmatch(r"cand-[0-9A-HJKMNP-TV-Z]{8}", n) for n in names)
+    assert len(set(names)) == len(names)
+    assert lists.short_names(["1999", "5"], "cand").tolist() == [names[1999], names[5]]  # depends on the id alone
+    # reference: the standard library's RFC 4648 base 32 of the same digest, its alphabet mapped onto Crockford's
+    digest = hashlib.sha256(b"42").digest()[:5]
+    rfc = base64.b32encode(digest).decode()
+    mapped = rfc.translate(str.maketrans("ABCDEFGHIJKLMNOPQRSTUVWXYZ234567", lists.BASE32_DIGITS))
+    assert lists.short_names(["42"], "q").tolist() == [f"q-{mapped}"]
+    # names that clash on their first digits get more digits until they differ
+    monkeypatch.setattr(lists, "NAME_DIGITS", 1)
+    short = lists.short_names(ids[:100], "c")
+    assert len(set(short)) == 100 and min(map(len, short)) == 3 and max(map(len, short)) > 3
+
+
+def test_name_prefix_must_be_a_short_word(tmp_path):
+    with pytest.raises(ConfigError, match=r"targets.name_prefix = 'J 12' is not 1 to 8 letters") as info:
+        build(_data(tmp_path, name_prefix="J 12"), tmp_path)
+    assert "\n" not in str(info.value)
+
+
+def test_compact_list_states_frame_epoch_and_brightest_bands(tmp_path):
+    data = _data(tmp_path, formats=["ecsv", "csv"], name_prefix="hq")
+    data["astrometric"]["epoch_jyear"] = 2019.5
+    cfg = build(data, tmp_path)
+    _candidates(cfg, [1, 2], [195.0, 196.0], [-30.0, -31.0], [2.0, 1.0], mag46=[13.0, np.nan])
+    result = fu.make_targets(cfg, log=lambda *a: None)
+    c = result.compact
+    assert c.colnames == list(lists.COMPACT_COLUMNS)
+    assert list(c["frame"]) == ["ICRS", "ICRS"] and list(c["epoch_jyear"]) == [2019.5, 2019.5]
+    assert all(n.startswith("hq-") for n in c["name"])
+    # 3.4 um at 14.0 Vega is 16.699 AB, 4.6 um at 13.0 Vega is 16.339 AB (offsets of Jarrett et al. 2011,
+    # from memory): 4.6 um carries more flux; without 4.6 um, 3.4 um is the brightest
+    assert list(c["ir_brightest_band"]) == ["4.6", "3.4"] and list(c["ir_brightest_vegamag"]) == [13.0, 14.0]
+    assert list(c["opt_brightest_band"]) == ["broad", "broad"] and list(c["opt_brightest_abmag"]) == [18.0, 18.0]
+    assert list(c["ra_hms"]) == ["13:00:00.000", "13:04:00.000"] and list(c["dec_dms"]) == ["-30:00:00.00",
+                                                                                             "-31:00:00.00"]
+    full = result.targets
+    assert full.colnames[:len(c.colnames)] == c.colnames and "parallax_mas" in full.colnames
+    assert "Positions: ICRS, epoch J2019.5" in result.summary
+
+
+def test_brightest_picks_by_flux_density_and_skips_missing():
+    from selector.jobs.targets.lists import brightest
+
+    cfg = build(_data("."))
+    table = pa.table({"opt_broad_abmag": [18.0, np.nan], "ir_3p4_vegamag": [14.0, np.nan],
+                      "ir_4p6_vegamag": [13.5, np.nan]})
+    b = brightest(table, np.array([0, 1]), cfg)
+    # 13.5 + 3.339 = 16.839 AB at 4.6 um is fainter than 14.0 + 2.699 = 16.699 AB at 3.4 um
+    assert b.ir_band.tolist() == ["3.4", ""] and b.ir_vegamag[0] == 14.0 and np.isnan(b.ir_vegamag[1])
+    assert b.opt_band.tolist() == ["broad", ""] and np.isnan(b.opt_abmag[1])
+
+
+def test_plain_text_export_is_one_header_line_and_fixed_width_rows(tmp_path):
+    cfg = build(_data(tmp_path), tmp_path)
+    _candidates(cfg, [1, 2, 3], [195.0, 196.0, 197.123456789], [-30.0, -31.0, -29.5], [3.0, 2.0, 1.0],
+                mag46=[13.0, np.nan, 14.0])
+    result = fu.make_targets(cfg, log=lambda *a: None)
+    lines = result.outputs["text"].read_text().splitlines()
+    assert lines[0].startswith("# ") and lines[0][2:].split() == list(lists.COMPACT_COLUMNS)
+    assert not any(line.startswith("#") for line in lines[1:]) and len(lines) == 4
+    # fixed width: every line is as long as the header, and the columns are parted by gutters of spaces
+    # at the same places on every line (one gutter between each pair of neighbouring columns)
+    assert {len(line) for line in lines} == {len(lines[0])}
+    blank = np.all(np.array([list(line) for line in lines]) == " ", axis=0)
+    blank[:2] = False  # the "# " lead
+    gutters = np.count_nonzero(np.diff(blank.astype(int)) == 1)
+    assert gutters == len(lists.COMPACT_COLUMNS) - 1
+    rows = [line.split() for line in lines[1:]]
+    assert all(len(r) == len(lists.COMPACT_COLUMNS) for r in rows)
+    c = result.compact
+    for r in range(3):
+        values = dict(zip(lists.COMPACT_COLUMNS, rows[r]))
+        assert values["name"] == c["name"][r] and values["ra_hms"] == c["ra_hms"][r]
+        assert abs(float(values["ra_deg"]) - c["ra_deg"][r]) <= 5e-8 and values["frame"] == "ICRS"
+    # a missing value is written "-", so every row keeps its number of fields
+    one = Table({"name": ["a"], "opt_brightest_abmag": [np.nan], "opt_brightest_band": [""], "priority": [1]})
+    assert lists.plain_text(one).splitlines()[1].split() == ["a", "-", "-", "1"]
+    # numpy reads it back as text, the header line skipped
+    back = np.genfromtxt(result.outputs["text"], dtype=str, comments="#")
+    assert back.shape == (3, len(lists.COMPACT_COLUMNS))
+
+
+def test_nights_needed_packs_time_into_dark_hours_in_date_order():
+    dark = np.array([10.0, 8.0, 10.0])
+    assert lists.nights_needed(0.0, dark) == 0
+    assert lists.nights_needed(10.0, dark) == 1
+    assert lists.nights_needed(10.5, dark) == 2
+    assert lists.nights_needed(28.0, dark) == 3
+    assert lists.nights_needed(28.5, dark) is None  # more than the range holds
+
+
+def test_summary_reports_hours_per_class_and_nights_not_summed_windows(tmp_path):
+    cfg = build(_data(tmp_path, exposure_min=50.0, overhead_min=10.0), tmp_path)
+    _candidates(cfg, [1, 2, 3, 4, 5], np.full(5, 195.0) + np.arange(5), np.full(5, -30.0), [5, 4, 3, 2, 1],
+                mag46=[13.0, 16.0, 15.0, 13.0, 13.0])
+    result = fu.make_targets(cfg, log=lambda *a: None)
+    # one hour per target: class 1 has 1 target, classes 1-2 have 2, all 5; a night holds ~9.7 dark hours
+    assert result.counts["hours"] == {"1": 1.0, "2": 1.0, "3": 3.0}
+    text = result.summary
+    assert "50 min exposure + 10 min overhead = 60 min per target" in text
+    assert re.search(r"classes 1 and 2\s+2\s+2\.0\s+1\n", text) and re.search(r"all classes\s+5\s+5\.0\s+1\n", text)
+    # the sum of observable windows (hundreds of hours for five targets over ten nights) is not reported
+    windows = float(np.sum(result.targets["observable_hours"]))
+    assert windows > 100 and f"{windows:.1f}" not in text
+
+
+def test_list_records_the_run_it_came_from(tmp_path):
+    from selector.store.manifest import Manifest
+
+    cfg = build(_data(tmp_path), tmp_path)
+    _candidates(cfg, [1, 2], [195.0, 196.0], [-30.0, -31.0], [2.0, 1.0])
+    with Manifest(layout_of(cfg).manifest) as man:
+        for merged in (1, 1, 0, 1, 0):  # runs 1-5; run 4 was the last to write the merged candidates
+            man.end_run(man.begin_run(), "ok", merged=merged)
+    result = fu.make_targets(cfg, log=lambda *a: None)
+    assert (result.list_number, result.from_run) == (1, 4)
+    assert "List 1 of the candidate history, made from run 4" in result.summary
+    prov = json.loads(result.outputs["provenance"].read_text())
+    assert (prov["list_number"], prov["from_run"]) == (1, 4)
+    with sqlite3.connect(cfg.output_dir / "history.sqlite") as conn:
+        assert conn.execute("SELECT list_number, from_run, n_listed FROM lists").fetchall() == [(1, 4, 2)]
+
+
+def test_a_history_from_before_lists_were_named_is_renamed_and_kept(tmp_path):
+    cfg = build(_data(tmp_path), tmp_path)
+    path = cfg.output_dir / "history.sqlite"
+    path.parent.mkdir(parents=True)
+    with sqlite3.connect(path) as conn:  # the first schema, with one recorded list and one outcome
+        conn.executescript("""
+            CREATE TABLE meta (key TEXT PRIMARY KEY, value TEXT NOT NULL);
+            CREATE TABLE runs (run INTEGER PRIMARY KEY, candidates_config_hash TEXT, candidates_sha256 TEXT NOT NULL,
+                               n_candidates INTEGER NOT NULL, recorded_utc TEXT NOT NULL);
+            CREATE TABLE candidates (candidate_id TEXT PRIMARY KEY, status TEXT NOT NULL, first_run INTEGER NOT NULL,
+                                     last_run INTEGER NOT NULL, score REAL NOT NULL, ra_deg REAL NOT NULL,
+                                     dec_deg REAL NOT NULL);
+            CREATE TABLE scores (run INTEGER NOT NULL, candidate_id TEXT NOT NULL, score REAL NOT NULL,
+                                 rank INTEGER NOT NULL, status TEXT NOT NULL, PRIMARY KEY (run, candidate_id));
+            CREATE TABLE outcomes (candidate_id TEXT PRIMARY KEY, spec_class TEXT NOT NULL, redshift REAL,
+                                   source_file TEXT NOT NULL, recorded_utc TEXT NOT NULL);
+            INSERT INTO meta VALUES ('id_kind', 'int');
+            INSERT INTO runs VALUES (1, 'old', 'abc', 2, '2026-01-01T00:00:00+00:00');
+            INSERT INTO candidates VALUES ('1', 'new', 1, 1, 2.0, 195.0, -30.0), ('2', 'observed', 1, 1, 1.0, 196.0, -30.0);
+            INSERT INTO scores VALUES (1, '1', 2.0, 1, 'new'), (1, '2', 1.0, 2, 'new');
+            INSERT INTO outcomes VALUES ('2', 'star', NULL, 'o.csv', '2026-01-02T00:00:00+00:00');
+        """)
+    _candidates(cfg, [1, 2, 3], [195.0, 196.0, 197.0], np.full(3, -30.0), [2.0, 1.0, 0.5])
+    result = fu.make_targets(cfg, new_only=True, log=lambda *a: None)
+    assert result.list_number == 2
+    # the old list counts as having listed nothing, so every target is new; the outcome still drops 2
+    assert list(result.targets["astro_id"]) == [1, 3] and list(result.dropped["reason"]) == ["observed"]
+    assert fu.training_labels(cfg).to_pylist() == [{"astro_id": 2, "label": "star", "redshift": None}]
+    h = {r["astro_id"]: r for r in read_history(cfg).to_pylist()}
+    assert (h[1]["first_list"], h[1]["last_list"], h[1]["n_lists"]) == (1, 2, 2)
