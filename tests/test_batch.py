@@ -191,15 +191,15 @@ def _edit_config(cfg, old: str, new: str):
 
 def test_selection_change_reuses_the_feature_cache_and_match_change_recomputes(finished, reference):
     features = {rel: m for rel, m in _mtimes(finished).items() if rel.name == "features.parquet"}
-    loose = _edit_config(finished, "parallax_snr_max = 3.0", "parallax_snr_max = 5.0")
+    loose = _edit_config(finished, "joint_pvalue_min = 0.0027", "joint_pvalue_min = 0.0001")
     result = run_job.run(loose, workers=2, quiet=True, log=_quiet)
     n = reference["result"].tiles
     assert result.actions["reselected"] == n and result.actions["computed"] == 0
-    assert dict(result.cutflow)["parallax"] > dict(reference["result"].cutflow)["parallax"]
+    assert dict(result.cutflow)["joint_motion"] > dict(reference["result"].cutflow)["joint_motion"]
     assert {rel: m for rel, m in _mtimes(finished).items() if rel.name == "features.parquet"} == features
 
     # back to the original cuts: re-selection from the cache gives the bytes of the first computation
-    back = _edit_config(finished, "parallax_snr_max = 5.0", "parallax_snr_max = 3.0")
+    back = _edit_config(finished, "joint_pvalue_min = 0.0001", "joint_pvalue_min = 0.0027")
     result = run_job.run(back, workers=2, quiet=True, log=_quiet)
     assert result.actions["reselected"] == n
     assert _merged_bytes(back) == reference["merged"] and _tile_bytes(back) == reference["tiles"]

@@ -168,7 +168,7 @@ def _keys(obj, prefix=""):
 def test_default_toml_documents_every_settings_key():
     text = (CONFIGS / "default.toml").read_text()
     section_classes = {"project": cfgmod.ProjectConfig, "tiling": cfgmod.TilingConfig, "match": cfgmod.MatchConfig,
-                       "motion": cfgmod.MotionConfig, "colours": cfgmod.ColourConfig,
+                       "motion": cfgmod.MotionConfig, "quality": cfgmod.QualityConfig, "colours": cfgmod.ColourConfig,
                        "ranking": cfgmod.RankingConfig, "classifier": cfgmod.ClassifierConfig,
                        "run": cfgmod.RunConfig, "astrometric": cfgmod.CatalogueConfig,
                        "targets": cfgmod.TargetsConfig, "physics": cfgmod.PhysicsConfig}
@@ -186,7 +186,7 @@ def test_default_toml_documents_every_settings_key():
 
 def test_default_toml_values_equal_code_defaults():
     cfg = load_config(CONFIGS / "default.toml")
-    for section in ("project", "tiling", "match", "motion", "colours", "ranking", "classifier", "run", "physics"):
+    for section in ("project", "tiling", "match", "motion", "quality", "colours", "ranking", "classifier", "run", "physics"):
         written = to_plain(getattr(cfg, section))
         default = to_plain(getattr(cfgmod, type(getattr(cfg, section)).__name__)())
         assert written == default, section

@@ -31,8 +31,11 @@ ROOT = Path(__file__).resolve().parents[1]
 
 #: Changes tried against a full re-run: thresholds and a criterion; then extra stages and a linear cut.
 CHANGES = {
-    "thresholds": ["motion.parallax_snr_max=5", 'colours.criteria=["assef2018_r75"]', "motion.pm_pvalue_min=0.01"],
-    "stages": ["motion.fit_quality_max=1.1", "colours.galactic_latitude_min_deg=15",
+    "thresholds": ["motion.test=separate", "motion.parallax_snr_max=5", 'colours.criteria=["assef2018_r75"]',
+                   "motion.pm_pvalue_min=0.01", "quality.reject_extended_flags=false"],
+    "stages": ["motion.fit_quality_max=1.1", "motion.joint_pvalue_min=0.01", "quality.extent_max_mag=0.05",
+               "quality.extent_snr_max=3", "quality.negative_parallax_snr_max=2",
+               "colours.galactic_latitude_min_deg=15",
                'colours.criteria=["stern2012", "assef2018_c75"]', "colours.combine=all",
                'colours.linear_cuts=[{name = "blue_edge", y = ["3.4", "4.6"], x = ["4.6"], slope = 0.05, '
                'intercept = 0.1}]'],

@@ -32,6 +32,7 @@ class Role:
     kind : str
         ``id`` (integer or string identifier), ``lon``/``lat`` (a position, wrapped or range-checked),
         ``value`` (a finite-or-missing quantity), ``error`` (non-negative), ``corr`` (in [−1, 1]),
+        ``flag`` (a number or a boolean, nonzero meaning set; kept as 0/1 floats, NaN when missing),
         ``text`` (kept as a string), ``magnitude`` and ``magnitude_error``.
     unit : str or None
         Canonical astropy unit the input is converted to; None for dimensionless or text roles.
@@ -48,6 +49,12 @@ class Role:
     required: bool
     doc: str
 
+
+#: Canonical columns of the point-source roles (read by the selection's point-source cut).
+EXTENT_COLUMN = "extent_mag"
+EXTENT_ERROR_COLUMN = "extent_error_mag"
+ASTRO_EXTENDED_FLAG_COLUMN = "astro_extended_flag"
+IR_EXTENDED_FLAG_COLUMN = "ir_extended_flag"
 
 _CORRELATION_PAIRS = [
     ("ra", "dec"), ("ra", "parallax"), ("ra", "pmra"), ("ra", "pmdec"), ("dec", "parallax"),
@@ -73,6 +80,12 @@ ASTROMETRIC_ROLES = (
     ),
     Role("fit_quality", "fit_quality", "value", None, False,
          "astrometric fit-quality indicator (larger = worse fit, e.g. a normalised error of unit weight)"),
+    Role("extent", EXTENT_COLUMN, "value", "mag", False,
+         "how extended the source looks, in mag: 0 for a point source, larger when extended (e.g. "
+         "point-source-fit minus aperture magnitude)"),
+    Role("extent_error", EXTENT_ERROR_COLUMN, "error", "mag", False, "uncertainty of the extent"),
+    Role("extended_flag", ASTRO_EXTENDED_FLAG_COLUMN, "flag", None, False,
+         "nonzero (or true) when the catalogue judges the source extended"),
 )
 
 INFRARED_ROLES = (
@@ -81,6 +94,8 @@ INFRARED_ROLES = (
     Role("dec", "dec_deg", "lat", "deg", True, "declination (ICRS) at the catalogue epoch"),
     Role("position_error", "pos_error_arcsec", "error", "arcsec", False, "positional uncertainty (1 sigma, per axis)"),
     Role("flags", "ir_flags", "text", None, False, "quality flags, kept as text"),
+    Role("extended_flag", IR_EXTENDED_FLAG_COLUMN, "flag", None, False,
+         "nonzero (or true) when the source is resolved (extended) in the infrared beam"),
 )
 
 KNOWN_ROLES = (

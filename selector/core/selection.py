@@ -9,8 +9,11 @@ from dataclasses import dataclass, field
 import numpy as np
 import pyarrow as pa
 
+from scipy.stats import chi2 as chi2_distribution
+
 from selector.core import schema
 from selector.core.astrometry import zero_motion
+from selector.core.joint_motion import joint_zero_motion
 from selector.core.photometry import LinearCut, apply_criteria, apply_linear_cut, vega_to_ab
 from selector.errors import SelectorError
 
@@ -40,6 +43,12 @@ def infrared_mags(features: pa.Table, bands) -> dict[str, np.ndarray]:
     return {b: _col(features, schema.infrared_mag_column(b)) for b in bands}
 
 
+#: Column of the match probability, when the cross-match gives one (the probabilistic match).
+MATCH_PROBABILITY_COLUMN = "match_probability"
+#: Stages of the zero-motion test, whichever ``motion.test`` is in force.
+MOTION_STAGES = ("parallax", "proper_motion", "joint_motion")
+
+
 @dataclass
 class Selection:
     """Outcome of the selection stages over a feature table.
@@ -50,14 +59,130 @@ class Selection:
         Cumulative masks after each cut, in order; the last is the candidates.
     derived : dict of numpy arrays
         Columns computed from the selection settings (significances, colour excess, score).
+    notes : list of str
+        Configured cuts left out, each with the reason (e.g. a column the feature cache lacks).
     """
 
     stages: list = field(default_factory=list)
     derived: dict = field(default_factory=dict)
+    notes: list = field(default_factory=list)
 
     @property
     def passed(self) -> np.ndarray:
         return self.stages[-1][1]
+
+    @property
+    def zero_motion_passed(self) -> np.ndarray:
+        """Rows left after the zero-motion test (its last stage), whichever test is configured."""
+        return [mask for name, mask in self.stages if name in MOTION_STAGES][-1]
+
+
+def match_method(cfg) -> str:
+    """The configured cross-match method; ``"nearest"`` for a configuration without the key."""
+    return str(getattr(cfg.match, "method", "nearest"))
+
+
+def match_quality_note(cfg, columns) -> str | None:
+    """Why the match-quality cut is left out (None when it applies).
+
+    The cut reads the match probability, which only the probabilistic match writes: with
+    ``match.method = "nearest"`` (or a feature cache written before the probabilistic match
+    existed) there is nothing to cut on, and the cut is skipped rather than removing every row.
+    """
+    if match_method(cfg) == "nearest":
+        return ("match_quality: skipped, the nearest-neighbour match gives no match probability "
+                "(match.method = \"nearest\")")
+    if MATCH_PROBABILITY_COLUMN not in columns:
+        return f"match_quality: skipped, the feature cache has no {MATCH_PROBABILITY_COLUMN} column"
+    return None
+
+
+def skipped_cut_notes(cfg) -> list[str]:
+    """Configured cuts that ``cfg`` leaves out for want of data, each with the reason (for summaries)."""
+    notes = [match_quality_note(cfg, (MATCH_PROBABILITY_COLUMN,))]
+    q = cfg.quality
+    if (q.extent_max_mag is not None or q.reject_extended_flags) and not point_source_columns(cfg):
+        notes.append("point_source: skipped, no extent or extended_flag role is mapped in [astrometric.columns] "
+                     "or [infrared.columns]")
+    return [n for n in notes if n]
+
+
+def point_source_columns(cfg) -> tuple[str, ...]:
+    """Feature columns the point-source cut reads under ``cfg`` (the mapped, enabled roles)."""
+    q = cfg.quality
+    astro = cfg.astrometric.columns
+    cols = []
+    if q.extent_max_mag is not None and "extent" in astro:
+        cols.append(schema.EXTENT_COLUMN)
+    if q.extent_snr_max is not None:
+        cols += [schema.EXTENT_COLUMN, schema.EXTENT_ERROR_COLUMN]
+    if q.reject_extended_flags:
+        if "extended_flag" in astro:
+            cols.append(schema.ASTRO_EXTENDED_FLAG_COLUMN)
+        if "extended_flag" in cfg.infrared.columns:
+            cols.append(schema.IR_EXTENDED_FLAG_COLUMN)
+    return tuple(dict.fromkeys(cols))
+
+
+def point_source_mask(features: pa.Table, cfg) -> np.ndarray | None:
+    """Rows that look point-like under ``[quality]`` (None when no point-source role is mapped).
+
+    A source is kept when its extent is at most ``extent_max_mag`` (and, with ``extent_snr_max``,
+    not significantly above zero) and no mapped extendedness flag is set. A missing extent or flag
+    keeps the row: absence of a measurement is not evidence of a galaxy, and the classifier sees
+    the missing value.
+    """
+    q = cfg.quality
+    cols = point_source_columns(cfg)
+    if not cols:
+        return None
+    ok = np.ones(features.num_rows, bool)
+    extent = _col(features, schema.EXTENT_COLUMN)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        if q.extent_max_mag is not None and schema.EXTENT_COLUMN in cols:
+            ok &= ~(extent > q.extent_max_mag)
+        if q.extent_snr_max is not None:
+            ok &= ~(extent / _col(features, schema.EXTENT_ERROR_COLUMN) > q.extent_snr_max)
+    for name in (schema.ASTRO_EXTENDED_FLAG_COLUMN, schema.IR_EXTENDED_FLAG_COLUMN):
+        if name in cols:
+            ok &= ~(_col(features, name) > 0.0)
+    return ok
+
+
+def one_sided_joint_pvalue(chi2, parallax_snr) -> np.ndarray:
+    """p-value of the joint zero-motion test, one-sided in parallax (stars have positive parallax).
+
+    Parameters
+    ----------
+    chi2 : array_like of float
+        ``xᵀ C⁻¹ x`` of (ϖ − ϖ0, μα*, μδ) with its full 3×3 covariance (3 degrees of freedom).
+    parallax_snr : array_like of float
+        ``(ϖ − ϖ0) / σϖ``.
+
+    Returns
+    -------
+    numpy.ndarray
+        Probability, for a source at rest at infinite distance, of a statistic at least this large.
+
+    Notes
+    -----
+    Against the alternative "moving, or ϖ > ϖ0" the likelihood-ratio statistic is the full χ² when
+    ϖ ≥ ϖ0 and, when ϖ < ϖ0, the χ² left once the parallax is fixed at its boundary value ϖ0:
+    ``T = χ² − z²`` with z the parallax significance (the Schur complement of the parallax in the
+    covariance, so the proper motion keeps its correlation with the parallax). Under the null
+    hypothesis z is on either side of zero with probability 1/2 and, given z, the rest of χ² is
+    χ² with 2 degrees of freedom independent of z, so T follows the mixture
+    ``½ χ²(2) + ½ χ²(3)`` (a chi-bar-squared law for a parameter on the boundary: Chernoff 1954,
+    Ann. Math. Stat. 25, 573; Self & Liang 1987, JASA 82, 605; from memory). Hence
+    ``p = ½ sf₂(T) + ½ sf₃(T)``; a significantly negative parallax no longer counts as motion
+    (it is a quality matter, see ``[quality] negative_parallax_snr_max``).
+    """
+    chi2 = np.asarray(chi2, float)
+    z = np.asarray(parallax_snr, float)
+    t = np.where(z < 0.0, chi2 - z * z, chi2)
+    # rounding can leave a tiny negative remainder when the motion is exactly zero
+    t = np.maximum(t, 0.0)
+    return 0.5 * chi2_distribution.sf(t, 2) + 0.5 * chi2_distribution.sf(t, 3)
 
 
 def select(features: pa.Table, cfg, p_quasar: np.ndarray | None = None) -> Selection:
@@ -68,13 +193,25 @@ def select(features: pa.Table, cfg, p_quasar: np.ndarray | None = None) -> Selec
     features : pyarrow.Table
         Feature-cache rows (matched sources, tile rejects already removed).
     cfg : Config
-        Only the selection sections are read (motion, colours, ranking, classifier).
+        Only the selection sections are read (motion, quality, colours, ranking, classifier), and
+        which roles the catalogues map (the point-source cut applies to the mapped ones).
     p_quasar : numpy.ndarray, optional
         Classifier probabilities; when given, ``classifier.threshold`` is applied as a last cut
         and candidates are ranked by it.
     """
     m = cfg.motion
+    q = cfg.quality
     n = features.num_rows
+    jm = joint_zero_motion(
+        _col(features, "parallax_mas"), _col(features, "parallax_error_mas"),
+        _col(features, "pmra_mas_yr"), _col(features, "pmdec_mas_yr"),
+        pmra_error_mas_yr=_col(features, "pmra_error_mas_yr"), pmdec_error_mas_yr=_col(features, "pmdec_error_mas_yr"),
+        parallax_pmra_corr=_col(features, "parallax_pmra_corr"),
+        parallax_pmdec_corr=_col(features, "parallax_pmdec_corr"),
+        pmra_pmdec_corr=_col(features, "pmra_pmdec_corr"), parallax_zero_point_mas=m.parallax_zero_point_mas,
+        error_inflation=m.error_inflation,
+    )
+    joint_p = one_sided_joint_pvalue(jm.chi2, jm.parallax_snr)
     zm = zero_motion(
         _col(features, "parallax_mas"), _col(features, "parallax_error_mas"),
         _col(features, "pmra_mas_yr"), _col(features, "pmdec_mas_yr"),
@@ -92,13 +229,29 @@ def select(features: pa.Table, cfg, p_quasar: np.ndarray | None = None) -> Selec
         sel.stages.append((name, keep.copy()))
 
     stage("matched", np.ones(n, bool))
+    note = match_quality_note(cfg, features.column_names)
+    if note is None:
+        stage("match_quality", _col(features, MATCH_PROBABILITY_COLUMN) >= q.match_probability_min)
+    else:
+        sel.notes.append(note)
     if m.require_solution:
         stage("astrometric_solution", has_solution)
     if m.fit_quality_max is not None:
         stage("fit_quality", _col(features, "fit_quality") <= m.fit_quality_max)
     # without a solution (and require_solution = false) the motion tests have nothing to reject
-    stage("parallax", ~has_solution | (np.abs(zm.parallax_snr) <= m.parallax_snr_max))
-    stage("proper_motion", ~has_solution | (zm.pm_pvalue >= m.pm_pvalue_min))
+    if q.negative_parallax_snr_max is not None:
+        # a parallax far below zero is no evidence of a star but of a failed solution: a quality cut
+        stage("negative_parallax", ~has_solution | (zm.parallax_snr >= -q.negative_parallax_snr_max))
+    if m.test == "joint":
+        joint_ok = np.isfinite(joint_p) & (joint_p >= m.joint_pvalue_min)
+        stage("joint_motion", ~has_solution | joint_ok)
+    else:
+        # one-sided: stars have positive parallaxes
+        stage("parallax", ~has_solution | (zm.parallax_snr <= m.parallax_snr_max))
+        stage("proper_motion", ~has_solution | (zm.pm_pvalue >= m.pm_pvalue_min))
+    point_like = point_source_mask(features, cfg)
+    if point_like is not None:
+        stage("point_source", point_like)
 
     c = cfg.colours
     mags = infrared_mags(features, cfg.infrared_bands())
@@ -138,6 +291,7 @@ def select(features: pa.Table, cfg, p_quasar: np.ndarray | None = None) -> Selec
     score = criteria_score(excess, bright, r.brightness_pivot_mag, r.brightness_weight)
     sel.derived = {
         "parallax_snr": zm.parallax_snr, "pm_chi2": zm.pm_chi2, "pm_pvalue": zm.pm_pvalue,
+        "motion_chi2": jm.chi2, "motion_pvalue": joint_p,
         "colour_excess_mag": excess, "criteria_score": score,
     }
     if p_quasar is not None:

@@ -62,7 +62,7 @@ class _Field:
 
     canonical: str
     source: str
-    kind: str                  # id, lon, lat, value, error, corr, text, magnitude, magnitude_error
+    kind: str                  # id, lon, lat, value, error, corr, flag, text, magnitude, magnitude_error
     scale: float | None = None  # multiply to get the canonical unit (None: decided per file)
     unit: str | None = None     # canonical unit, also written to the Parquet field metadata
     given_unit: str | None = None
@@ -120,6 +120,13 @@ def _scale(field: _Field, file_units: dict[str, str], path: Path) -> float:
     except (ValueError, u.UnitsError) as exc:
         raise InputError(f"{path}: column '{field.source}' has unit {text!r}, which cannot be converted to "
                          f"{field.unit or 'a plain number'} ({exc}); set its unit in the config") from None
+
+
+def _flag_as_number(arr):
+    """A boolean flag column as 0/1 integers (other types pass unchanged to :func:`_as_float`)."""
+    if pa.types.is_boolean(arr.type):
+        return pc.cast(arr, pa.int8())
+    return arr
 
 
 def _as_float(arr: pa.ChunkedArray | pa.Array) -> tuple[np.ndarray, np.ndarray]:
@@ -206,6 +213,8 @@ def map_chunk(chunk, fields: list[_Field], id_kind: IdKind):
                           else pc.cast(raw, pa.string()))
             names.append(f.canonical)
             continue
+        if f.kind == "flag":
+            raw = _flag_as_number(raw)
         try:
             values, bad = _as_float(raw)
         except TypeError as exc:
@@ -213,7 +222,10 @@ def map_chunk(chunk, fields: list[_Field], id_kind: IdKind):
                              f"{f.canonical}") from None
         checks.append(("unparsable_value", bad, f.source))
         values = _blank_sentinels(values, f.null_values)
-        if f.kind in ("magnitude", "magnitude_error"):
+        if f.kind == "flag":
+            # any nonzero value means "set": kept as 0/1 so a cut and a model read one meaning
+            values = np.where(np.isnan(values), np.nan, (values != 0).astype(float))
+        elif f.kind in ("magnitude", "magnitude_error"):
             values = _magnitude(values, f, raw_flux=None) if f.kind == "magnitude" else values
         else:
             values = values * _scale(f, chunk.units, chunk.path)

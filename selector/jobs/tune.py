@@ -82,7 +82,8 @@ __all__ = [
 #: reads, which are among them). A row's tile is known from the file it is read from, so the tile
 #: column is not loaded.
 _BASE_COLUMNS = ("parallax_mas", "parallax_error_mas", "pmra_mas_yr", "pmdec_mas_yr",
-                 "pmra_error_mas_yr", "pmdec_error_mas_yr", "pmra_pmdec_corr")
+                 "pmra_error_mas_yr", "pmdec_error_mas_yr", "pmra_pmdec_corr", "parallax_pmra_corr",
+                 "parallax_pmdec_corr")
 #: Extra columns the plots read.
 PLOT_COLUMNS = ("astro_id", "ra_deg", "dec_deg", *(schema.infrared_mag_column(b) for b in ("3.4", "4.6", "12")))
 
@@ -243,6 +244,9 @@ def needed_columns(cfg: Config, plots: bool = False, classifier: bool = True,
     cols = (["astro_id"] if ids else []) + list(_BASE_COLUMNS)
     if cfg.motion.fit_quality_max is not None:
         cols.append("fit_quality")
+    if selection.match_method(cfg) != "nearest":
+        cols.append(selection.MATCH_PROBABILITY_COLUMN)
+    cols += selection.point_source_columns(cfg)
     cols += [schema.infrared_mag_column(b) for b in _needed_bands(cfg)]
     c = cfg.colours
     if c.linear_cuts or c.optical_infrared is not None:
@@ -590,6 +594,8 @@ def format_outcome(out: TuneOutcome) -> str:
         lines.append("no selection setting differs from the run's")
     if not out.after.cfg.classifier.model and any(k == "classifier.threshold" for k, _, _ in out.changes):
         lines.append("  (classifier.threshold has no effect: no classifier.model is set)")
+    for note in out.after.blocks[0].notes:
+        lines.append(f"  ({note})")
     rows = compare_cutflows(out.before.cutflow, out.after.cutflow)
     width = max(len(n) for n, _, _ in rows)
     lines.append("")

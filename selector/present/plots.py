@@ -93,7 +93,7 @@ class PlotData:
 
         d = ev.selection.derived
         motion = None
-        for name in ("proper_motion", "parallax"):
+        for name in ("joint_motion", "proper_motion", "parallax"):
             try:
                 motion = ev.stage_mask(name)
                 break
@@ -257,10 +257,14 @@ def motion_statistics(data: PlotData):
     ax1.hist(clipped[ok], bins=bins, color="0.6", label=f"matched ({int(ok.sum()):,d})")
     ax1.hist(clipped[ok & data.candidate], bins=bins, histtype="step", color=_CANDIDATE, lw=1.5,
              label=f"candidates ({int((ok & data.candidate).sum()):,d})")
-    for s in (-mo.parallax_snr_max, mo.parallax_snr_max):
+    # the parallax cut is one-sided (separate test); below zero only the quality cut applies
+    low = getattr(data.cfg, "quality", None)
+    low = -span if low is None or low.negative_parallax_snr_max is None else -low.negative_parallax_snr_max
+    for s in (low, mo.parallax_snr_max):
         ax1.axvline(s, color="k", ls="--", lw=1.2)
-    ax1.axvspan(-mo.parallax_snr_max, mo.parallax_snr_max, color=_MOTION, alpha=0.08,
-                label=f"kept: |ϖ − ϖ₀|/σ ≤ {mo.parallax_snr_max:g}")
+    ax1.axvspan(low, mo.parallax_snr_max, color=_MOTION, alpha=0.08,
+                label=f"kept: {low:g} ≤ (ϖ − ϖ₀)/σ ≤ {mo.parallax_snr_max:g}"
+                      + (" (separate test)" if mo.test == "joint" else ""))
     ax1.set_yscale("log")
     ax1.set_xlabel(f"parallax significance (ϖ − ϖ₀)/σ  (clipped to ±{span:g})")
     ax1.set_ylabel("sources per bin")

@@ -27,6 +27,8 @@ from selector.errors import ConfigError
 
 _BAND_NAME = re.compile(r"^[a-z][a-z0-9]{0,15}$")
 FORMATS = ("auto", "parquet", "fits", "csv", "ecsv", "votable")
+#: Zero-motion tests of ``[motion] test``.
+MOTION_TESTS = ("joint", "separate")
 # Flux-density inputs are accepted for magnitudes and turned into AB magnitudes.
 _FLUX = u.Jy
 
@@ -104,7 +106,7 @@ def check_catalogue(cat: CatalogueConfig, kind: str) -> None:
         if spec.unit is not None:
             unit = _parse_unit(spec.unit, f"{kind}.columns.{name}.unit")
             target = u.Unit(r.unit) if r.unit else u.dimensionless_unscaled
-            if r.kind in ("id", "text"):
+            if r.kind in ("id", "text", "flag"):
                 raise ConfigError(f"{kind}.columns.{name} is {r.doc}; it takes no unit (got {spec.unit!r})")
             if not unit.is_equivalent(target):
                 raise ConfigError(
@@ -157,11 +159,36 @@ class MatchConfig:
 @dataclass(frozen=True)
 class MotionConfig:
     parallax_zero_point_mas: float = setting(-0.017, min=-1.0, max=1.0, doc="parallax zero-point subtracted before testing")
-    parallax_snr_max: float = setting(3.0, min=0.0, min_exclusive=True, doc="keep |parallax − zero-point| / error ≤ this")
-    pm_pvalue_min: float = setting(0.001, min=0.0, max=1.0, doc="keep sources whose zero-proper-motion chi² p-value ≥ this")
+    test: str = setting("joint", choices=MOTION_TESTS,
+                        doc="'joint': parallax and proper motion as one χ² (3 dof, full covariance, one-sided in "
+                            "parallax); 'separate': a parallax cut and a proper-motion cut")
+    joint_pvalue_min: float = setting(0.0027, min=0.0, max=1.0,
+                                      doc="with test = 'joint': keep sources whose zero-motion p-value ≥ this")
+    parallax_snr_max: float = setting(3.0, min=0.0, min_exclusive=True,
+                                      doc="with test = 'separate': keep (parallax − zero-point) / error ≤ this (one-sided)")
+    pm_pvalue_min: float = setting(0.001, min=0.0, max=1.0,
+                                   doc="with test = 'separate': keep sources whose zero-proper-motion chi² p-value ≥ this")
     error_inflation: float = setting(1.0, min=0.0, min_exclusive=True, max=100.0, doc="factor applied to all astrometric errors")
     require_solution: bool = setting(True, doc="remove sources without a parallax and proper motion (true) or let them pass (false)")
     fit_quality_max: Optional[float] = setting(None, min=0.0, doc="keep fit_quality ≤ this (needs the fit_quality role)")
+
+
+@dataclass(frozen=True)
+class QualityConfig:
+    """Cuts on how trustworthy a source's measurements are: its match, its shape, its parallax."""
+
+    match_probability_min: float = setting(0.8, min=0.0, max=1.0,
+                                           doc="keep pairs whose match probability ≥ this (a no-op when the "
+                                               "match gives none, e.g. match.method = 'nearest')")
+    extent_max_mag: Optional[float] = setting(0.1, doc="keep sources whose astrometric extent ≤ this, in mag "
+                                                       "(needs the extent role; a no-op without it)")
+    extent_snr_max: Optional[float] = setting(None, min=0.0, min_exclusive=True,
+                                              doc="also keep only extent / extent_error ≤ this (needs extent_error)")
+    reject_extended_flags: bool = setting(True, doc="remove sources flagged extended in either catalogue "
+                                                    "(the extended_flag roles; a no-op without them)")
+    negative_parallax_snr_max: Optional[float] = setting(5.0, min=0.0, min_exclusive=True,
+                                                         doc="remove (parallax − zero-point) / error < −this: a "
+                                                             "sign of a bad astrometric solution")
 
 
 @dataclass(frozen=True)
@@ -474,6 +501,7 @@ class Config:
     tiling: TilingConfig = setting(default_factory=TilingConfig)
     match: MatchConfig = setting(default_factory=MatchConfig)
     motion: MotionConfig = setting(default_factory=MotionConfig)
+    quality: QualityConfig = setting(default_factory=QualityConfig)
     colours: ColourConfig = setting(default_factory=ColourConfig)
     ranking: RankingConfig = setting(default_factory=RankingConfig)
     classifier: ClassifierConfig = setting(default_factory=ClassifierConfig)
@@ -552,6 +580,9 @@ def _check_selection(cfg: Config) -> None:
                           f"[[infrared.magnitudes]]{suggest(cfg.ranking.brightness_band, cfg.infrared_bands())}")
     if cfg.motion.fit_quality_max is not None and "fit_quality" not in cfg.astrometric.columns:
         raise ConfigError("motion.fit_quality_max is set but astrometric.columns has no fit_quality role")
+    if cfg.quality.extent_snr_max is not None and not {"extent", "extent_error"} <= set(cfg.astrometric.columns):
+        raise ConfigError(f"quality.extent_snr_max = {cfg.quality.extent_snr_max} needs the extent and extent_error "
+                          "roles in [astrometric.columns]; map them or remove the key")
 
 
 def _check_targets(cfg: Config) -> None:
@@ -624,4 +655,4 @@ def config_hash(cfg: Config, sections: tuple[str, ...] | None = None) -> str:
 #: Sections whose change alters the cross-match and so the feature cache.
 MATCH_SECTIONS = ("astrometric", "infrared", "tiling", "match")
 #: Sections that only select and rank from the feature cache.
-SELECTION_SECTIONS = ("motion", "colours", "ranking", "classifier")
+SELECTION_SECTIONS = ("motion", "quality", "colours", "ranking", "classifier")

@@ -28,6 +28,7 @@ from selector import __version__
 from selector.errors import SelectorError
 from selector.jobs.run.commit import commit, committed_run, read_record, withdraw
 from selector.jobs.run.execute import KILL_AT_ENV, TileOutcome, execute, fault, one_line, run_tile, worker_count
+from selector.core.selection import skipped_cut_notes
 from selector.jobs.run.merge import (TileSummary, account, file_stats, format_cutflow, merge, merged_from_summaries,
                                      merged_paths, provenance, total_cutflow)
 from selector.jobs.run.plan import (TilePlan, compute_plan, expected_rows, file_digest, ingest_summaries, inputs_key,
@@ -327,6 +328,8 @@ def _record(ctx: _Run, t: int, plan: TilePlan, res: TileOutcome) -> TileOutcome:
 def _summarise(ctx: _Run, result: RunResult, work_s: float) -> None:
     rep, a = ctx.rep, result.actions
     rep.info(format_cutflow(result.cutflow))
+    for note in skipped_cut_notes(ctx.cfg):
+        rep.info(note)
     for line in result.accounting:
         rep.info(line)
     rep.always(f"run {ctx.run_id}: {a['computed']} tiles computed, {a['reselected']} re-selected, {a['verified']} "

@@ -16,7 +16,7 @@ import pyarrow as pa
 
 from selector.core import schema
 from selector.core.photometry import vega_to_ab
-from selector.core.selection import select
+from selector.core.selection import MATCH_PROBABILITY_COLUMN, match_method, select
 from selector.settings.config import Config
 
 __all__ = ["FeatureSpec", "feature_matrix", "feature_settings", "feature_specs", "zero_motion"]
@@ -71,6 +71,25 @@ def feature_specs(cfg: Config) -> list[FeatureSpec]:
     ]
     if "fit_quality" in cfg.astrometric.columns:
         out.append(FeatureSpec("fit_quality", "", "astrometric fit-quality indicator (larger = worse)"))
+    out += match_and_shape_features(cfg)
+    return out
+
+
+def match_and_shape_features(cfg: Config) -> list[FeatureSpec]:
+    """The match quality (probabilistic match only) and the point-source roles that are mapped."""
+    out = []
+    if match_method(cfg) != "nearest":
+        out += [FeatureSpec(MATCH_PROBABILITY_COLUMN, "", "probability that the infrared counterpart is the same source"),
+                FeatureSpec("n_competitors", "", "other astrometric sources competing for the counterpart")]
+    astro = cfg.astrometric.columns
+    for role, spec in (("extent", FeatureSpec(schema.EXTENT_COLUMN, "mag", "astrometric extent (0 for a point source)")),
+                       ("extent_error", FeatureSpec(schema.EXTENT_ERROR_COLUMN, "mag", "uncertainty of the extent")),
+                       ("extended_flag", FeatureSpec(schema.ASTRO_EXTENDED_FLAG_COLUMN, "",
+                                                     "astrometric extendedness flag (1 = extended)"))):
+        if role in astro:
+            out.append(spec)
+    if "extended_flag" in cfg.infrared.columns:
+        out.append(FeatureSpec(schema.IR_EXTENDED_FLAG_COLUMN, "", "infrared extendedness flag (1 = resolved)"))
     return out
 
 
@@ -96,7 +115,7 @@ def zero_motion(table: pa.Table, cfg: Config) -> tuple[np.ndarray, np.ndarray, n
     parallax_snr, pm_chi2 : numpy.ndarray of float64
     """
     sel = select(table, cfg)
-    passed = dict(sel.stages)["proper_motion"]
+    passed = sel.zero_motion_passed
     return passed, sel.derived["parallax_snr"], sel.derived["pm_chi2"]
 
 
