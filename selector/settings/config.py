@@ -180,7 +180,7 @@ class QualityConfig:
     match_probability_min: float = setting(0.8, min=0.0, max=1.0,
                                            doc="keep pairs whose match probability ≥ this (a no-op when the "
                                                "match gives none, e.g. match.method = 'nearest')")
-    extent_max_mag: Optional[float] = setting(0.1, doc="keep sources whose astrometric extent ≤ this, in mag "
+    extent_max_mag: Optional[float] = setting(0.145, doc="keep sources whose astrometric extent ≤ this, in mag "
                                                        "(needs the extent role; a no-op without it)")
     extent_snr_max: Optional[float] = setting(None, min=0.0, min_exclusive=True,
                                               doc="also keep only extent / extent_error ≤ this (needs extent_error)")
