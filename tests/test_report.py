@@ -79,7 +79,8 @@ def test_thresholds_drawn_follow_the_config(demo_run, cache):
         return sorted({round(float(ln.get_xdata()[0]), 6) for ax in fig.axes for ln in ax.lines
                        if len(set(ln.get_xdata())) == 1})
 
-    assert vlines(a) == [-3.0, 3.0, round(-2 * np.log(0.001), 6)]
+    # the parallax cut is one-sided; below zero the line is the quality cut's (negative_parallax_snr_max = 5)
+    assert vlines(a) == [-5.0, 3.0, round(-2 * np.log(0.001), 6)]
     # the χ² limit is −2 ln p for two degrees of freedom: p = exp(−χ²/2) (scipy's chi2.sf as reference)
     from scipy.stats import chi2
 

@@ -172,11 +172,14 @@ def test_stage_list_follows_the_config(demo_run):
     _, path, _ = demo_run
     out = tune.tune(path, CHANGES["stages"])
     names = [n for n, _ in out.after.cutflow]
-    assert names == ["input", "matched", "astrometric_solution", "fit_quality", "parallax", "proper_motion",
-                     "infrared_colour", "galactic_latitude"]
+    assert names == ["input", "matched", "astrometric_solution", "fit_quality", "negative_parallax", "joint_motion",
+                     "point_source", "infrared_colour", "galactic_latitude"]
     rows = tune.compare_cutflows(out.before.cutflow, out.after.cutflow)
     assert [r[0] for r in rows] == names
-    assert dict((n, b) for n, b, _ in rows)["fit_quality"] is None  # not a stage of the recorded run
+    assert dict((n, b) for n, b, _ in rows)["galactic_latitude"] is None  # not a stage of the recorded run
+    # the separate test swaps the joint stage for its two cuts
+    names = [n for n, _ in tune.tune(path, ["motion.test=separate"]).after.cutflow]
+    assert names[names.index("negative_parallax") + 1:names.index("point_source")] == ["parallax", "proper_motion"]
 
 
 def test_classifier_scores_are_applied_like_select_tile(demo_run):
@@ -300,12 +303,12 @@ def _snapshot(folder: Path) -> dict:
 def test_command_prints_before_and_after_and_writes_nothing(demo_run, capsys):
     cfg, path, _ = demo_run
     before = _snapshot(cfg.output_dir)
-    code = main(["tune", "--config", str(path), "--set", "motion.parallax_snr_max=5",
+    code = main(["tune", "--config", str(path), "--set", "motion.joint_pvalue_min=0.01",
                  "--set", 'colours.criteria=["assef2018_r75"]'])
     text = capsys.readouterr().out
     assert code == 0
-    assert "motion.parallax_snr_max: 3.0 -> 5.0" in text
-    line = next(ln for ln in text.splitlines() if ln.startswith("parallax "))
+    assert "motion.joint_pvalue_min: 0.0027 -> 0.01" in text
+    line = next(ln for ln in text.splitlines() if ln.startswith("joint_motion "))
     assert len(line.split()) == 4  # stage, before, after, change
     assert "completeness" in text and "purity" in text
     assert _snapshot(cfg.output_dir) == before
