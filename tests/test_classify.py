@@ -430,6 +430,7 @@ def test_feature_mismatch_is_refused(trained, model_copy):
     data = tomllib.loads(trained["path"].read_text())
     no_fit = json.loads(json.dumps(data))
     del no_fit["astrometric"]["columns"]["fit_quality"]
+    no_fit["motion"].pop("fit_quality_max", None)  # the cut needs the role as well
     with pytest.raises(SelectorError) as e:
         train.load_scorer(model_copy, from_dict(no_fit, trained["dir"]))
     assert "needs fit_quality" in _one_line(e)

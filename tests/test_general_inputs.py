@@ -42,6 +42,8 @@ def two_runs(tmp_path_factory):
         "PMA_AS": _col(a, "mu_a") / 1000, "PMD_AS": _col(a, "mu_d") / 1000,
         "EPMA_AS": _col(a, "mu_a_unc") / 1000, "EPMD_AS": _col(a, "mu_d_unc") / 1000,
         "RHO": _col(a, "mu_corr"), "Q": _col(a, "fit_excess"),
+        "RHO_PA": _col(a, "plx_mu_a_corr"), "RHO_PD": _col(a, "plx_mu_d_corr"),
+        "EXT_MMAG": _col(a, "ext_excess") * 1000, "EEXT_MMAG": _col(a, "ext_excess_unc") * 1000,
         "MAGB": _col(a, "mag_broad"), "EMAGB": _col(a, "mag_broad_unc"),
     }
     pacsv.write_csv(pa.table(cols), tmp / "astro.csv")
@@ -52,6 +54,7 @@ def two_runs(tmp_path_factory):
     ir["LON"] = _col(i, "ra_ir") * u.deg
     ir["LAT"] = _col(i, "dec_ir") * u.deg
     ir["PERR"] = (_col(i, "pos_unc") * u.arcsec).to(u.mas)
+    ir["RESOLVED"] = _col(i, "ext_flag") > 0  # a boolean flag
     for src, band, label in (("m34", "3p4", "3.4"), ("m46", "4p6", "4.6"), ("m120", "12", "12"), ("m220", "22", "22")):
         ir[f"AB_{band}"] = _col(i, src) + VEGA_TO_AB_MAG[label]
         ir[f"E_{band}"] = _col(i, f"{src}_unc")
@@ -65,12 +68,16 @@ def two_runs(tmp_path_factory):
               "pmra": {"column": "PMA_AS", "unit": "arcsec/yr"}, "pmdec": {"column": "PMD_AS", "unit": "arcsec/yr"},
               "pmra_error": {"column": "EPMA_AS", "unit": "arcsec/yr"},
               "pmdec_error": {"column": "EPMD_AS", "unit": "arcsec/yr"},
-              "pmra_pmdec_corr": "RHO", "fit_quality": "Q"},
+              "pmra_pmdec_corr": "RHO", "fit_quality": "Q", "parallax_pmra_corr": "RHO_PA",
+              "parallax_pmdec_corr": "RHO_PD", "extent": {"column": "EXT_MMAG", "unit": "mmag"},
+              "extent_error": {"column": "EEXT_MMAG", "unit": "mmag"}},
               "magnitudes": [{"band": "broad", "column": "MAGB", "error_column": "EMAGB", "system": "ab"}]},
           "infrared": {"files": ["ir.xml"], "epoch_jyear": demo.INFRARED_EPOCH_JYEAR, "columns": {
-              "id": "NAME", "ra": "LON", "dec": "LAT", "position_error": "PERR"},   # units from the file
+              "id": "NAME", "ra": "LON", "dec": "LAT", "position_error": "PERR",   # units from the file
+              "extended_flag": "RESOLVED"},
               "magnitudes": [{"band": b, "column": f"AB_{k}", "error_column": f"E_{k}", "system": "ab"}
                              for b, k in (("3.4", "3p4"), ("4.6", "4p6"), ("12", "12"), ("22", "22"))]},
+          "motion": {"fit_quality_max": ref.motion.fit_quality_max},
           }
     other = from_dict(dt, base_dir=tmp)
     ingest(other, log=lambda *a: None)
