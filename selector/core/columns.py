@@ -85,6 +85,13 @@ COLUMNS: dict[str, ColumnDoc] = {
     "pmdec_error_mas_yr": ColumnDoc("uncertainty of pmdec_mas_yr", "stat.error;pos.pm;pos.eq.dec", P.milliarcsec),
     "fit_quality": ColumnDoc("astrometric fit-quality indicator of the catalogue (larger = worse fit)",
                              "stat.fit.goodness", P.statistic),
+    "extent_mag": ColumnDoc("how extended the source looks in the astrometric catalogue (0 for a point source)",
+                            "src.morph.param", P.magnitude),
+    "extent_error_mag": ColumnDoc("uncertainty of extent_mag", "stat.error;src.morph.param", P.magnitude),
+    "astro_extended_flag": ColumnDoc("1 when the astrometric catalogue calls the source extended, else 0",
+                                     "meta.code;src.morph"),
+    "ir_extended_flag": ColumnDoc("1 when the infrared counterpart is resolved in the infrared beam, else 0",
+                                  "meta.code;src.morph;em.IR"),
     "tile": ColumnDoc("HEALPix tile (nested scheme, the run's tiling order) that owns the source", "pos.healpix"),
     "gal_l_deg": ColumnDoc("Galactic longitude", "pos.galactic.lon", P.position_deg),
     "gal_b_deg": ColumnDoc("Galactic latitude", "pos.galactic.lat", P.position_deg),
@@ -111,6 +118,11 @@ COLUMNS: dict[str, ColumnDoc] = {
                          "stat.fit.chi2;pos.pm", P.statistic),
     "pm_pvalue": ColumnDoc("probability of a chi-square at least pm_chi2 for a source that does not move",
                            "stat.probability;pos.pm", P.probability),
+    "motion_chi2": ColumnDoc("chi-square of zero parallax (after the zero point) and zero proper motion together, "
+                             "with the full 3x3 covariance (3 degrees of freedom)", "stat.fit.chi2;pos.pm",
+                             P.statistic),
+    "motion_pvalue": ColumnDoc("p-value of the joint zero-motion test, one-sided in parallax (mixture of chi-square "
+                               "with 2 and 3 degrees of freedom)", "stat.probability;pos.pm", P.probability),
     "colour_excess_mag": ColumnDoc("largest margin by which the infrared colours pass a configured criterion "
                                    "(negative: fails all)", "phot.color.excess", P.magnitude),
     "criteria_score": ColumnDoc("ranking score from the infrared colour criteria (larger = redder than the "
