@@ -11,8 +11,20 @@ import argparse
 import sys
 from pathlib import Path
 
-from selector import __version__
+import selector
 from selector.errors import SelectorError
+
+
+class _Version(argparse.Action):
+    """``--version``: the version is looked up only when asked for (it costs a tenth of a second)."""
+
+    def __init__(self, option_strings, dest=argparse.SUPPRESS, default=argparse.SUPPRESS, help=None):
+        super().__init__(option_strings=option_strings, dest=dest, default=default, nargs=0,
+                         help=help or "show the version and exit")
+
+    def __call__(self, parser, namespace, values, option_string=None):
+        sys.stdout.write(f"selector {selector.__version__}\n")
+        parser.exit()
 
 
 def _config_arg(p: argparse.ArgumentParser) -> None:
@@ -107,7 +119,7 @@ def build_parser() -> argparse.ArgumentParser:
         description="Select luminous quasar candidates: cross-match an astrometric and an infrared catalogue on "
                     "HEALPix tiles, test for zero parallax and proper motion, apply infrared colour criteria, rank.",
     )
-    parser.add_argument("--version", action="version", version=f"selector {__version__}")
+    parser.add_argument("--version", action=_Version)
     sub = parser.add_subparsers(dest="command", metavar="COMMAND")
 
     p = sub.add_parser("ingest", help="map columns, validate rows and split the catalogues into tiles")

@@ -64,3 +64,27 @@ def test_demo_runs_the_whole_job(demo_command):
                  "output/targets/targets.ecsv", "output/targets/targets.txt", "output/targets/targets_full.ecsv",
                  "output/targets/summary.txt"):
         assert (demo_command.folder / path).is_file(), path
+
+
+def test_command_start_up_imports_no_heavy_library():
+    # `selector --help` and `--version` must start in a blink: the parser module may not pull in the
+    # plotting library, the columnar library or the machine-learning library (they load with the
+    # command that needs them). Checked on the modules a fresh interpreter holds, not on a time.
+    code = ("import sys, selector.cli; selector.cli.build_parser(); "
+            "print(' '.join(sorted({m.split('.')[0] for m in sys.modules})))")
+    proc = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
+    loaded = set(proc.stdout.split())
+    assert "selector" in loaded
+    assert not loaded & {"matplotlib", "pyarrow", "sklearn", "healpy", "astropy", "numpy", "pandas", "scipy"}
+
+
+def test_version_is_the_installed_distributions():
+    # the version is read from the distribution folder's name, which must agree with the packaging
+    # library's answer (PEP 376: <name>-<version>.dist-info)
+    from importlib.metadata import PackageNotFoundError, version
+
+    try:
+        expected = version("selector")
+    except PackageNotFoundError:
+        pytest.skip("selector is not installed")
+    assert __version__ == expected
