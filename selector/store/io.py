@@ -275,26 +275,110 @@ def _current_umask() -> int:
 _UMASK = _current_umask()
 
 
-@contextmanager
-def atomic_path(path: Path):
-    """Yield a temporary path beside ``path``; on success fsync it and rename it into place."""
-    path = Path(path)
-    path.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
-    os.close(fd)
+def fsync_folder(folder: Path) -> None:
+    """Make the renames inside ``folder`` durable (POSIX: a folder's entries are synced through it)."""
+    fd = os.open(folder, os.O_RDONLY | getattr(os, "O_DIRECTORY", 0))
     try:
-        yield Path(tmp)
-        with open(tmp, "rb") as fh:
-            os.fsync(fh.fileno())
-        # mkstemp makes files private; outputs are meant to be shared like any file the user writes
-        os.chmod(tmp, 0o666 & ~_UMASK)
-        os.replace(tmp, path)
-    except BaseException:
-        Path(tmp).unlink(missing_ok=True)
-        raise
+        os.fsync(fd)
+    finally:
+        os.close(fd)
 
 
-def write_parquet(table: pa.Table, path: Path, metadata: dict | None = None) -> Path:
+class DurableBatch:
+    """Atomic writes made durable together, so durability is paid once for many files.
+
+    Each file is written to a temporary file beside its target (``.<name>.<random>.tmp``). At
+    :meth:`commit` every temporary file is fsynced, then all are renamed into place, then each folder
+    is fsynced once: one journal commit carries the data of every file and another the renames,
+    where writing, syncing and renaming file by file costs a commit (a few ms) per file. Until the
+    commit the targets keep their old contents; a process killed before it leaves only temporary
+    files, which the next run removes. Whoever records the files (the run manifest, an ingest
+    summary) must do so after :meth:`commit` returns.
+
+    Use as a context manager: committed when the block ends normally, temporary files removed when
+    it raises.
+    """
+
+    def __init__(self):
+        self._pending: list[tuple[Path, Path]] = []
+
+    def __enter__(self) -> "DurableBatch":
+        return self
+
+    def __exit__(self, exc_type, exc, tb) -> None:
+        if exc_type is None:
+            self.commit()
+        else:
+            self.discard()
+
+    @contextmanager
+    def path(self, path: Path):
+        """Yield a temporary path to write ``path``'s contents to; it is put in place at the commit."""
+        path = Path(path)
+        path.parent.mkdir(parents=True, exist_ok=True)
+        fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
+        os.close(fd)
+        try:
+            yield Path(tmp)
+        except BaseException:
+            Path(tmp).unlink(missing_ok=True)
+            raise
+        self._pending.append((Path(tmp), path))
+
+    def adopt(self, other: "DurableBatch") -> None:
+        """Take over ``other``'s written files, to be made durable at this batch's commit."""
+        self._pending.extend(other._pending)
+        other._pending = []
+
+    def __len__(self) -> int:
+        return len(self._pending)
+
+    def commit(self) -> list[Path]:
+        """fsync every written file, rename each into place, fsync each folder once; the paths."""
+        pending, self._pending = self._pending, []
+        try:
+            for tmp, _ in pending:
+                fd = os.open(tmp, os.O_RDONLY)
+                try:
+                    os.fsync(fd)
+                finally:
+                    os.close(fd)
+                # mkstemp makes files private; outputs are meant to be shared like any file the user writes
+                os.chmod(tmp, 0o666 & ~_UMASK)
+        except BaseException:
+            for tmp, _ in pending:
+                tmp.unlink(missing_ok=True)
+            raise
+        for tmp, final in pending:
+            os.replace(tmp, final)
+        for folder in sorted({final.parent for _, final in pending}):
+            fsync_folder(folder)
+        return [final for _, final in pending]
+
+    def discard(self) -> None:
+        """Remove the temporary files written so far; the targets keep their old contents."""
+        pending, self._pending = self._pending, []
+        for tmp, _ in pending:
+            tmp.unlink(missing_ok=True)
+
+
+@contextmanager
+def atomic_path(path: Path, batch: DurableBatch | None = None):
+    """Yield a temporary path beside ``path``; on success it is made durable and renamed into place.
+
+    With a ``batch``, the file is only registered with it and put in place at its commit; without,
+    it is a batch of one (fsync the file, rename, fsync the folder).
+    """
+    if batch is not None:
+        with batch.path(path) as tmp:
+            yield tmp
+        return
+    with DurableBatch() as own, own.path(path) as tmp:
+        yield tmp
+
+
+def write_parquet(table: pa.Table, path: Path, metadata: dict | None = None, *,
+                  batch: DurableBatch | None = None) -> Path:
     """Write a Parquet file atomically with fixed options, so equal tables give equal bytes.
 
     LZ4 rather than a denser codec: every tile is read by each of its neighbours' jobs, and LZ4
@@ -307,17 +391,26 @@ def write_parquet(table: pa.Table, path: Path, metadata: dict | None = None) -> 
         table = table.replace_schema_metadata(meta)
     # Dictionary encoding pays for repeated text; on float columns it is tried, abandoned, and makes
     # writing about three times slower and the file larger, so it is kept to text columns.
-    textual = [f.name for f in table.schema if pa.types.is_string(f.type) or pa.types.is_large_string(f.type)
-               or pa.types.is_binary(f.type) or pa.types.is_dictionary(f.type)]
-    with atomic_path(path) as tmp:
-        pq.write_table(table, tmp, compression="lz4", row_group_size=1 << 20, write_statistics=True,
-                       use_dictionary=textual)
+    with atomic_path(path, batch) as tmp:
+        pq.write_table(table, tmp, **parquet_options(table.schema))
     return Path(path)
 
 
-def write_json(data, path: Path) -> Path:
+def parquet_options(schema: pa.Schema) -> dict:
+    """The fixed Parquet writer options of every file we write, for a table of this schema."""
+    textual = [f.name for f in schema if pa.types.is_string(f.type) or pa.types.is_large_string(f.type)
+               or pa.types.is_binary(f.type) or pa.types.is_dictionary(f.type)]
+    return {"compression": "lz4", "row_group_size": PARQUET_ROW_GROUP_ROWS, "write_statistics": True,
+            "use_dictionary": textual}
+
+
+#: Rows per Parquet row group of every file we write.
+PARQUET_ROW_GROUP_ROWS = 1 << 20
+
+
+def write_json(data, path: Path, *, batch: DurableBatch | None = None) -> Path:
     """Write JSON atomically with sorted keys (deterministic bytes)."""
-    with atomic_path(path) as tmp:
+    with atomic_path(path, batch) as tmp:
         tmp.write_text(json.dumps(data, indent=2, sort_keys=True, default=_json_default) + "\n", encoding="utf-8")
     return Path(path)
 

@@ -1,4 +1,7 @@
 """Read a tile's own astrometric sources and everything within the margins around it.
+
+Files are read through a :class:`~selector.store.tilecache.TileCache`, which decodes each file once
+and keeps its rows' unit vectors: the margin filter below is then one dot product per cached row.
 """
 
 from __future__ import annotations
@@ -7,37 +10,54 @@ from functools import lru_cache
 import numpy as np
 import pyarrow as pa
 
-_ARCSEC_PER_RAD = 180.0 / np.pi * 3600.0
 from selector.core import schema, tiles
+from selector.errors import InputError
 from selector.settings.config import Config
-from selector.core.frames import radec_to_xyz
-from selector.store.io import read_parquet
 from selector.store.layout import layout_of
+from selector.store.tilecache import DecodedTile, TileCache
+
+_ARCSEC_PER_RAD = 180.0 / np.pi * 3600.0
 
 
-def _disc_filter(table: pa.Table, tile: int, order: int, margin_arcsec: float) -> pa.Table:
-    """Keep rows within the tile's circumscribed disc grown by the margin.
+@lru_cache(maxsize=4096)
+def _disc(tile: int, order: int) -> tuple[np.ndarray, float]:
+    # the same tile's disc is asked for by each of its neighbours' margin filters
+    return tiles.circumscribed_disc(tile, order)
+
+
+def _disc_filter(decoded: DecodedTile, tile: int, order: int, margin_arcsec: float,
+                 columns: list[str] | None = None) -> pa.Table:
+    """Keep rows within the tile's circumscribed disc grown by the margin (``columns`` only, if given).
 
     A cheap necessary condition for lying within the margin of the tile: it drops most of each
-    neighbour tile with one dot product per row before any tree is built.
+    neighbour tile with one dot product per row (on the cached unit vectors) before any tree is built.
     """
+    if columns is not None:
+        missing = [c for c in columns if c not in decoded.table.column_names]
+        if missing:
+            raise InputError(f"{decoded.path}: column '{missing[0]}' is missing; this is not a tile of this "
+                             "configuration, run `selector ingest --config ...` again")
+    table = decoded.table if columns is None else decoded.table.select(columns)
     if table.num_rows == 0:
         return table
-    centre, reach = tiles.circumscribed_disc(tile, order)
+    centre, reach = _disc(int(tile), int(order))
     cos_limit = np.cos(min(np.pi, reach + margin_arcsec / _ARCSEC_PER_RAD))
-    xyz = radec_to_xyz(table.column("ra_deg").to_numpy(), table.column("dec_deg").to_numpy(), workers=1)
-    return table.filter(pa.array(xyz @ centre >= cos_limit))
+    return table.filter(pa.array(decoded.xyz @ centre >= cos_limit))
 
 
-def load_tile(cfg: Config, tile: int, on_input=None):
+def load_tile(cfg: Config, tile: int, on_input=None, *, cache: TileCache | None = None):
     """Read a tile's own astrometric sources and everything within the margins around it.
 
     Parameters
     ----------
     on_input : callable, optional
-        Called as ``on_input(catalogue, tile_id, path, part)`` for every tile file consulted, with
-        the rows taken from it (``None`` when the file does not exist); the batch runner uses it
-        to record exactly what a tile's result depends on.
+        Called as ``on_input(catalogue, tile_id, path, part, decoded)`` for every tile file
+        consulted, with the rows taken from it (``None`` when the file does not exist) and the
+        :class:`~selector.store.tilecache.DecodedTile` read (its SHA-256, size and time); the batch
+        runner uses it to record exactly what a tile's result depends on.
+    cache : TileCache, optional
+        Where decoded files are kept between tiles (one per worker); a fresh one by default, so
+        each file is still read once for this tile.
 
     Returns
     -------
@@ -50,10 +70,14 @@ def load_tile(cfg: Config, tile: int, on_input=None):
     """
     order = cfg.tiling.order
     lay = layout_of(cfg)
+    cache = cache if cache is not None else TileCache()
     own_path = lay.tile_file("astrometric", order, tile)
-    own = read_parquet(own_path)
+    own_file = cache.get(own_path)
+    if not own_file.exists:
+        raise InputError(f"{own_path}: cannot read (no such file); run `selector ingest --config ...` again")
+    own = own_file.table
     report = on_input or (lambda *args: None)
-    report("astrometric", tile, own_path, own)
+    report("astrometric", tile, own_path, own, own_file)
     dt = abs(cfg.epoch_difference_yr)
     r = cfg.match.radius_arcsec
     pm_own = _pm_total(own)
@@ -64,20 +88,23 @@ def load_tile(cfg: Config, tile: int, on_input=None):
     ir_parts = []
     for t in tiles.tiles_near(tile, order, ir_margin):
         path = lay.tile_file("infrared", order, int(t))
-        part = _disc_filter(read_parquet(path), tile, order, ir_margin) if path.exists() else None
-        report("infrared", int(t), path, part)
+        decoded = cache.get(path)
+        part = _disc_filter(decoded, tile, order, ir_margin) if decoded.exists else None
+        report("infrared", int(t), path, part, decoded)
         if part is not None:
             ir_parts.append(part)
     neighbour_parts = []
     for t in tiles.tiles_near(tile, order, astro_margin):
+        if t == tile:
+            continue
         path = lay.tile_file("astrometric", order, int(t))
-        if t != tile and path.exists():
+        decoded = cache.get(path)
+        if decoded.exists:
             # neighbours only compete for counterparts: their positions and motions are all we need
-            neighbour_parts.append(_disc_filter(read_parquet(path, columns=_NEIGHBOUR_COLUMNS), tile, order,
-                                                astro_margin))
-            report("astrometric", int(t), path, neighbour_parts[-1])
-        elif t != tile:
-            report("astrometric", int(t), path, None)
+            neighbour_parts.append(_disc_filter(decoded, tile, order, astro_margin, _NEIGHBOUR_COLUMNS))
+            report("astrometric", int(t), path, neighbour_parts[-1], decoded)
+        else:
+            report("astrometric", int(t), path, None, decoded)
     infrared = _concat(ir_parts) if ir_parts else _empty_infrared(cfg)
     neighbours = _concat(neighbour_parts) if neighbour_parts else own.select(_NEIGHBOUR_COLUMNS).slice(0, 0)
     return own, neighbours, infrared

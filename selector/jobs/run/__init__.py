@@ -31,8 +31,8 @@ from selector.jobs.run.execute import KILL_AT_ENV, TileOutcome, execute, fault, 
 from selector.core.selection import skipped_cut_notes
 from selector.jobs.run.merge import (TileSummary, account, file_stats, format_cutflow, merge, merged_from_summaries,
                                      merged_paths, provenance, total_cutflow)
-from selector.jobs.run.plan import (TilePlan, compute_plan, expected_rows, file_digest, ingest_summaries, inputs_key,
-                                    output_stats, plan_tiles, scan_inputs, tile_ids)
+from selector.jobs.run.plan import (TilePlan, compute_plan, expected_rows, file_digest, file_row, ingest_summaries,
+                                    inputs_key, must_compute, output_stats, plan_tiles, scan_inputs, tile_ids)
 from selector.jobs.run.progress import Reporter
 from selector.jobs.run.status import status_text
 from selector.settings.config import Config
@@ -41,9 +41,73 @@ from selector.store.layout import FEATURE_FILES, SELECTION_FILES, Layout, layout
 from selector.store.lock import FolderLock, output_lock, run_lock
 from selector.store.manifest import Manifest
 
-__all__ = ["KILL_AT_ENV", "FolderLock", "RunResult", "TileOutcome", "TilePlan", "TileSummary", "account",
+__all__ = ["KILL_AT_ENV", "FolderLock", "RunResult", "RunTimings", "TileOutcome", "TilePlan", "TileSummary", "account",
            "committed_run",
            "format_cutflow", "provenance", "run", "run_lock", "run_tile", "status_text", "total_cutflow"]
+
+
+@dataclass
+class RunTimings:
+    """Where a run's time went, and how large its workers grew.
+
+    Attributes
+    ----------
+    wall_s : float
+        The whole call, lock to summary.
+    plan_s : float
+        Planning: ingest summaries, manifest, input fingerprints.
+    work_s : float
+        Wall time from the first tile started to the last recorded.
+    merge_s : float
+        Merging the tiles into the ranked outputs (0 when they were up to date).
+    tiles : int
+        Tiles worked by this run (computed, re-selected, checked or failed).
+    tile_s_total, tile_s_max : float
+        Sum and largest of those tiles' wall times, measured in the workers.
+    read_s, match_s, select_s, write_s : float
+        Sums over those tiles of their stages (see :class:`~selector.jobs.run.execute.TileOutcome`).
+    worker_peak_rss_mib : dict
+        Worker process id → its resident-memory high-water mark (``ru_maxrss``) in MiB. With one
+        worker the tiles run in the calling process, whose peak this then is.
+    """
+
+    wall_s: float = 0.0
+    plan_s: float = 0.0
+    work_s: float = 0.0
+    merge_s: float = 0.0
+    tiles: int = 0
+    tile_s_total: float = 0.0
+    tile_s_max: float = 0.0
+    read_s: float = 0.0
+    match_s: float = 0.0
+    select_s: float = 0.0
+    write_s: float = 0.0
+    worker_peak_rss_mib: dict = field(default_factory=dict)
+
+    def add(self, res: TileOutcome) -> None:
+        """Count one tile's outcome."""
+        self.tiles += 1
+        self.tile_s_total += res.duration_s
+        self.tile_s_max = max(self.tile_s_max, res.duration_s)
+        self.read_s += res.read_s
+        self.match_s += res.match_s
+        self.select_s += res.select_s
+        self.write_s += res.write_s
+        if res.pid:
+            self.worker_peak_rss_mib[res.pid] = max(self.worker_peak_rss_mib.get(res.pid, 0.0), res.peak_rss_mib)
+
+    @property
+    def peak_worker_rss_mib(self) -> float:
+        """The largest worker's resident-memory high-water mark, MiB (0 when no tile was worked)."""
+        return max(self.worker_peak_rss_mib.values(), default=0.0)
+
+    def summary(self) -> str:
+        """One line for the run log."""
+        return (f"times: wall {self.wall_s:.1f} s = plan {self.plan_s:.1f} s + tile work {self.work_s:.1f} s + merge "
+                f"{self.merge_s:.1f} s + rest; {self.tiles} tiles worked, {self.tile_s_total:.1f} s in all (read "
+                f"{self.read_s:.1f}, match {self.match_s:.1f}, select {self.select_s:.1f}, write {self.write_s:.1f}), "
+                f"slowest {self.tile_s_max:.2f} s; peak memory per worker "
+                + ", ".join(f"{mib:.0f} MiB" for _, mib in sorted(self.worker_peak_rss_mib.items())))
 
 
 @dataclass
@@ -77,6 +141,8 @@ class RunResult:
         The row-accounting lines.
     log_file : pathlib.Path or None
         The run log.
+    timings : RunTimings
+        Where the time went and the workers' peak memory (also in the run log and the manifest).
     """
 
     ok: bool
@@ -91,6 +157,7 @@ class RunResult:
     complete: bool = True
     accounting: list = field(default_factory=list)
     log_file: Path | None = None
+    timings: RunTimings = field(default_factory=RunTimings)
 
 
 @dataclass(kw_only=True)
@@ -110,6 +177,11 @@ class _Run:
     records: dict = field(default_factory=dict)
     shas: dict = field(default_factory=dict)
     expected_rows: dict = field(default_factory=dict)
+    timings: RunTimings = field(default_factory=RunTimings)
+    #: Fingerprints returned by the workers, stored in the manifest in batches: one lost in a crash
+    #: only means that file is hashed again next time
+    seen_files: dict = field(default_factory=dict)
+    started: float = field(default_factory=time.perf_counter)
 
 
 def run(cfg: Config, workers: int | None = None, executor: str | None = None, scheduler: str | None = None, *,
@@ -199,9 +271,13 @@ def _run(ctx: _Run) -> RunResult:
     ids = tile_ids(cfg, ctx.expected_rows)
     ctx.records = records = man.tiles()
     recorded_inputs = {rel for rec in records.values() for rel in (rec.get("inputs") or [])}
-    ctx.shas = scan_inputs(cfg, man, recorded_inputs, ctx.workers)
-    plans, reused = plan_tiles(cfg, records, ctx.shas, tiles=ids,
-                               compute=compute_plan(cfg, prov["classifier_model_sha256"]), force=ctx.force)
+    compute = compute_plan(cfg, prov["classifier_model_sha256"])
+    # only the inputs of tiles that may be reused are fingerprinted here; the others are computed
+    # anyway and their workers fingerprint the bytes they read
+    needed = {rel for t in ids if not must_compute(cfg, records.get(t), compute, ctx.force)
+              for rel in records[t]["inputs"]}
+    ctx.shas = scan_inputs(cfg, man, recorded_inputs, ctx.workers, needed=needed)
+    plans, reused = plan_tiles(cfg, records, ctx.shas, tiles=ids, compute=compute, force=ctx.force)
     stale = sorted(set(records) - set(ids))
     man.plan(sorted(plans), stale)
     for t in stale:  # tiles gone from the ingested catalogue must not be merged
@@ -215,8 +291,10 @@ def _run(ctx: _Run) -> RunResult:
              f"{modes['check']} to check (an input file changed), {len(reused)} unchanged")
     man.update_run(run_id, tiles=len(ids), reused=len(reused))
     fault("planned")
+    ctx.timings.plan_s = time.perf_counter() - ctx.started
 
     actions, work_s = _work(ctx, plans, reused)
+    ctx.timings.work_s = work_s
 
     if lay.current_generation() != generation:
         raise SelectorError(f"{lay.current_pointer}: the tiles changed generation during the run ({generation} → "
@@ -245,15 +323,21 @@ def _run(ctx: _Run) -> RunResult:
         merged = False
     else:
         # the merged files become visible as one set: the record goes first and comes back last
+        t_merge = time.perf_counter()
         withdraw(lay)
         merged_out = merge(cfg, summaries, merge_prov, fault=fault)
         commit(cfg, lay, merge_prov, merge_key=merge_key)
+        ctx.timings.merge_s = time.perf_counter() - t_merge
         merged = True
         man.set("merge", {"key": merge_key, "outputs": file_stats(outputs.values())})
     fault("merged")
     lines = account(summaries, merged_out.candidates, ingest, failed=failed, expected_rows=ctx.expected_rows)
+    ctx.timings.wall_s = time.perf_counter() - ctx.started
     result = RunResult(complete, merged_out.tiles, merged_out.candidates, merged_out.cutflow, merged_out.outputs,
-                       failed=failed, actions=actions, merged=merged, complete=complete, accounting=lines)
+                       failed=failed, actions=actions, merged=merged, complete=complete, accounting=lines,
+                       timings=ctx.timings)
+    # kept with the run's record (not a result file: times never go there)
+    man.set(f"run-{ctx.run_id}-timings", {k: v for k, v in vars(ctx.timings).items()})
     status = "ok" if complete else "incomplete"
     man.end_run(run_id, status, rows=sum(s.rows for s in summaries), candidates=result.candidates,
                 merged=int(merged), message=None if complete else f"{len(failed)} tiles failed")
@@ -264,8 +348,9 @@ def _run(ctx: _Run) -> RunResult:
 def _work(ctx: _Run, plans: dict[int, TilePlan], reused: list[int]) -> tuple[dict, float]:
     """Do the planned tiles and record each as it finishes; returns the actions and the seconds of work."""
     rep, man = ctx.rep, ctx.man
-    # biggest tiles first, so no worker is left with a large tile at the end
-    items = sorted(plans.items(), key=lambda kv: (-ctx.expected_rows.get(kv[0], 0), kv[0]))
+    # nested HEALPix order: consecutive tiles are neighbours on the sky, so each worker's tile cache
+    # serves most of their margin reads (tiles are small, so the last one leaves little imbalance)
+    items = sorted(plans.items())
     actions = dict.fromkeys(("computed", "reselected", "verified", "failed"), 0)
     actions["reused"] = len(reused)
     done_rows, t_work = 0, time.monotonic()
@@ -276,6 +361,9 @@ def _work(ctx: _Run, plans: dict[int, TilePlan], reused: list[int]) -> tuple[dic
         fault("tile")
         res = _record(ctx, t, plans[t], res)
         fault("recorded")
+        if len(ctx.seen_files) >= 4096:
+            _store_seen(ctx)
+        ctx.timings.add(res)
         actions[res.action] += 1
         done_rows += int(res.rows or 0)
         if res.action == "failed":
@@ -284,14 +372,22 @@ def _work(ctx: _Run, plans: dict[int, TilePlan], reused: list[int]) -> tuple[dic
                 rep.to_file(res.traceback)
         else:
             rep.detail(f"tile {t}: {res.action}, {res.rows:,} rows, {res.candidates or 0:,} candidates, "
-                       f"{res.duration_s:.2f} s")
+                       f"{res.duration_s:.2f} s (read {res.read_s:.2f}, match {res.match_s:.2f}, select "
+                       f"{res.select_s:.2f}, write {res.write_s:.2f}); worker {res.pid} peak {res.peak_rss_mib:.0f} MiB")
         rep.progress(sum(actions.values()) - len(reused), len(items), done_rows, actions["failed"])
     if items:
         rep.progress(len(items), len(items), done_rows, actions["failed"], final=True)
+    _store_seen(ctx)
     work_s = time.monotonic() - t_work
     man.update_run(ctx.run_id, computed=actions["computed"], reselected=actions["reselected"],
                    verified=actions["verified"], failed=actions["failed"], work_s=work_s)
     return actions, work_s
+
+
+def _store_seen(ctx: _Run) -> None:
+    if ctx.seen_files:
+        ctx.man.store_files(sorted(ctx.seen_files.values()))
+        ctx.seen_files.clear()
 
 
 def _record(ctx: _Run, t: int, plan: TilePlan, res: TileOutcome) -> TileOutcome:
@@ -310,6 +406,11 @@ def _record(ctx: _Run, t: int, plan: TilePlan, res: TileOutcome) -> TileOutcome:
               "selection_key": plan.selection_key}
     if res.inputs is not None:
         inputs = [rel for rel, _ in res.inputs]
+        # the fingerprints of the bytes the worker read: exactly what the tile used
+        for f in res.files or ():
+            row = file_row(*f)
+            ctx.shas[row[0]] = row[3]
+            ctx.seen_files[row[0]] = row
         for rel, existed in res.inputs:
             if rel not in ctx.shas or (ctx.shas[rel] is None) == existed:
                 # appeared or vanished while the run went on: fingerprint what is there now
@@ -348,4 +449,5 @@ def _summarise(ctx: _Run, result: RunResult, work_s: float) -> None:
             rep.always(f"  ... and {len(shown) - 20} more (`selector status {where} --failed` lists them all)")
         rep.always(f"fix the files named above (a damaged ingested tile: run `selector ingest {where}` again), then "
                    f"run `selector run {where}`: only the failed tiles are recomputed")
+    rep.to_file(result.timings.summary())
     rep.info(f"run log: {result.log_file or ctx.layout.run_log(ctx.run_id)}")

@@ -8,6 +8,7 @@ holds the run lock records them in the manifest.
 from __future__ import annotations
 
 import os
+import resource
 import signal
 import sys
 import time
@@ -27,10 +28,11 @@ from selector.jobs.train import load_scorer
 from selector.jobs.run.plan import TilePlan, compute_plan, tile_rel
 from selector.jobs.run.tile import select_tile
 from selector.settings.config import Config
-from selector.store.io import read_parquet, write_json, write_parquet
+from selector.store.io import DurableBatch, read_parquet, write_json, write_parquet
 from selector.store.keys import combined_digest, model_sha, table_digest
 from selector.store.layout import layout_of
 from selector.store.lock import close_inherited_lock
+from selector.store.tilecache import TileCache
 from selector.store.tilereader import load_tile
 
 #: Environment variable naming a moment at which the run kills itself with SIGKILL (tests only):
@@ -61,6 +63,17 @@ class TileOutcome:
         Failures: the one-line error.
     traceback : str or None
         Failures not caused by the input: the traceback, for the run log.
+    files : list of (str, str, int, int) or None
+        After loading: each existing file read, relative to the tiles folder, with the SHA-256, size
+        and modification time (ns) of the bytes read, so the manifest's fingerprints are those of
+        what was used and no file is read a second time to fingerprint it.
+    read_s, match_s, select_s, write_s : float
+        Wall time of the tile's stages: reading (and the margin filters and digests), the cross-match,
+        the selection, and writing its files durably.
+    peak_rss_mib : float
+        The worker process's resident-memory high-water mark (``ru_maxrss``) after the tile.
+    pid : int
+        The worker process.
     """
 
     tile: int
@@ -74,6 +87,22 @@ class TileOutcome:
     content_key: str | None = None
     error: str | None = None
     traceback: str | None = None
+    files: list | None = None
+    read_s: float = 0.0
+    match_s: float = 0.0
+    select_s: float = 0.0
+    write_s: float = 0.0
+    peak_rss_mib: float = 0.0
+    pid: int = 0
+
+
+#: Decoded tile files kept by this process between tiles (each worker has its own; see tilecache).
+TILE_CACHE = TileCache()
+
+
+def peak_rss_mib() -> float:
+    """This process's resident-memory high-water mark in MiB (``ru_maxrss`` is in KiB on Linux)."""
+    return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0
 
 
 def failure(tile: int, message: str) -> TileOutcome:
@@ -130,7 +159,7 @@ def _normalised(features: pa.Table) -> pa.Table:
     return features.replace_schema_metadata(None).combine_chunks()
 
 
-def run_tile(cfg: Config, tile: int, plan: TilePlan | None = None) -> TileOutcome:
+def run_tile(cfg: Config, tile: int, plan: TilePlan | None = None, *, batch: DurableBatch | None = None) -> TileOutcome:
     """Do one tile's work and write its files; the unit of work of every executor.
 
     Parameters
@@ -139,6 +168,10 @@ def run_tile(cfg: Config, tile: int, plan: TilePlan | None = None) -> TileOutcom
     tile : int
     plan : TilePlan, optional
         What to do, as made by the planner. Default: compute with ``cfg``'s keys.
+    batch : DurableBatch, optional
+        Where the tile's written files go to be made durable together with other tiles' (its
+        outcome must then not be recorded before the batch is committed). Default: the tile's own
+        files are made durable before it returns.
 
     Returns
     -------
@@ -149,36 +182,63 @@ def run_tile(cfg: Config, tile: int, plan: TilePlan | None = None) -> TileOutcom
     if plan is None:
         plan = compute_plan(cfg, model_sha(cfg))
     try:
-        out = _work(cfg, int(tile), plan)
+        with DurableBatch() as own:  # a failed tile's files are discarded, never put in place
+            out = _work(cfg, int(tile), plan, own)
+            if batch is not None:
+                batch.adopt(own)
+        out.write_s += time.perf_counter() - t0 - (out.read_s + out.match_s + out.select_s + out.write_s)
     except Exception as exc:  # a tile's failure must not end the run: it is recorded instead
         out = TileOutcome(int(tile), "failed", error=one_line(exc),
                           traceback=None if isinstance(exc, SelectorError) else traceback.format_exc())
     out.duration_s = time.perf_counter() - t0
+    out.peak_rss_mib, out.pid = peak_rss_mib(), os.getpid()
     return out
 
 
-def _work(cfg: Config, tile: int, plan: TilePlan) -> TileOutcome:
+def run_tiles(cfg: Config, items: list) -> list[TileOutcome]:
+    """Do several tiles one after the other in this process (a pool worker's unit of work).
+
+    Consecutive tiles in nested order are neighbours on the sky, so a chunk of them reads most of
+    its files from this worker's :data:`TILE_CACHE`; and their files are made durable together
+    (one journal commit for the chunk rather than a few per file) before the outcomes are returned
+    to be recorded. The time of that commit is shared among the chunk's tiles.
+    """
+    with DurableBatch() as batch:
+        outcomes = [run_tile(cfg, t, p, batch=batch) for t, p in items]
+        t0 = time.perf_counter()
+    share = (time.perf_counter() - t0) / max(1, len(outcomes))
+    for out in outcomes:
+        out.write_s += share
+        out.duration_s += share
+    return outcomes
+
+
+def _work(cfg: Config, tile: int, plan: TilePlan, batch: DurableBatch) -> TileOutcome:
     lay = layout_of(cfg)
     mode = plan.mode
     out = TileOutcome(tile)
     features = None
+    clock = time.perf_counter()
     if mode in ("compute", "check"):
-        consulted, digests = {}, {}
+        consulted, digests, files = {}, {}, []
 
-        def on_input(kind, t, path, part):
+        def on_input(kind, t, path, part, decoded):
             rel = tile_rel(cfg, kind, t)
             consulted[rel] = part is not None
             if part is None:
                 return
+            files.append((rel, decoded.sha256, decoded.size, decoded.mtime_ns))
             if t == tile and kind == "astrometric" or kind == "infrared":
                 _check_columns(cfg, kind, path, part)
             if part.num_rows:
                 digests[rel] = table_digest(part)
 
-        own, neighbours, infrared = load_tile(cfg, tile, on_input)
+        own, neighbours, infrared = load_tile(cfg, tile, on_input, cache=TILE_CACHE)
         content_key = combined_digest(digests)
         rows = own.num_rows
         out.inputs, out.content_key, out.rows = sorted(consulted.items()), content_key, rows
+        out.files = sorted(files)
+        out.read_s, clock = time.perf_counter() - clock, time.perf_counter()
         if mode == "check" and content_key == plan.content_key:
             if not plan.reselect:
                 out.action = "verified"
@@ -188,25 +248,31 @@ def _work(cfg: Config, tile: int, plan: TilePlan) -> TileOutcome:
             m = match_tile(own, neighbours, infrared, tile, radius_arcsec=cfg.match.radius_arcsec,
                            dt_yr=cfg.epoch_difference_yr, order=cfg.tiling.order)
             features = _normalised(m.features)
+            out.match_s, clock = time.perf_counter() - clock, time.perf_counter()
             match_prov = {"provenance": {"tile": tile, "match_key": plan.match_key, "content_key": content_key,
                                          "selector_version": __version__}}
-            write_parquet(features, lay.tile_output(tile, "features.parquet"), match_prov)
+            write_parquet(features, lay.tile_output(tile, "features.parquet"), match_prov, batch=batch)
             # the blend count of every infrared source the tile owns, matched or not
-            write_parquet(m.infrared, lay.tile_output(tile, "infrared.parquet"), match_prov)
+            write_parquet(m.infrared, lay.tile_output(tile, "infrared.parquet"), match_prov, batch=batch)
             out.action = "computed"
+            out.write_s, clock = time.perf_counter() - clock, time.perf_counter()
     else:
         rows = int(plan.rows)
     if features is None:
         features = _normalised(read_parquet(lay.tile_output(tile, "features.parquet")))
         out.action = "reselected"
+        out.read_s, clock = out.read_s + time.perf_counter() - clock, time.perf_counter()
     result = select_tile(cfg, tile, rows, features, _scorer(cfg, plan.model))
     check_accounting(result.n_rows, result.rejects.num_rows, result.cutflow)
+    out.select_s, clock = time.perf_counter() - clock, time.perf_counter()
     tile_prov = {"tile": tile, "match_key": plan.match_key, "selection_key": plan.selection_key,
                  "selector_version": __version__}
-    write_parquet(result.candidates, lay.tile_output(tile, "candidates.parquet"), {"provenance": tile_prov})
-    write_parquet(result.rejects, lay.tile_output(tile, "rejects.parquet"))
-    write_json({"tile": tile, "rows": result.n_rows, "rejects": result.rejects.num_rows, "cutflow": result.cutflow},
-               lay.tile_output(tile, "cutflow.json"))
+    write_parquet(result.candidates, lay.tile_output(tile, "candidates.parquet"), {"provenance": tile_prov},
+                  batch=batch)
+    write_parquet(result.rejects, lay.tile_output(tile, "rejects.parquet"), batch=batch)
+    write_json({"tile": tile, "rows": result.n_rows, "rejects": result.rejects.num_rows,
+                "cutflow": result.cutflow}, lay.tile_output(tile, "cutflow.json"), batch=batch)
+    out.write_s += time.perf_counter() - clock
     out.rows, out.rejects, out.candidates = result.n_rows, result.rejects.num_rows, result.candidates.num_rows
     out.cutflow = [[n, int(c)] for n, c in result.cutflow]
     return out
@@ -232,6 +298,17 @@ def _worker_init(parent_pid: int) -> None:
     close_inherited_lock()
 
 
+#: Consecutive tiles given to a pool worker at a time: enough for its tile cache to serve most
+#: neighbour reads (see selector.store.tilecache), few enough that the workers stay evenly busy.
+CHUNK_TILES = 16
+
+
+def chunks(items: list, workers: int) -> list[list]:
+    """``items`` cut into runs of consecutive tiles, at most :data:`CHUNK_TILES` long, at least four per worker."""
+    size = max(1, min(CHUNK_TILES, len(items) // (4 * max(1, workers))))
+    return [items[i:i + size] for i in range(0, len(items), size)]
+
+
 def _local_pool(cfg: Config, items: list, n: int):
     import multiprocessing as mp
     from concurrent.futures.process import BrokenProcessPool
@@ -241,16 +318,23 @@ def _local_pool(cfg: Config, items: list, n: int):
         galactic_matrix()  # built once here (astropy frames are slow to start); forked workers inherit it
     pool = ProcessPoolExecutor(max_workers=min(n, len(items)), mp_context=ctx, initializer=_worker_init,
                                initargs=(os.getpid(),))
+    finished = False
     try:
-        futures = {pool.submit(run_tile, cfg, t, p): t for t, p in items}
+        futures = {pool.submit(run_tiles, cfg, chunk): chunk for chunk in chunks(items, n)}
         for f in as_completed(futures):
-            t = futures[f]
             try:
-                yield t, f.result()
+                outcomes = f.result()
             except BrokenProcessPool:
-                yield t, failure(t, "its worker process died (killed, or out of memory?); run again to retry")
+                message = "its worker process died (killed, or out of memory?); run again to retry"
+                outcomes = [failure(t, message) for t, _ in futures[f]]
+            for out in outcomes:
+                yield out.tile, out
+        finished = True
     finally:
-        pool.shutdown(wait=False, cancel_futures=True)
+        if finished:
+            pool.shutdown(wait=True)  # every worker has exited and been reaped when the run goes on
+        else:  # interrupted or abandoned: do not wait for tiles nobody will record
+            pool.shutdown(wait=False, cancel_futures=True)
 
 
 def _dask(cfg: Config, items: list, *, workers: int, scheduler: str | None, note):
@@ -320,8 +404,12 @@ def execute(cfg: Config, items: list, *, executor: str, workers: int, scheduler:
     if executor == "dask":
         yield from _dask(cfg, items, workers=workers, scheduler=scheduler, note=note)
     elif workers == 1 or len(items) == 1:
-        for t, p in items:
-            yield t, run_tile(cfg, t, p)
+        try:
+            for chunk in chunks(items, 1):
+                for out in run_tiles(cfg, chunk):
+                    yield out.tile, out
+        finally:
+            TILE_CACHE.clear()  # this is the caller's process: give the decoded tiles back
     else:
         yield from _local_pool(cfg, items, workers)
 

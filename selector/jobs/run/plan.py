@@ -17,13 +17,14 @@ import os
 import time
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, replace
+from functools import lru_cache
 from pathlib import Path
 
 from selector.errors import SelectorError
 from selector.settings.config import Config
 from selector.store.io import file_sha256
 from selector.store.keys import combined_digest, match_key, model_key, model_path, selection_key
-from selector.store.layout import FEATURE_FILES, SELECTION_FILES, layout_of
+from selector.store.layout import FEATURE_FILES, SELECTION_FILES, Layout, layout_of
 from selector.store.manifest import Manifest
 
 #: What :func:`file_digest` gives for a file that exists but cannot be read.
@@ -80,8 +81,13 @@ def compute_plan(cfg: Config, sha: str | None) -> TilePlan:
 
 def tile_rel(cfg: Config, kind: str, tile: int) -> str:
     """A tile file's path relative to the tiles folder: how the manifest names input files."""
-    lay = layout_of(cfg)
-    return lay.tile_file(kind, cfg.tiling.order, tile).relative_to(lay.tiles_dir).as_posix()
+    return _tile_rel(layout_of(cfg), kind, cfg.tiling.order, int(tile))
+
+
+@lru_cache(maxsize=1 << 16)
+def _tile_rel(lay: Layout, kind: str, order: int, tile: int) -> str:
+    # asked for about twenty times per tile; path arithmetic is slow enough to matter
+    return lay.tile_file(kind, order, tile).relative_to(lay.tiles_dir).as_posix()
 
 
 def ingest_summaries(cfg: Config) -> dict:
@@ -133,8 +139,17 @@ def file_digest(path: Path) -> str | None:
         return UNREADABLE
 
 
-def scan_inputs(cfg: Config, man: Manifest, extra: set, threads: int) -> dict:
-    """SHA-256 of every tile file (relative path → digest, None if absent); unchanged files are not read."""
+def scan_inputs(cfg: Config, man: Manifest, extra: set, threads: int, *, needed: set | None = None) -> dict:
+    """SHA-256 of the tile files (relative path → digest, None if absent); unchanged files are not read.
+
+    Parameters
+    ----------
+    needed : set of str, optional
+        The files whose digest planning needs (the inputs of tiles that may be reused). Other
+        changed files are left out of the result: the tiles that read them are computed anyway, and
+        their workers return the digest of the bytes they read (:func:`file_row`), so a first run
+        reads no file twice. Default: every file.
+    """
     lay = layout_of(cfg)
     root = lay.tiles_dir
     paths = set(extra)
@@ -152,9 +167,8 @@ def scan_inputs(cfg: Config, man: Manifest, extra: set, threads: int) -> dict:
         known = cache.get(rel)
         if known and known[0] == st.st_size and known[1] == st.st_mtime_ns:
             out[rel] = known[2]
-        else:
+        elif needed is None or rel in needed:
             todo.append((rel, st))
-    now_ns = time.time_ns()
     with ThreadPoolExecutor(max_workers=max(1, threads)) as pool:  # hashlib releases the GIL
         digests = list(pool.map(lambda item: file_digest(root / item[0]), todo))
     rows = []
@@ -162,10 +176,25 @@ def scan_inputs(cfg: Config, man: Manifest, extra: set, threads: int) -> dict:
         out[rel] = digest_
         if digest_ == UNREADABLE:
             continue  # the tiles that read it will fail on it, each with the reason
-        mtime = -1 if now_ns - st.st_mtime_ns < _FRESH_NS else st.st_mtime_ns
-        rows.append((rel, st.st_size, mtime, digest_))
-    man.store_files(rows, [p for p in cache if out.get(p) in (None, UNREADABLE)])
+        rows.append(file_row(rel, digest_, st.st_size, st.st_mtime_ns))
+    man.store_files(rows, [p for p in cache if p in out and out[p] in (None, UNREADABLE)])
     return out
+
+
+def file_row(rel: str, sha256: str, size: int, mtime_ns: int) -> tuple[str, int, int, str]:
+    """A row of the manifest's file fingerprints: path, size, time and digest of the bytes seen.
+
+    A file modified in the last two seconds is stored with no time, so that it is hashed again next
+    time rather than trusted from size and time.
+    """
+    mtime = -1 if time.time_ns() - mtime_ns < _FRESH_NS else mtime_ns
+    return rel, size, mtime, sha256
+
+
+def must_compute(cfg: Config, rec: dict | None, compute: TilePlan, force: bool = False) -> bool:
+    """Whether a tile is computed whatever its inputs say (no usable record, or its feature cache is gone)."""
+    return (force or rec is None or rec["status"] != "done" or rec["match_key"] != compute.match_key
+            or not rec.get("inputs") or not outputs_intact(cfg, rec, FEATURE_FILES))
 
 
 def output_stats(cfg: Config, tile: int, names) -> dict | None:
@@ -222,8 +251,7 @@ def plan_tiles(cfg: Config, records: dict, shas: dict, *, tiles: list, compute: 
     plans, reused = {}, []
     for t in tiles:
         rec = records.get(t)
-        if (force or rec is None or rec["status"] != "done" or rec["match_key"] != compute.match_key
-                or not rec.get("inputs") or not outputs_intact(cfg, rec, FEATURE_FILES)):
+        if must_compute(cfg, rec, compute, force):
             plans[t] = compute
             continue
         reselect = rec["selection_key"] != compute.selection_key or not outputs_intact(cfg, rec, SELECTION_FILES)
