@@ -16,12 +16,14 @@ import subprocess
 import sys
 from pathlib import Path
 
+import numpy as np
+import pyarrow as pa
 import pyarrow.compute as pc
 import pyarrow.parquet as pq
 import pytest
 
 from selector.jobs import run as run_job
-from selector.jobs.run.merge import TileSummary
+from selector.jobs.run.merge import TileSummary, ranked_table
 from selector.jobs.run.progress import Reporter
 from selector import cli
 from selector.demo import mocksky as demo
@@ -357,3 +359,31 @@ def test_dask_executor_gives_the_local_bytes(template, reference, tmp_path):
     assert result.ok and result.actions["computed"] == reference["result"].tiles
     assert _merged_bytes(cfg) == reference["merged"]
     assert _tile_bytes(cfg) == reference["tiles"]
+
+
+def test_streamed_merge_gives_the_bytes_of_one_sort_written_by_astropy(finished, reference, monkeypatch):
+    # the merge reads each tile once into sorted runs, merges them and writes the text lists with a
+    # column writer; with runs of five rows read three at a time (many runs, many blocks) the bytes
+    # must still be the reference run's, and those of the reference libraries: the whole list sorted
+    # at once by pyarrow (score descending, then id) and written by astropy's ECSV and CSV writers
+    merge_module = sys.modules[ranked_table.__module__]
+    lay = layout_of(finished)
+    for name in ("candidates.ecsv", "candidates.csv", "candidates.parquet"):
+        (lay.run_dir / name).unlink()
+    monkeypatch.setattr(merge_module, "RUN_ROWS", 5)
+    monkeypatch.setattr(merge_module, "BLOCK_ROWS", 3)
+    result = run_job.run(finished, workers=1, quiet=True, log=_quiet)
+    assert result.merged and result.candidates > 20
+    assert _merged_bytes(finished) == reference["merged"]
+    assert not merge_module.merge_spool(lay).exists()
+
+    parts = [pq.read_table(lay.tile_candidates(t)).replace_schema_metadata(None) for t in lay.run_tiles()]
+    whole = pa.concat_tables(parts)
+    score = "p_quasar" if "p_quasar" in whole.column_names else "criteria_score"
+    whole = whole.sort_by([(score, "descending"), ("astro_id", "ascending")])
+    whole = whole.add_column(0, "rank", pa.array(np.arange(1, whole.num_rows + 1)))
+    table = ranked_table(whole, json.loads(pq.read_schema(lay.candidates).metadata[b"provenance"]))
+    for fmt in ("ecsv", "csv"):
+        out = io.StringIO()
+        table.write(out, format=f"ascii.{fmt}")
+        assert (lay.run_dir / f"candidates.{fmt}").read_bytes() == out.getvalue().encode()

@@ -21,6 +21,7 @@ from typing import Iterator, Sequence
 
 import numpy as np
 import pyarrow as pa
+import pyarrow.compute as pc
 import pyarrow.csv as pacsv
 import pyarrow.parquet as pq
 
@@ -396,12 +397,16 @@ def write_parquet(table: pa.Table, path: Path, metadata: dict | None = None, *,
     return Path(path)
 
 
-def parquet_options(schema: pa.Schema) -> dict:
-    """The fixed Parquet writer options of every file we write, for a table of this schema."""
+def parquet_writer_options(schema: pa.Schema) -> dict:
+    """The fixed options of every Parquet writer we open, for a table of this schema."""
     textual = [f.name for f in schema if pa.types.is_string(f.type) or pa.types.is_large_string(f.type)
                or pa.types.is_binary(f.type) or pa.types.is_dictionary(f.type)]
-    return {"compression": "lz4", "row_group_size": PARQUET_ROW_GROUP_ROWS, "write_statistics": True,
-            "use_dictionary": textual}
+    return {"compression": "lz4", "write_statistics": True, "use_dictionary": textual}
+
+
+def parquet_options(schema: pa.Schema) -> dict:
+    """:func:`parquet_writer_options` and the row-group size: the options of ``pyarrow.parquet.write_table``."""
+    return {**parquet_writer_options(schema), "row_group_size": PARQUET_ROW_GROUP_ROWS}
 
 
 #: Rows per Parquet row group of every file we write.
@@ -533,6 +538,83 @@ def write_table(table, path: Path, fmt: str) -> Path:
     with atomic_path(path) as tmp:
         write_table_file(table, tmp, fmt)
     return Path(path)
+
+
+# --- fast text bodies ---------------------------------------------------------------------------
+#
+# The merged candidate lists are written in ECSV and CSV with astropy's header and a body written by
+# pyarrow's CSV writer, about 25 times faster than astropy's row-by-row writer, with the same bytes.
+# astropy writes a float64 with ``str`` (the shortest text that reads back to the same value, fixed
+# notation for 1e-4 <= |x| < 1e16, ``1.0`` for whole numbers), pyarrow with another shortest-text
+# algorithm that switches to exponents at other magnitudes and writes whole numbers without ``.0``.
+# Both give the same digits, so only the notation differs: whole numbers below 1e9 get ``.0``
+# appended, and the few values below 1e-4 or from 1e9 up are written by Python itself.
+
+#: Characters a text value may not hold to be written unquoted (astropy would quote it, or a
+#: reader take it for a separator, a quote, a line end or a comment).
+_NEEDS_QUOTES = r'[\s,"#]'
+
+
+def float_text(values: pa.Array, decimals: int | None = None) -> pa.Array:
+    """float64 values as astropy's text writers write them (``str`` of each; null as ``nan``).
+
+    With ``decimals``, the values are first rounded as :func:`format_columns` rounds them.
+    """
+    x = values.to_numpy(zero_copy_only=False).astype(np.float64, copy=False)
+    if decimals is not None:
+        x = np.round(x, decimals) + 0.0  # exactly format_columns' rounding
+    text = pc.cast(pa.array(x, pa.float64()), pa.string())
+    a = np.abs(x)
+    with np.errstate(invalid="ignore"):
+        whole = (x == np.trunc(x)) & (a < 1e9)
+        other = np.isfinite(x) & (((a < 1e-4) & (x != 0.0)) | (a >= 1e9))
+    if whole.any():
+        text = pc.if_else(pa.array(whole), pc.binary_join_element_wise(text, ".0", ""), text)
+    if other.any():
+        text = pc.replace_with_mask(text, pa.array(other), pa.array([repr(v) for v in x[other].tolist()], pa.string()))
+    return text
+
+
+def text_writable(column: pa.ChunkedArray | pa.Array) -> bool:
+    """Whether :func:`text_body` writes this column exactly as astropy would.
+
+    float64 (nulls become NaN, as astropy's column does), integers without nulls, and text without
+    nulls, without empty values and without a character that astropy would quote (or a reader
+    misread); anything else is left to astropy.
+    """
+    t = column.type
+    if pa.types.is_float64(t):
+        return True
+    if pa.types.is_integer(t):
+        return column.null_count == 0
+    if pa.types.is_string(t) or pa.types.is_large_string(t):
+        if column.null_count:
+            return False
+        return not (pc.any(pc.equal(pc.utf8_length(column), 0)).as_py()
+                    or pc.any(pc.match_substring_regex(column, _NEEDS_QUOTES)).as_py())
+    return False
+
+
+def text_body(table: pa.Table, delimiter: str) -> bytes:
+    """The rows of ``table`` (no header) as :func:`write_table_file` writes them in ECSV (``" "``) or CSV (``","``).
+
+    Floats are rounded to the decimals their column warrants, as :func:`format_columns` does. Every
+    column must pass :func:`text_writable`.
+    """
+    arrays = []
+    for name, col in zip(table.column_names, table.columns):
+        col = col.combine_chunks() if isinstance(col, pa.ChunkedArray) else col
+        if pa.types.is_float64(col.type):
+            doc = describe(name)
+            arrays.append(float_text(col, None if doc is None else doc.decimals))
+        elif pa.types.is_integer(col.type):
+            arrays.append(pc.cast(col, pa.string()))
+        else:
+            arrays.append(col)
+    sink = pa.BufferOutputStream()
+    pacsv.write_csv(pa.table(arrays, names=table.column_names), sink,
+                    pacsv.WriteOptions(include_header=False, delimiter=delimiter, quoting_style="none"))
+    return sink.getvalue().to_pybytes()
 
 
 #: Units a VOTable may carry under another spelling of the same unit: VOUnit (the VOTable unit

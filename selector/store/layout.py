@@ -379,3 +379,8 @@ def target_full_list(cfg, fmt: str, *, new_only: bool = False) -> Path:
 def target_text_list(cfg, *, new_only: bool = False) -> Path:
     """The compact list as plain fixed-width text: ``targets.txt`` (``targets_new.txt``)."""
     return targets_dir(cfg) / f"{'targets_new' if new_only else 'targets'}.txt"
+
+
+def merge_spool(layout: Layout) -> Path:
+    """Scratch folder of a merge in progress: sorted runs of candidates (removed when it ends)."""
+    return layout.run_dir / ".merge-spool"

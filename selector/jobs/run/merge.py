@@ -8,24 +8,31 @@ one.
 
 from __future__ import annotations
 
+import json
 import os
+import shutil
+from contextlib import ExitStack
 from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
 import pyarrow as pa
+import pyarrow.compute as pc
+import pyarrow.parquet as pq
 from astropy.table import Table
 
 from selector import __version__
 from selector.core import schema
-from selector.core.selection import check_accounting, rank_candidates
+from selector.core.selection import check_accounting
 from selector.errors import SelectorError
 from selector.jobs.run.plan import ingest_summaries
 from selector.settings.config import MATCH_SECTIONS, SELECTION_SECTIONS, Config, config_hash
 from selector.store.generations import generation_digest
-from selector.store.io import describe_arrow_columns, read_parquet, write_json, write_parquet, write_table, write_text
+from selector.store.io import (PARQUET_ROW_GROUP_ROWS, DurableBatch, describe_arrow_columns, parquet_writer_options,
+                               read_parquet, text_body, text_writable, write_json, write_parquet, write_table_file,
+                               write_text)
 from selector.store.keys import model_sha, result_config
-from selector.store.layout import MERGED_FILES, layout_of
+from selector.store.layout import MERGED_FILES, layout_of, merge_spool
 
 
 @dataclass(frozen=True)
@@ -220,8 +227,136 @@ def ranked_table(candidates: pa.Table, prov: dict) -> Table:
     return table
 
 
+#: Candidates sorted in memory at a time (one sorted run); more are merged from sorted runs on disk.
+RUN_ROWS = 1 << 18
+#: Rows read from each sorted run at a time during the merge of runs.
+BLOCK_ROWS = 1 << 14
+
+
+def _rank_key(schema: pa.Schema) -> list[tuple[str, str]]:
+    # the order of rank_candidates: score descending (NaN last), then id ascending; ids are unique
+    # (checked), so the order is total and a merge of sorted runs gives exactly the one sort
+    key = "p_quasar" if "p_quasar" in schema.names else "criteria_score"
+    return [(key, "descending"), ("astro_id", "ascending")]
+
+
+class _Runs:
+    """The candidates, cut into sorted runs: kept in memory while they fit one run, spilled to disk after."""
+
+    def __init__(self, spool: Path, schema: pa.Schema):
+        self.spool = spool
+        self.schema = schema
+        self.key = _rank_key(schema)
+        self.pending: list[pa.Table] = []
+        self.pending_rows = 0
+        self.files: list[Path] = []
+        self.rows = 0
+
+    def add(self, part: pa.Table) -> None:
+        self.pending.append(part)
+        self.pending_rows += part.num_rows
+        self.rows += part.num_rows
+        if self.pending_rows >= RUN_ROWS:
+            self.spill()
+
+    def sorted_pending(self) -> pa.Table:
+        table = pa.concat_tables(self.pending) if self.pending else self.schema.empty_table()
+        self.pending, self.pending_rows = [], 0
+        return table.sort_by(self.key).combine_chunks() if table.num_rows else table
+
+    def spill(self) -> None:
+        table = self.sorted_pending()
+        if not table.num_rows:
+            return
+        self.spool.mkdir(parents=True, exist_ok=True)
+        path = self.spool / f"run-{len(self.files):05d}.arrow"
+        with pa.OSFile(str(path), "wb") as sink, pa.ipc.new_file(sink, table.schema) as writer:
+            for batch in table.to_batches(max_chunksize=BLOCK_ROWS):
+                writer.write_batch(batch)
+        self.files.append(path)
+
+    def merged(self):
+        """Yield the candidates in rank order, in batches."""
+        if not self.files:  # everything fitted in one run: sorted in memory
+            table = self.sorted_pending()
+            if table.num_rows:
+                yield table
+            return
+        self.spill()
+        readers = [pa.ipc.open_file(pa.OSFile(str(p))) for p in self.files]
+        next_block = [0] * len(readers)
+        buffers: list[pa.Table | None] = [None] * len(readers)
+
+        def refill(i):
+            if buffers[i] is None or buffers[i].num_rows == 0:
+                if next_block[i] < readers[i].num_record_batches:
+                    buffers[i] = pa.Table.from_batches([readers[i].get_batch(next_block[i])])
+                    next_block[i] += 1
+                else:
+                    buffers[i] = None
+
+        for i in range(len(readers)):
+            refill(i)
+        while any(b is not None for b in buffers):
+            live = [i for i, b in enumerate(buffers) if b is not None]
+            table = pa.concat_tables([buffers[i] for i in live])
+            order = pc.sort_indices(table, sort_keys=self.key).to_numpy()
+            position = np.empty_like(order)
+            position[order] = np.arange(len(order))
+            # rows up to the first last-row of a run with more blocks on disk are final: nothing
+            # unread can come before them (each run is sorted)
+            starts = np.cumsum([0] + [buffers[i].num_rows for i in live])
+            more = [k for k, i in enumerate(live) if next_block[i] < readers[i].num_record_batches]
+            cut = min(position[starts[k + 1] - 1] for k in more) + 1 if more else len(order)
+            yield table.take(pa.array(order[:cut]))
+            for k, i in enumerate(live):
+                used = int(np.count_nonzero(position[starts[k]:starts[k + 1]] < cut))  # a prefix of the run
+                buffers[i] = buffers[i].slice(used)
+                refill(i)
+
+
+def _streamed(cfg: Config, summaries: list[TileSummary], lay) -> tuple[_Runs, bool, int]:
+    """Read every tile's candidates once into sorted runs; whether the fast text writers apply; rows."""
+    paths = [lay.tile_candidates(s.tile) for s in summaries]
+    schemas = []
+    for s, path in zip(summaries, paths):
+        try:
+            schemas.append(pq.read_schema(path).remove_metadata())
+        except (OSError, pa.ArrowException) as exc:
+            raise SelectorError(f"{path}: cannot read ({exc}); re-run with --force") from None
+    schema = pa.unify_schemas(schemas, promote_options="permissive") if schemas else pa.schema([("astro_id", pa.int64())])
+    runs = _Runs(merge_spool(lay), schema)
+    writable = True
+    ids = []
+    for s, path in zip(summaries, paths):
+        part = read_parquet(path).replace_schema_metadata(None)
+        if part.num_rows != int(s.cutflow[-1][1]):
+            raise SelectorError(f"internal error: {path} holds {part.num_rows} candidates but the tile's cut-flow "
+                                f"ends with {s.cutflow[-1][1]}; re-run with --force")
+        if not part.num_rows:
+            continue
+        if part.schema != schema:
+            part = pa.concat_tables([schema.empty_table(), part], promote_options="permissive").cast(schema)
+        writable = writable and all(text_writable(c) for c in part.columns)
+        ids.append(part.column("astro_id").to_numpy(zero_copy_only=False))
+        runs.add(part)
+    # the one check that needs every row at once: the ids only (8 bytes a candidate for integer ids)
+    ids = np.concatenate(ids) if ids else np.zeros(0)
+    if len(np.unique(ids)) != len(ids):
+        raise SelectorError("internal error: a source appears in more than one tile's candidates")
+    return runs, writable, runs.rows
+
+
 def merge(cfg: Config, summaries: list[TileSummary], prov: dict, fault=None) -> Merged:
     """Union of the per-tile candidates (each source owned by one tile), ranked; cut-flow totals.
+
+    Streamed: each tile's candidates are read once into sorted runs of :data:`RUN_ROWS` rows (spilled to
+    a scratch folder when there are more), which are merged in rank order and written batch by batch
+    to the three lists at once: Parquet by row groups of the usual size, ECSV and CSV with astropy's
+    header and a body written column by column (:func:`~selector.store.io.text_body`). The bytes are
+    those of ranking the whole list in memory and writing it with astropy; a list whose values the
+    column writer cannot reproduce exactly (text with spaces, integer columns with nulls, ...) is
+    written by astropy, in memory, as before.
 
     Parameters
     ----------
@@ -236,39 +371,93 @@ def merge(cfg: Config, summaries: list[TileSummary], prov: dict, fault=None) -> 
     fault = fault or (lambda event: None)
     lay = layout_of(cfg)
     summaries = sorted(summaries, key=lambda s: s.tile)
-    parts = []
-    for s in summaries:
-        path = lay.tile_candidates(s.tile)
-        part = read_parquet(path).replace_schema_metadata(None)
-        if part.num_rows != int(s.cutflow[-1][1]):
-            raise SelectorError(f"internal error: {path} holds {part.num_rows} candidates but the tile's cut-flow "
-                                f"ends with {s.cutflow[-1][1]}; re-run with --force")
-        parts.append(part)
-    candidates = pa.concat_tables(parts, promote_options="permissive") if parts else pa.table({"astro_id": []})
-    ids = candidates.column("astro_id").to_numpy(zero_copy_only=False) if candidates.num_rows else np.zeros(0)
-    if len(np.unique(ids)) != len(ids):
-        raise SelectorError("internal error: a source appears in more than one tile's candidates")
     flow = total_cutflow(summaries)
-    if candidates.num_rows:
-        # every merged format carries the same ranked rows, the Parquet copy included
-        candidates = rank_candidates(candidates)
-        table = ranked_table(candidates, prov)
-    else:
-        table = Table({"rank": np.zeros(0, np.int64), "astro_id": np.zeros(0, np.int64)})
-        table.meta["selector_provenance"] = prov
     outputs = merged_paths(cfg)
-    write_table(table, outputs["ecsv"], "ecsv")
-    fault("merge:ecsv")
-    write_table(table, outputs["csv"], "csv")
-    fault("merge:csv")
-    units = {name: schema.unit_of(name) for name in candidates.column_names}
-    write_parquet(describe_arrow_columns(candidates, units), outputs["parquet"], {"provenance": prov})
-    fault("merge:parquet")
-    write_text("stage,left\n" + "".join(f"{n},{c}\n" for n, c in flow), outputs["cutflow"])
+    spool = merge_spool(lay)
+    shutil.rmtree(spool, ignore_errors=True)
+    try:
+        runs, writable, n = _streamed(cfg, summaries, lay)
+        texts = {"ecsv": DurableBatch(), "csv": DurableBatch(), "parquet": DurableBatch()}
+        try:
+            if n and writable:
+                _write_streamed(runs, prov, outputs, texts)
+            else:
+                _write_in_memory(runs, prov, outputs, texts, tiles=len(summaries))
+            for kind in ("ecsv", "csv", "parquet"):
+                texts[kind].commit()
+                fault(f"merge:{kind}")
+        finally:
+            for batch in texts.values():
+                batch.discard()
+    finally:
+        shutil.rmtree(spool, ignore_errors=True)
+    write_text("stage,left\n" + "".join(f"{n_},{c}\n" for n_, c in flow), outputs["cutflow"])
     fault("merge:cutflow")
     rejects = sum(int(s.rejects) for s in summaries)
     rows = sum(int(s.rows) for s in summaries)
     write_json({**prov, "tiles": len(summaries), "rows": rows, "tile_rejects": rejects,
-                "candidates": len(table), "cutflow": flow, "config": result_config(cfg)}, outputs["provenance"])
+                "candidates": n, "cutflow": flow, "config": result_config(cfg)}, outputs["provenance"])
     fault("merge:provenance")
-    return Merged(len(summaries), len(table), flow, outputs)
+    return Merged(len(summaries), n, flow, outputs)
+
+
+def _with_rank(table: pa.Table, first: int) -> pa.Table:
+    return table.add_column(0, "rank", pa.array(np.arange(first, first + table.num_rows, dtype=np.int64)))
+
+
+def _units(names) -> dict[str, str]:
+    return {name: schema.unit_of(name) for name in names}
+
+
+def _write_streamed(runs: _Runs, prov: dict, outputs: dict, batches: dict) -> None:
+    """Write the ranked rows batch by batch into the three lists (see :func:`merge`)."""
+    columns = runs.schema.insert(0, pa.field("rank", pa.int64()))
+    header = ranked_table(columns.empty_table(), prov)
+    with ExitStack() as stack:
+        files = {}
+        for kind in ("ecsv", "csv"):
+            tmp = stack.enter_context(batches[kind].path(outputs[kind]))
+            write_table_file(header, tmp, kind)  # astropy's header (and no rows)
+            files[kind] = stack.enter_context(open(tmp, "ab"))
+        described = describe_arrow_columns(columns.empty_table(), _units(columns.names)).schema
+        parquet_schema = described.with_metadata({b"provenance": json.dumps(prov, sort_keys=True).encode()})
+        writer = stack.enter_context(pq.ParquetWriter(stack.enter_context(batches["parquet"].path(outputs["parquet"])),
+                                                      parquet_schema, **parquet_writer_options(parquet_schema)))
+
+        def write_group(group: pa.Table) -> None:
+            writer.write_table(group.cast(parquet_schema), row_group_size=PARQUET_ROW_GROUP_ROWS)
+
+        pending: list[pa.Table] = []
+        pending_rows, first = 0, 1
+        for part in runs.merged():
+            part = _with_rank(part, first)
+            first += part.num_rows
+            files["ecsv"].write(text_body(part, " "))
+            files["csv"].write(text_body(part, ","))
+            # row groups of the usual size, so the file is the one a single write would give
+            pending.append(part)
+            pending_rows += part.num_rows
+            while pending_rows >= PARQUET_ROW_GROUP_ROWS:
+                group = pa.concat_tables(pending).combine_chunks()
+                write_group(group.slice(0, PARQUET_ROW_GROUP_ROWS))
+                rest = group.slice(PARQUET_ROW_GROUP_ROWS)
+                pending, pending_rows = [rest], rest.num_rows
+        if pending_rows:
+            write_group(pa.concat_tables(pending).combine_chunks())
+
+
+def _write_in_memory(runs: _Runs, prov: dict, outputs: dict, batches: dict, *, tiles: int) -> None:
+    """The whole ranked list in memory, written by astropy (lists the column writer cannot write exactly)."""
+    parts = list(runs.merged())
+    if parts:
+        candidates = _with_rank(pa.concat_tables(parts).combine_chunks(), 1)
+        table = ranked_table(candidates, prov)
+    else:
+        candidates = runs.schema.empty_table() if tiles else pa.table({"astro_id": []})
+        table = Table({"rank": np.zeros(0, np.int64), "astro_id": np.zeros(0, np.int64)})
+        table.meta["selector_provenance"] = prov
+    for kind in ("ecsv", "csv"):
+        with batches[kind].path(outputs[kind]) as tmp:
+            write_table_file(table, tmp, kind)
+    write_parquet(describe_arrow_columns(candidates, _units(candidates.column_names)), outputs["parquet"],
+                  {"provenance": prov}, batch=batches["parquet"])
