@@ -11,7 +11,7 @@ import pytest
 
 from selector.core import tiles
 from selector.errors import InputError
-from selector.jobs.ingest import ingest, ingest_catalogue
+from selector.jobs.ingest import ingest, ingest_catalogue, values_json
 from selector.store.layout import layout_of
 
 from conftest import base_config, build, random_astro, random_ir, write_parquet
@@ -194,3 +194,22 @@ def test_sentinel_values_become_missing(tmp_path, rng):
     by_id = {r["astro_id"]: r for r in t.to_pylist()}
     assert np.isnan(by_id[1]["parallax_mas"]) and np.isnan(by_id[3]["opt_broad_abmag"])
     assert np.isnan(by_id[3]["opt_broad_mag_error"]) and np.isfinite(by_id[4]["parallax_mas"])
+
+
+def test_reject_values_are_built_as_columns_with_the_text_of_pythons_json():
+    # rejected rows keep their original values as JSON text; built column by column, each must be
+    # what Python's json module writes for the row (the reference: json.dumps of str() of each value)
+    floats = [1.0, -0.0, 0.1, 1e-5, 3.4e-9, 123456789.0, 1e9, 2.5e17, float("nan"), float("inf"), -float("inf"),
+              None, 7.000000000000001, 5e-324]
+    n = len(floats)
+    table = pa.table({
+        "b_float": pa.array(floats, pa.float64()),
+        "a_int": pa.array([1, None, -3, 2**62, 0, 5, 6, 7, 8, 9, 10, 11, 12, 13], pa.int64()),
+        "c_text": pa.array(['plain', 'say "hi"', "back\\slash", "tab\there", "line\nend", "ü-umlaut", "☃", None, "",
+                            " 1.5 ", "nan", "-999", "\x7f", "e\u0301"], pa.string()),
+        "d_flag": pa.array([True, False, None] + [True] * (n - 3)),
+        "e_small": pa.array(np.float32([0.1] * n)),
+    })
+    expected = [json.dumps({k: (None if v is None else str(v)) for k, v in r.items()}, sort_keys=True)
+                for r in table.to_pylist()]
+    assert values_json(table).to_pylist() == expected

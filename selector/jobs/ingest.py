@@ -31,7 +31,8 @@ from selector import __version__
 from selector.core import schema, tiles
 from selector.settings.config import CatalogueConfig, Config, config_hash
 from selector.errors import InputError, SelectorError
-from selector.store.io import expand_files, fingerprint, iter_chunks, write_json, write_parquet
+from selector.store.io import (DurableBatch, expand_files, fingerprint, float_text, iter_chunks, write_json,
+                               write_parquet)
 from selector.store.generations import carry_over, commit_generation, new_generation
 from selector.store.layout import Layout, layout_of
 from selector.store.lock import output_lock
@@ -52,6 +53,7 @@ REASONS = (
 # Oke & Gunn 1983, ApJ 266, 713 define m_AB = -2.5 log10(f_nu / erg s^-1 cm^-2 Hz^-1) - 48.60, i.e. a zero
 # point of 3630.78 Jy (1 Jy = 1e-23 cgs); the rounded 3631 Jy would shift every magnitude by 6.6e-5 mag.
 _AB_ZERO_POINT_JY = 10.0 ** (-0.4 * 48.60) * 1e23
+_REASON_NAMES = pa.array(REASONS, pa.string())
 _N_BUCKETS = 64
 _SPOOL_ROWS = 2_000_000
 
@@ -289,10 +291,59 @@ def _flux_errors(chunk, fields, names, arrays, checks):
     return arrays
 
 
-def _raw_rows(chunk, rows: np.ndarray, sources: list[str]) -> list[str]:
+def _raw_rows(chunk, rows: np.ndarray, sources: list[str]) -> pa.Array:
     """JSON of the original values of some rows, so a rejected row can be found and mended."""
-    sub = chunk.table.select(sources).take(pa.array(rows, pa.int64())).to_pylist()
-    return [json.dumps({k: (None if v is None else str(v)) for k, v in r.items()}, sort_keys=True) for r in sub]
+    return values_json(chunk.table.select(sources).take(pa.array(rows, pa.int64())))
+
+
+# JSON text that json.dumps would escape (quotes, backslashes, control and non-ASCII characters)
+_JSON_ESCAPED = r'["\\\x00-\x1f\x7f-\x{10ffff}]'
+
+
+def _json_strings(table: pa.Table, name: str) -> pa.Array:
+    """``json.dumps(None if v is None else str(v))`` of every value of a column, built as a column."""
+    col = table.column(name).combine_chunks()
+    t = col.type
+    if pa.types.is_floating(t):
+        text = float_text(col)  # str() of each value, as Python writes a float
+    elif pa.types.is_integer(t):
+        text = pc.cast(col, pa.string())
+    elif pa.types.is_string(t) or pa.types.is_large_string(t):
+        text = pc.cast(col, pa.string())
+    else:  # other types are rare in rejects: Python's own str()
+        text = pa.array([None if v is None else str(v) for v in col.to_pylist()], pa.string())
+    quoted = pc.binary_join_element_wise('"', text, '"', "")
+    escape = pc.fill_null(pc.match_substring_regex(text, _JSON_ESCAPED), False)
+    if pc.any(escape).as_py():
+        mask = escape.to_numpy(zero_copy_only=False)
+        values = [json.dumps(v) for v, m in zip(text.to_pylist(), mask) if m]
+        quoted = pc.replace_with_mask(quoted, pa.array(mask), pa.array(values, pa.string()))
+    if col.null_count:
+        quoted = pc.if_else(pc.is_null(col), pa.scalar("null"), quoted)
+    return quoted
+
+
+def values_json(table: pa.Table) -> pa.Array:
+    """One JSON object of each row's values as text (``None`` → ``null``), built column by column.
+
+    The text is exactly ``json.dumps({name: None if v is None else str(v) ...}, sort_keys=True)`` of
+    each row, which this used to build one row at a time (about 15 µs a row).
+    """
+    names = sorted(table.column_names)
+    if not names or table.num_rows == 0:
+        return pa.array(["{}"] * table.num_rows, pa.string())
+    pieces = []
+    for i, name in enumerate(names):
+        pieces.append(("{" if i == 0 else ", ") + json.dumps(name) + ": ")
+        pieces.append(_json_strings(table, name))
+    pieces.append("}")
+    return pc.binary_join_element_wise(*pieces, "")
+
+
+def _reject_table(*, files: pa.Array, rows: np.ndarray, reasons: pa.Array, columns: pa.Array,
+                  values: pa.Array) -> pa.Table:
+    return pa.table({"input_file": files, "input_row": pa.array(rows, pa.int64()), "reason": reasons,
+                     "column": columns, "values": values}, schema=REJECT_SCHEMA)
 
 
 REJECT_SCHEMA = pa.schema([
@@ -404,13 +455,13 @@ def _ingest_into(cfg: Config, kind: str, lay: Layout) -> IngestSummary:
         bad = np.flatnonzero(reason >= 0)
         if bad.size:
             rejected.update(REASONS[i] for i in reason[bad])
-            reject_parts.append(pa.table({
-                "input_file": pa.array([str(chunk.path)] * bad.size, pa.string()),
-                "input_row": pa.array(chunk.first_row + bad, pa.int64()),
-                "reason": pa.array([REASONS[i] for i in reason[bad]], pa.string()),
-                "column": pa.array(list(column[bad]), pa.string()),
-                "values": pa.array(_raw_rows(chunk, bad, sources), pa.string()),
-            }, schema=REJECT_SCHEMA))
+            # built as columns: a reject costs about as much as an accepted row
+            reject_parts.append(_reject_table(
+                files=pa.repeat(pa.scalar(str(chunk.path), pa.string()), bad.size),
+                rows=chunk.first_row + bad,
+                reasons=pc.take(_REASON_NAMES, pa.array(reason[bad].astype(np.int64))),
+                columns=pa.array(column[bad], pa.string()),
+                values=_raw_rows(chunk, bad, sources)))
         good = np.flatnonzero(reason < 0)
         if bad.size:
             table = _take(table, good)
@@ -448,15 +499,20 @@ def _ingest_into(cfg: Config, kind: str, lay: Layout) -> IngestSummary:
     file_list = [str(p) for p in paths]
     if duplicates.size:
         rejected["duplicate_id"] += int(duplicates.size)
+    # the generation is new and read by nobody until it is put in force, after it has been made
+    # durable as a whole (commit_generation): its files need no sync of their own
+    batch = DurableBatch(sync=False)
     rows_per_tile = _write_tiles(cfg, kind, tile_parts, lay=lay, duplicates=duplicates, id_col=id_col, fields=fields,
-                                 reject_parts=reject_parts, file_list=file_list, file_starts=np.asarray(file_starts))
+                                 reject_parts=reject_parts, file_list=file_list, file_starts=np.asarray(file_starts),
+                                 batch=batch)
+    batch.commit()
     accepted = sum(rows_per_tile.values())
     del tile_parts, id_parts, readers  # closes the spool files before they are removed
     shutil.rmtree(spool)
 
     rejects = pa.concat_tables(reject_parts) if reject_parts else REJECT_SCHEMA.empty_table()
     rejects = rejects.sort_by([("input_file", "ascending"), ("input_row", "ascending")])
-    write_parquet(rejects, lay.ingest_rejects(kind))
+    write_parquet(rejects, lay.ingest_rejects(kind), batch=batch)
     summary = IngestSummary(kind, rows_in, accepted, dict(rejected), rows_per_tile,
                             {input_name(cfg, p): fingerprint(p) for p in paths})
     if rows_in != accepted + sum(rejected.values()) or len(rejects) != sum(rejected.values()):
@@ -465,7 +521,8 @@ def _ingest_into(cfg: Config, kind: str, lay: Layout) -> IngestSummary:
     info = summary.as_dict()
     info.update({"order": order, "epoch_jyear": cat.epoch_jyear, "version": __version__,
                  "config_hash": config_hash(cfg, (kind, "tiling"))})
-    write_json(info, lay.ingest_summary(kind))
+    write_json(info, lay.ingest_summary(kind), batch=batch)
+    batch.commit()
     return summary
 
 
@@ -526,7 +583,7 @@ def _find_duplicates(buckets: dict) -> np.ndarray:
     return np.sort(np.concatenate(out)) if out else np.zeros(0, np.int64)
 
 
-def _write_tiles(cfg, kind, parts, *, lay, duplicates, id_col, fields, reject_parts, file_list, file_starts):
+def _write_tiles(cfg, kind, parts, *, lay, duplicates, id_col, fields, reject_parts, file_list, file_starts, batch):
     # every catalogue but the known objects is tiled; those are one file
     order, tiled = cfg.tiling.order, kind != "known"
     units = {f.canonical: f.unit for f in fields if f.unit}
@@ -542,25 +599,22 @@ def _write_tiles(cfg, kind, parts, *, lay, duplicates, id_col, fields, reject_pa
             d = t.filter(pa.array(dup))
             drow = d.column("_row").to_numpy()
             fidx = np.searchsorted(file_starts, drow, side="right") - 1
-            reject_parts.append(pa.table({
-                "input_file": pa.array([file_list[i] for i in fidx], pa.string()),
-                "input_row": pa.array(drow - file_starts[fidx], pa.int64()),
-                "reason": pa.array(["duplicate_id"] * len(drow), pa.string()),
-                "column": pa.array([getattr(cfg, kind).columns["id" if kind != "known" else "name"].column] * len(drow),
-                                   pa.string()),
-                "values": pa.array([json.dumps({k: (None if v is None else str(v)) for k, v in r.items()},
-                                               sort_keys=True) for r in d.drop(["_fine", "_row"]).to_pylist()],
-                                   pa.string()),
-            }, schema=REJECT_SCHEMA))
+            id_source = getattr(cfg, kind).columns["id" if kind != "known" else "name"].column
+            reject_parts.append(_reject_table(
+                files=pc.take(pa.array(file_list, pa.string()), pa.array(fidx.astype(np.int64))),
+                rows=drow - file_starts[fidx],
+                reasons=pa.repeat(pa.scalar("duplicate_id", pa.string()), len(drow)),
+                columns=pa.repeat(pa.scalar(id_source, pa.string()), len(drow)),
+                values=values_json(d.drop(["_fine", "_row"]))))
             t = t.filter(pa.array(~dup))
         t = _take(t, _fine_then_id_order(t, id_col)).drop(["_fine", "_row"])
         t = _with_units(t, units)
         if tiled:
             path = lay.tile_file(kind, order, tile)
-            write_parquet(t, path, {**meta, "tile": str(tile)})
+            write_parquet(t, path, {**meta, "tile": str(tile)}, batch=batch)
             written.add(path.name)
         else:
-            write_parquet(t, lay.known_objects, meta)
+            write_parquet(t, lay.known_objects, meta, batch=batch)
         rows_per_tile[tile] = t.num_rows
     if tiled:
         folder = lay.order_dir(kind, order)
@@ -570,7 +624,7 @@ def _write_tiles(cfg, kind, parts, *, lay, duplicates, id_col, fields, reject_pa
                 stale.unlink()
     elif not parts:
         empty = pa.table({f.canonical: pa.array([], pa.float64()) for f in fields})
-        write_parquet(empty, lay.known_objects, meta)
+        write_parquet(empty, lay.known_objects, meta, batch=batch)
     return rows_per_tile
 
 

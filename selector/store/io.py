@@ -298,9 +298,17 @@ class DurableBatch:
 
     Use as a context manager: committed when the block ends normally, temporary files removed when
     it raises.
+
+    Parameters
+    ----------
+    sync : bool
+        False: the files are renamed into place without any fsync, for a folder that is made durable
+        as a whole afterwards (a new generation of tiles, synced once before it is put in force by
+        :func:`selector.store.generations.commit_generation`).
     """
 
-    def __init__(self):
+    def __init__(self, sync: bool = True):
+        self.sync = sync
         self._pending: list[tuple[Path, Path]] = []
 
     def __enter__(self) -> "DurableBatch":
@@ -339,11 +347,12 @@ class DurableBatch:
         pending, self._pending = self._pending, []
         try:
             for tmp, _ in pending:
-                fd = os.open(tmp, os.O_RDONLY)
-                try:
-                    os.fsync(fd)
-                finally:
-                    os.close(fd)
+                if self.sync:
+                    fd = os.open(tmp, os.O_RDONLY)
+                    try:
+                        os.fsync(fd)
+                    finally:
+                        os.close(fd)
                 # mkstemp makes files private; outputs are meant to be shared like any file the user writes
                 os.chmod(tmp, 0o666 & ~_UMASK)
         except BaseException:
@@ -352,7 +361,7 @@ class DurableBatch:
             raise
         for tmp, final in pending:
             os.replace(tmp, final)
-        for folder in sorted({final.parent for _, final in pending}):
+        for folder in sorted({final.parent for _, final in pending}) if self.sync else ():
             fsync_folder(folder)
         return [final for _, final in pending]
 
