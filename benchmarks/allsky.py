@@ -64,8 +64,8 @@ rows/CPU s
 peak RSS
     ``ru_maxrss`` (the resident-set high-water mark) of a child process. For the ingest it is the
     ``selector ingest`` process. For a run it is shown twice: ``worker`` is the largest of the pool's
-    worker processes (read with ``getrusage(RUSAGE_CHILDREN)`` in the run's process after its pool
-    has been joined; with one worker the tiles run in the run's own process, so it is that process),
+    worker processes, as each worker reports it with its tiles (``RunResult.timings``, also in the run
+    log and manifest; with one worker the tiles run in the run's own process, so it is that process),
     and ``tree`` is what ``os.wait4`` reports for the run's process, the largest of it and its
     workers. A forked worker's RSS also counts the pages it shares with its parent, so it is an
     upper bound of the memory the worker adds. ``baseline`` is a process that only imports selector,
@@ -75,14 +75,14 @@ peak RSS
 serial share
     ``(wall − Σ tile time / workers) / wall``: the share of the run's wall time not explained by
     tile work spread evenly over the workers: interpreter start, imports, planning (including the
-    SHA-256 fingerprints of the tile files, computed on the first run only: the 1-worker run comes
-    first and pays them, on one thread), merge, and imbalance among the workers. Σ tile time is the
-    total of the tile times of ``selector status`` (wall times measured inside the workers, so they
-    include waiting for a core on a busy machine); the run's own "s of tile work" (from its summary
-    line) is shown beside it.
+    fingerprints of unchanged files), merge, and imbalance among the workers. Σ tile time is the
+    total of the tile times (``RunResult.timings.tile_s_total``: wall times measured inside the
+    workers, so they include waiting for a core on a busy machine); the run's tile-work span
+    (``timings.work_s``) is shown beside it, and the share of the tile time spent reading, matching,
+    selecting and writing.
 speed-up 1 → 2
     Wall time with one worker over wall time with two; also over the runs' tile-work spans, which
-    leave out the first run's fingerprinting. The reference job's speed-up is ``2 × t(1 job alone) /
+    leave out start-up, planning and merge. The reference job's speed-up is ``2 × t(1 job alone) /
     t(2 jobs at once)``: 2.0 on two idle cores. The ratio of the two says how much of the speed-up
     the machine allowed that the run did not take.
 1.8e9 extrapolation
@@ -102,7 +102,6 @@ import argparse
 import json
 import math
 import os
-import re
 import resource
 import shutil
 import subprocess
@@ -415,41 +414,28 @@ def child_write(args) -> None:
 
 
 def child_run(config: str, workers: int) -> None:
-    """In a child process: one forced run, then its peak memories and tile times, as a JSON line."""
-    import threading
-
+    """In a child process: one forced run, then its timings and its workers' peak memories, as a JSON line."""
     import selector
 
     lines: list[str] = []
     t0 = time.perf_counter()
     result = selector.run(config, workers=workers, force=True, quiet=True, log=lines.append)
     inside_s = time.perf_counter() - t0
-    # the pool is shut down without waiting; join its threads so its workers are reaped and counted
-    for thread in threading.enumerate():
-        if thread is not threading.main_thread():
-            thread.join(120.0)
-    import multiprocessing
-
-    multiprocessing.active_children()
     own = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0
-    workers_peak = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss / 1024.0
-    status = selector.status(config, runs=1)
+    # the run reaps its pool before it returns: every worker is a finished child by now
+    children = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss / 1024.0
+    t = result.timings
     for line in lines:
         print(line)
-    print(status)
-
-    def number(pattern, text):
-        found = re.search(pattern, text)
-        return float(found.group(1).replace(",", "")) if found else None
-
-    summary = "\n".join(lines)
+    print(selector.status(config, runs=1))
     print(json.dumps({
         "ok": bool(result.ok), "tiles": result.tiles, "candidates": result.candidates,
-        "run_call_s": inside_s, "tile_work_span_s": number(r"\(([\d.]+) s of tile work\)", summary),
-        "tile_s_total": number(r"tile times \(last work\):.*total ([\d.,]+) s", status),
-        "tile_s_max": number(r"tile times \(last work\):.*max ([\d.,]+) s", status),
-        "tiles_done": number(r"tiles: [\d,]+ — ([\d,]+) done", status),
-        "parent_peak_mib": own, "worker_peak_mib": workers_peak if workers > 1 else own,
+        "run_call_s": inside_s, "tile_work_span_s": t.work_s, "tile_s_total": t.tile_s_total,
+        "tile_s_max": t.tile_s_max, "plan_s": t.plan_s, "merge_s": t.merge_s, "read_s": t.read_s,
+        "match_s": t.match_s, "select_s": t.select_s, "write_s": t.write_s,
+        "parent_peak_mib": own, "children_peak_mib": children,
+        # what each worker reported with its tiles (ru_maxrss after each tile); one worker: this process
+        "worker_peak_mib": t.peak_worker_rss_mib, "workers_seen": len(t.worker_peak_rss_mib),
     }))
 
 
@@ -630,9 +616,17 @@ def report(r: dict, order: int) -> str:
                      f"    wall {m['wall_s']:.1f} s, Σ tile {_fmt(m.get('tile_s_total'), '.1f')} s, tile-work span "
                      f"{_fmt(m.get('tile_work_span_s'), '.1f')} s, slowest tile {_fmt(m.get('tile_s_max'), '.2f')} s")
     lines.append(f"{'peak RSS of one worker, 2 workers [MiB]':{w}}{run2['worker_peak_mib']:>10.0f}"
-                 f"    run process {run2['parent_peak_mib']:.0f}, tree {run2['tree_peak_mib']:.0f}")
+                 f"    ({run2.get('workers_seen', 0)} workers; run process {run2['parent_peak_mib']:.0f}, tree "
+                 f"{run2['tree_peak_mib']:.0f}, baseline {r['baseline']['tree_peak_mib']:.0f})")
     lines.append(f"{'peak RSS, 1 worker (in the run process) [MiB]':{w}}{run1['worker_peak_mib']:>10.0f}"
                  f"    ingest {ing['tree_peak_mib']:.0f}")
+    for label, m in (("1 worker", run1), ("2 workers", run2)):
+        if m.get("read_s") is not None:
+            total = m["tile_s_total"] or 1.0
+            lines.append(f"{'tile time by stage, ' + label:{w}}{'':>10}    read {m['read_s'] / total:.0%}, match "
+                         f"{m['match_s'] / total:.0%}, select {m['select_s'] / total:.0%}, write "
+                         f"{m['write_s'] / total:.0%} of {total:.1f} s; plan {m['plan_s']:.1f} s, merge "
+                         f"{m['merge_s']:.2f} s ({m['candidates'] / max(m['merge_s'], 1e-9):,.0f} candidates/s)")
     lines.append("")
     ingest_per_row = ing["wall_s"] / n
     run_per_row = run2["wall_s"] / n
