@@ -225,8 +225,9 @@ class RankingConfig:
     brightness_weight: float = setting(0.1, min=0.0, doc="score per magnitude brighter than the pivot")
 
 
-#: Classes the classifier tells apart (brown dwarfs are counted as stars).
-CLASSIFIER_CLASSES = ("quasar", "star", "galaxy")
+#: Classes a label can name (brown dwarfs are counted as stars); "other" is everything that is not a
+#: quasar when the labels say no more. A model learns the ones its labels hold in enough numbers.
+CLASSIFIER_CLASSES = ("quasar", "star", "galaxy", "other")
 
 
 def _default_class_map() -> dict[str, str]:
@@ -253,22 +254,48 @@ class LabelsFileConfig:
 
 
 @dataclass(frozen=True)
+class SkyPriorBinsConfig:
+    """Magnitude bins in which the sky's class proportions are estimated separately."""
+
+    band: str = setting("4.6", doc="binning band: an infrared label (Vega mag) or opt_<band> (AB mag)")
+    edges_mag: list[float] = setting(default_factory=lambda: (13.0, 14.0, 15.0, 16.0),
+                                     doc="increasing bin edges (mag); open bins below the first and above the last")
+    min_rows: int = setting(500, min=1, doc="a bin with fewer scored rows uses the estimate over all rows")
+
+    def _check(self, where):
+        edges = list(self.edges_mag)
+        if not edges or any(b <= a for a, b in zip(edges, edges[1:])):
+            raise ConfigError(f"{where}.edges_mag = {edges} must be a non-empty, strictly increasing list of magnitudes")
+
+
+@dataclass(frozen=True)
 class ClassifierConfig:
     model: Optional[str] = setting(None, doc="model file written by `selector train`, relative to the config file")
-    threshold: float = setting(0.5, min=0.0, max=1.0, doc="keep candidates with P(quasar) ≥ this when a model is set")
-    require_colour_criteria: bool = setting(True, doc="with a model, still require [colours] criteria (true) or let "
-                                                      "P(quasar) replace them (false)")
+    threshold: float = setting(0.5, min=0.0, max=1.0, doc="keep candidates with P(quasar) on the sky ≥ this when a "
+                                                          "model is set")
+    require_colour_criteria: bool = setting(False, doc="with a model, still require [colours] criteria (true) or let "
+                                                       "P(quasar) decide, the criteria kept as reference columns (false)")
     labels: Optional[LabelsFileConfig] = setting(None, doc="a labelled file for training")
     use_known: bool = setting(True, doc="also label training sources from the ingested [known] catalogue")
     known_radius_arcsec: float = setting(1.0, min=0.0, min_exclusive=True, max=60.0,
                                          doc="match radius of known objects and positional labels")
     class_map: dict[str, str] = setting(default_factory=_default_class_map, choices=CLASSIFIER_CLASSES,
-                                        doc="label text (case-insensitive) → quasar, star or galaxy; others dropped")
+                                        doc="label text (case-insensitive) → quasar, star, galaxy or other; others "
+                                            "dropped")
+    min_class_labels: int = setting(50, min=2, doc="a class with fewer usable labels is merged into 'other' or "
+                                                   "dropped (quasar: an error)")
+    sky_priors: Optional[dict[str, float]] = setting(None, min=0.0, doc="class → proportion on the sky among the "
+                                                     "scored sources; default: estimated by EM at training")
+    sky_prior_bins: Optional[SkyPriorBinsConfig] = setting(None, doc="estimate the sky proportions per magnitude bin")
+    novelty_neighbours: int = setting(5, min=1, max=100, doc="neighbour rank of the distance from the labelled set")
+    novelty_quantile: float = setting(0.99, min=0.5, max=0.9999,
+                                      doc="beyond_training: distance above this quantile of the labelled rows' own")
     folds: int = setting(5, min=2, max=20, doc="cross-validation folds, grouped by sky region")
     group_order: int = setting(3, min=0, max=12, doc="HEALPix order of the sky regions grouping the folds "
                                                      "(the coarser of this and tiling.order is used)")
     class_weight: str = setting("balanced", choices=("balanced", "none"), doc="weight classes inversely to their size")
-    calibration: str = setting("sigmoid", choices=("sigmoid", "isotonic"), doc="probability calibration method")
+    calibration: str = setting("logistic", choices=("logistic", "beta"),
+                               doc="strictly increasing probability calibration, cross-fitted")
     max_iter: int = setting(200, min=1, max=5000, doc="boosting iterations")
     learning_rate: float = setting(0.1, min=0.0, min_exclusive=True, max=1.0, doc="boosting learning rate")
     max_leaf_nodes: int = setting(31, min=2, max=1024, doc="leaves per tree")
@@ -282,6 +309,17 @@ class ClassifierConfig:
         for key in self.class_map:
             if not key.strip():
                 raise ConfigError(f"{where}.class_map has an empty label; give the class text as it appears in the data")
+        if self.sky_priors is not None:
+            bad = [k for k in self.sky_priors if k not in CLASSIFIER_CLASSES]
+            if bad:
+                raise ConfigError(f"{where}.sky_priors names the class {bad[0]!r}; classes are "
+                                  f"{', '.join(CLASSIFIER_CLASSES)}{suggest(bad[0], CLASSIFIER_CLASSES)}")
+            if not self.sky_priors.get("quasar", 0.0) > 0:
+                raise ConfigError(f"{where}.sky_priors needs a positive quasar proportion, got "
+                                  f"{self.sky_priors.get('quasar')!r}")
+            if self.sky_prior_bins is not None:
+                raise ConfigError(f"{where}: give sky_priors (fixed proportions) or sky_prior_bins (estimated per "
+                                  "magnitude bin), not both")
 
 
 @dataclass(frozen=True)
@@ -583,6 +621,10 @@ def _check_selection(cfg: Config) -> None:
     if cfg.quality.extent_snr_max is not None and not {"extent", "extent_error"} <= set(cfg.astrometric.columns):
         raise ConfigError(f"quality.extent_snr_max = {cfg.quality.extent_snr_max} needs the extent and extent_error "
                           "roles in [astrometric.columns]; map them or remove the key")
+    bins = cfg.classifier.sky_prior_bins
+    if bins is not None and bins.band not in known:
+        raise ConfigError(f"classifier.sky_prior_bins.band = {bins.band!r} is not a band of this configuration; choose "
+                          f"from {', '.join(sorted(known))}{suggest(bins.band, known)}")
 
 
 def _check_targets(cfg: Config) -> None:
