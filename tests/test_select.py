@@ -84,12 +84,17 @@ def test_combine_all_is_stricter_than_any():
 
 
 def test_classifier_threshold_is_the_last_stage():
-    cfg = build(base_config())
+    data = base_config()
+    data["classifier"] = {"require_colour_criteria": True}
     p = np.array([0.9, 0.2, 0.6, 0.49, 0.9, 0.9, 0.9, 0.9])
-    sel = select(_features(), cfg, p_quasar=p)
+    sel = select(_features(), build(data), p_quasar=p)
     assert sel.stages[-1][0] == "classifier"
     assert list(np.flatnonzero(sel.passed)) == [0, 2]
     assert "p_quasar" in sel.derived
+    # by default the model decides: the criteria become a reference column, not a cut
+    sel = select(_features(), build(base_config()), p_quasar=p)
+    assert dict(sel.stages)["infrared_colour"].sum() == dict(sel.stages)["proper_motion"].sum()
+    assert list(np.flatnonzero(sel.derived["passes_colour_criteria"] & sel.passed)) == [0, 2]
 
 
 def test_criteria_score_rewards_red_and_bright():

@@ -49,6 +49,39 @@ MATCH_PROBABILITY_COLUMN = "match_probability"
 MOTION_STAGES = ("parallax", "proper_motion", "joint_motion")
 
 
+@dataclass(frozen=True)
+class ModelScores:
+    """A trained model's verdict on feature-table rows (NaN, or False, for rows it does not score).
+
+    Attributes
+    ----------
+    p_quasar : numpy.ndarray
+        P(quasar) on the sky: the labelled-mix probability moved to the sky's class proportions.
+    p_quasar_labelled_mix : numpy.ndarray
+        P(quasar) at the class mix of the training labels.
+    quasar_log_odds : numpy.ndarray
+        ln[P/(1−P)] of ``p_quasar``, computed without rounding to P = 1: the ranking's tie-break.
+    novelty_distance : numpy.ndarray
+        Distance from the labelled sources in feature space (1 = typical among them).
+    beyond_training : numpy.ndarray of bool
+        ``novelty_distance`` beyond what the labelled sources show among themselves.
+    """
+
+    p_quasar: np.ndarray
+    p_quasar_labelled_mix: np.ndarray
+    quasar_log_odds: np.ndarray
+    novelty_distance: np.ndarray
+    beyond_training: np.ndarray
+
+    def rows(self, lo: int, hi: int) -> "ModelScores":
+        """The scores of rows ``lo`` to ``hi`` − 1."""
+        return ModelScores(*(np.asarray(v)[lo:hi] for v in self))
+
+    def __iter__(self):
+        return iter((self.p_quasar, self.p_quasar_labelled_mix, self.quasar_log_odds, self.novelty_distance,
+                     self.beyond_training))
+
+
 @dataclass
 class Selection:
     """Outcome of the selection stages over a feature table.
@@ -185,7 +218,7 @@ def one_sided_joint_pvalue(chi2, parallax_snr) -> np.ndarray:
     return 0.5 * chi2_distribution.sf(t, 2) + 0.5 * chi2_distribution.sf(t, 3)
 
 
-def select(features: pa.Table, cfg, p_quasar: np.ndarray | None = None) -> Selection:
+def select(features: pa.Table, cfg, p_quasar: np.ndarray | ModelScores | None = None) -> Selection:
     """Apply the zero-motion test, the colour criteria and the optional cuts to matched sources.
 
     Parameters
@@ -195,10 +228,14 @@ def select(features: pa.Table, cfg, p_quasar: np.ndarray | None = None) -> Selec
     cfg : Config
         Only the selection sections are read (motion, quality, colours, ranking, classifier), and
         which roles the catalogues map (the point-source cut applies to the mapped ones).
-    p_quasar : numpy.ndarray, optional
-        Classifier probabilities; when given, ``classifier.threshold`` is applied as a last cut
-        and candidates are ranked by it.
+    p_quasar : numpy.ndarray or ModelScores, optional
+        Classifier probabilities (or a model's full scores, whose columns the candidates then
+        carry); when given, ``classifier.threshold`` is applied as a last cut and candidates are
+        ranked by it.
     """
+    scores = p_quasar if isinstance(p_quasar, ModelScores) else None
+    if scores is not None:
+        p_quasar = scores.p_quasar
     m = cfg.motion
     q = cfg.quality
     n = features.num_rows
@@ -296,6 +333,13 @@ def select(features: pa.Table, cfg, p_quasar: np.ndarray | None = None) -> Selec
     }
     if p_quasar is not None:
         sel.derived["p_quasar"] = np.asarray(p_quasar, float)
+        # the published criteria stay beside the model's verdict as a reference column
+        sel.derived["passes_colour_criteria"] = np.asarray(crit.passed, bool)
+    if scores is not None:
+        sel.derived.update(p_quasar_labelled_mix=np.asarray(scores.p_quasar_labelled_mix, float),
+                           quasar_log_odds=np.asarray(scores.quasar_log_odds, float),
+                           novelty_distance=np.asarray(scores.novelty_distance, float),
+                           beyond_training=np.asarray(scores.beyond_training, bool))
     return sel
 
 
@@ -332,11 +376,25 @@ def rank_candidates(table: pa.Table) -> pa.Table:
     return table.add_column(0, "rank", pa.array(np.arange(1, table.num_rows + 1, dtype=np.int64)))
 
 
+#: With a model, the order after P(quasar) on the sky: its log-odds (distinct where the probability
+#: rounds to one), then the colour excess over the criteria boundary (redder: more secure hot dust).
+_MODEL_TIE_BREAKS = ("quasar_log_odds", "colour_excess_mag")
+
+
 def sort_by_score(table: pa.Table) -> pa.Table:
-    key = "p_quasar" if "p_quasar" in table.column_names else "criteria_score"
+    """Best first: by ``p_quasar`` and the science tie-breaks with a model, else by ``criteria_score``.
+
+    The source id comes last only so that the bytes are deterministic when every science quantity
+    is equal.
+    """
     if table.num_rows == 0:
         return table
-    return table.sort_by([(key, "descending"), ("astro_id", "ascending")])
+    names = table.column_names
+    if "p_quasar" in names:
+        keys = [("p_quasar", "descending")] + [(k, "descending") for k in _MODEL_TIE_BREAKS if k in names]
+    else:
+        keys = [("criteria_score", "descending")]
+    return table.sort_by(keys + [("astro_id", "ascending")])
 
 
 def check_accounting(n_rows: int, n_rejects: int, flow: list) -> None:

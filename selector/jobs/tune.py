@@ -338,8 +338,9 @@ def evaluate(cache: FeatureCache, cfg: Config, p_quasar: np.ndarray | None = Non
     cfg : Config
         Configuration whose selection sections are applied; its matching sections must be those
         of the run (see :func:`tune`).
-    p_quasar : numpy.ndarray, optional
-        Classifier probabilities of the cache rows, computed once and shared between evaluations.
+    p_quasar : numpy.ndarray or selection.ModelScores, optional
+        Classifier probabilities (or a model's scores) of the cache rows, computed once and shared
+        between evaluations.
         When None and ``cfg.classifier.model`` is set (and ``use_classifier``), the model scores
         the cache here.
     use_classifier : bool
@@ -351,7 +352,9 @@ def evaluate(cache: FeatureCache, cfg: Config, p_quasar: np.ndarray | None = Non
     if p_quasar is None and use_classifier and cfg.classifier.model:
         if cache.columns is not None:
             raise SelectorError("the classifier needs every feature column: load the cache with columns=None")
-        p_quasar = np.asarray(_scorer(cfg)(cache.table), float)
+        p_quasar = _scorer(cfg)(cache.table)
+    if p_quasar is not None and not isinstance(p_quasar, selection.ModelScores):
+        p_quasar = np.asarray(p_quasar, float)
     if not use_classifier:
         p_quasar = None
     n, n_tiles = cache.n_rows, len(cache.tiles)
@@ -362,7 +365,9 @@ def evaluate(cache: FeatureCache, cfg: Config, p_quasar: np.ndarray | None = Non
 
     def block(lo):
         hi = min(lo + _BLOCK_ROWS, n)
-        part = selection.select(cache.table.slice(lo, hi - lo), cfg, None if p_quasar is None else p_quasar[lo:hi])
+        scores = None if p_quasar is None else (p_quasar.rows(lo, hi) if isinstance(p_quasar, selection.ModelScores)
+                                                else p_quasar[lo:hi])
+        part = selection.select(cache.table.slice(lo, hi - lo), cfg, scores)
         idx = cache.tile_index(lo, hi)
         return part, np.stack([np.bincount(idx[mask], minlength=n_tiles) for _, mask in part.stages], axis=1)
 
