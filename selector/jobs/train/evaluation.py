@@ -18,10 +18,10 @@ import pyarrow as pa
 from selector.core.metrics import Score, completeness_purity
 from selector.core.photometry import CRITERIA
 from selector.core.selection import infrared_mags
-from selector.jobs.train.labels import CLASSES, QUASAR, LabelledSet
+from selector.jobs.train.labels import QUASAR, LabelledSet
 from selector.settings.config import Config
 
-__all__ = ["COMPLETENESS_TARGET", "TARGET_KEY", "Brier", "CalibrationCurve", "ClassCalibration",
+__all__ = ["COMPLETENESS_TARGET", "TARGET_KEY", "Brier", "SkyMix", "sky_mix", "weighted_reliability", "CalibrationCurve", "ClassCalibration",
            "CriterionComparison", "FoldSummary", "Importance", "OperatingPoint", "ThresholdCurve",
            "TrainingEvaluation", "evaluate", "purity_at_completeness", "summary_text"]
 
@@ -188,6 +188,107 @@ class CriterionComparison:
 
 
 @dataclass(frozen=True)
+class SkyMix:
+    """Held-out figures at the sky's class mix, and what the default list is expected to hold.
+
+    Labelled rows stand for the sky through importance weights (:func:`selector.jobs.train.sky.sky_weights`);
+    probabilities are the held-out ones moved to the sky mix (Saerens, Latinne & Decaestecker 2002,
+    Neural Computation 14, 21).
+
+    Attributes
+    ----------
+    priors : dict
+        The sky adjustment as the model card shows it.
+    at_threshold : Score-like dict
+        Quasar completeness and purity of held-out P(quasar) on the sky ≥ the threshold, weighted to the sky mix.
+    curve : ThresholdCurve
+        The same at every threshold of :data:`THRESHOLDS` (``selected``: weighted count).
+    reliability : dict
+        Reliability diagram of held-out sky P(quasar) after the adjustment, weighted to the sky mix.
+    expected_purity : float or None
+        Mean sky P(quasar) over the default list a run with this model makes (every scored row).
+    expected_purity_error : float or None
+        Its Poisson-binomial standard deviation.
+    listed : int
+        Length of that list.
+    scored_rows : int
+        Rows the model scores (the population of the sky estimate).
+    """
+
+    priors: dict
+    at_threshold: dict
+    curve: ThresholdCurve
+    reliability: dict
+    expected_purity: float | None
+    expected_purity_error: float | None
+    listed: int
+    scored_rows: int
+
+    def to_dict(self) -> dict:
+        return {"note": _SKY_NOTE, "priors": self.priors, "quasar_at_threshold": self.at_threshold,
+                "threshold_curve": self.curve.to_dict(), "reliability_after_adjustment": self.reliability,
+                "default_list": {"expected_purity": self.expected_purity,
+                                 "expected_purity_error": self.expected_purity_error, "listed": self.listed,
+                                 "scored_rows": self.scored_rows,
+                                 "meaning": "mean P(quasar) on the sky over the list a run with this model makes"}}
+
+
+_SKY_NOTE = ("held-out figures moved to the sky's class mix: probabilities adjusted by the sky proportions "
+             "(Saerens, Latinne & Decaestecker 2002), labelled sources weighted to stand for the sky")
+
+
+def _weighted_score(selected: np.ndarray, positive: np.ndarray, w: np.ndarray) -> dict:
+    tp = float(np.sum(w[selected & positive]))
+    pos = float(np.sum(w[positive]))
+    sel = float(np.sum(w[selected]))
+    return {"completeness": _num(tp / pos) if pos > 0 else None, "purity": _num(tp / sel) if sel > 0 else None,
+            "selected_weight": sel}
+
+
+def weighted_reliability(p: np.ndarray, positive: np.ndarray, w: np.ndarray, n_bins: int = 10) -> dict:
+    """Reliability diagram with row weights, in equal-width bins of predicted probability.
+
+    Observed fraction Σw·y/Σw against mean prediction Σw·p/Σw per bin; the spread expected if the
+    predictions were right is √(Σw²p(1−p))/Σw (the Poisson-binomial deviation of
+    :func:`selector.core.calibration.reliability_table`, with weights; common practice). With unit
+    weights the figures equal that function's ``strategy="uniform"`` table.
+    """
+    edges = np.linspace(0.0, 1.0, n_bins + 1)
+    idx = np.clip(np.searchsorted(edges[1:-1], p, side="right"), 0, n_bins - 1)
+    sw = np.bincount(idx, weights=w, minlength=n_bins)
+    count = np.bincount(idx, minlength=n_bins)
+    mean_p = np.bincount(idx, weights=w * p, minlength=n_bins)
+    obs = np.bincount(idx, weights=w * positive, minlength=n_bins)
+    var = np.bincount(idx, weights=w * w * p * (1 - p), minlength=n_bins)
+    keep = sw > 0
+    return {"lower": edges[:-1][keep].tolist(), "upper": edges[1:][keep].tolist(),
+            "mean_predicted": (mean_p[keep] / sw[keep]).tolist(), "observed": (obs[keep] / sw[keep]).tolist(),
+            "count": count[keep].tolist(), "error": (np.sqrt(var[keep]) / sw[keep]).tolist()}
+
+
+def sky_mix(threshold: float, p_sky: np.ndarray, positive: np.ndarray, weights: np.ndarray, **extra) -> SkyMix:
+    """The held-out figures at the sky mix (see :class:`SkyMix`).
+
+    Parameters
+    ----------
+    threshold : float
+    p_sky : numpy.ndarray
+        Held-out P(quasar) moved to the sky mix, per labelled row.
+    positive : numpy.ndarray of bool
+        Labelled quasars.
+    weights : numpy.ndarray
+        Importance weights of the labelled rows for the sky mix.
+    **extra
+        ``priors``, ``expected_purity``, ``expected_purity_error``, ``listed``, ``scored_rows``.
+    """
+    rows = [_weighted_score(p_sky >= t, positive, weights) for t in THRESHOLDS]
+    curve = ThresholdCurve([r["completeness"] for r in rows], [r["purity"] for r in rows],
+                           [r["selected_weight"] for r in rows])
+    return SkyMix(at_threshold=_weighted_score(p_sky >= threshold, positive, weights), curve=curve,
+                  reliability=weighted_reliability(p_sky, positive.astype(float), weights), **extra)
+
+
+@dataclass(frozen=True)
 class TrainingEvaluation:
     """Held-out figures of one training.
 
@@ -216,6 +317,8 @@ class TrainingEvaluation:
         Every published criterion the configured bands allow.
     best_criterion : str or None
         The criterion purest at :data:`COMPLETENESS_TARGET`.
+    sky : SkyMix or None
+        The figures at the sky mix (set once the sky's proportions are known).
     """
 
     classes: tuple
@@ -233,6 +336,7 @@ class TrainingEvaluation:
     quasar_at_target: OperatingPoint
     criteria: dict
     best_criterion: str | None
+    sky: SkyMix | None = None
 
     def to_dict(self) -> dict:
         """The content of ``evaluation.json``."""
@@ -254,11 +358,12 @@ class TrainingEvaluation:
             "quasar": {TARGET_KEY: self.quasar_at_target.to_dict()},
             "criteria": {name: c.to_dict() for name, c in self.criteria.items()},
             "best_criterion": self.best_criterion,
+            "sky_mix": self.sky.to_dict() if self.sky is not None else None,
         }
 
 
 def _brier(p: np.ndarray, y: np.ndarray) -> float:
-    onehot = np.eye(len(CLASSES))[y]
+    onehot = np.eye(p.shape[1])[y]
     return float(np.mean(np.sum((p - onehot) ** 2, axis=1)))
 
 
@@ -294,7 +399,7 @@ def _threshold_curve(p: np.ndarray, positive: np.ndarray) -> ThresholdCurve:
 
 
 def evaluate(cfg: Config, data: LabelledSet, *, fold: np.ndarray, raw: np.ndarray, calibrated: np.ndarray,
-             importances: np.ndarray) -> TrainingEvaluation:
+             importances: np.ndarray, classes) -> TrainingEvaluation:
     """The held-out figures of out-of-fold predictions.
 
     Parameters
@@ -308,6 +413,8 @@ def evaluate(cfg: Config, data: LabelledSet, *, fold: np.ndarray, raw: np.ndarra
         Out-of-fold probabilities before and after calibration.
     importances : numpy.ndarray, shape (features, repeats)
         Permutation importances of every repeat (NaN where never shuffled).
+    classes : sequence of str
+        The model's classes (``data.y`` indexes them).
 
     Returns
     -------
@@ -316,13 +423,14 @@ def evaluate(cfg: Config, data: LabelledSet, *, fold: np.ndarray, raw: np.ndarra
     y = data.y
     cal = calibrated
     thr = cfg.classifier.threshold
-    positive = {name: y == k for k, name in enumerate(CLASSES)}
+    names = tuple(classes)
+    positive = {name: y == k for k, name in enumerate(names)}
     curves, at_thr = {}, {}
-    for k, name in enumerate(CLASSES):
+    for k, name in enumerate(names):
         curves[name] = _threshold_curve(cal[:, k], positive[name])
         at_thr[name] = completeness_purity(cal[:, k] >= thr, positive[name])
     pred = np.argmax(cal, axis=1)
-    confusion = np.zeros((len(CLASSES), len(CLASSES)), np.int64)
+    confusion = np.zeros((len(names), len(names)), np.int64)
     np.add.at(confusion, (y, pred), 1)
     q = positive["quasar"]
     criteria = {}
@@ -338,9 +446,9 @@ def evaluate(cfg: Config, data: LabelledSet, *, fold: np.ndarray, raw: np.ndarra
         imp_mean, imp_std = np.nanmean(importances, axis=1), np.nanstd(importances, axis=1)
     order = np.argsort(-np.nan_to_num(imp_mean, nan=-np.inf), kind="stable")
     return TrainingEvaluation(
-        classes=tuple(CLASSES),
+        classes=tuple(names),
         rows=int(len(y)),
-        by_class={name: int(positive[name].sum()) for name in CLASSES},
+        by_class={name: int(positive[name].sum()) for name in names},
         folds=FoldSummary(int(cfg.classifier.folds), int(data.group_order), int(len(np.unique(data.groups))),
                           np.bincount(fold, minlength=cfg.classifier.folds).tolist()),
         threshold=thr,
@@ -350,7 +458,7 @@ def evaluate(cfg: Config, data: LabelledSet, *, fold: np.ndarray, raw: np.ndarra
         confusion_counts=confusion.tolist(),
         calibration_curves={name: ClassCalibration(_calibration_curve(raw[:, k], positive[name]),
                                                    _calibration_curve(cal[:, k], positive[name]))
-                            for k, name in enumerate(CLASSES)},
+                            for k, name in enumerate(names)},
         brier=Brier(_brier(raw, y), _brier(cal, y), _brier_quasar(raw, y), _brier_quasar(cal, y)),
         importance=Importance([data.feature_names[j] for j in order], [_num(imp_mean[j]) for j in order],
                               [_num(imp_std[j]) for j in order]),
@@ -367,6 +475,34 @@ def _pct(x) -> str:
 def _ratio(x: float) -> float | None:
     """A :class:`~selector.core.metrics.Score` ratio as shown: None where it is undefined."""
     return None if math.isnan(x) else x
+
+
+def _sky_lines(e: TrainingEvaluation) -> list[str]:
+    k = e.sky
+    pri = k.priors
+    how = {"em": "estimated by EM (Saerens et al. 2002)", "config": "given in classifier.sky_priors"}.get(pri["method"],
+                                                                                                     pri["method"])
+    out = []
+    if "sky" in pri:
+        out.append(f"sky: class proportions among the {k.scored_rows:,d} sources the model scores, {how}: "
+                   + ", ".join(f"{c} {v:.4g}" for c, v in pri["sky"].items())
+                   + " (labelled mix: " + ", ".join(f"{c} {v:.4g}" for c, v in pri["labelled_mix"].items()) + ")")
+    else:
+        out.append(f"sky: class proportions among the {k.scored_rows:,d} sources the model scores, {how}, in "
+                   f"{len(pri['bins'])} bins of {pri['band']} magnitude (see the model card)")
+    if not pri.get("converged", True):
+        out.append("  warning: the EM estimate did not converge; the sky proportions are approximate")
+    lab = e.at_threshold["quasar"]
+    sky = k.at_threshold
+    out.append(f"held-out quasar purity at threshold {e.threshold:.2f}: at the labelled mix {_pct(_ratio(lab.purity))} "
+               f"(completeness {_pct(_ratio(lab.completeness))}); at the sky mix {_pct(sky['purity'])} "
+               f"(completeness {_pct(sky['completeness'])})")
+    if k.expected_purity is None:
+        out.append("expected purity of the default list on the sky: - (the list would be empty)")
+    else:
+        out.append(f"expected purity of the default list on the sky: {k.expected_purity:.1%} ± "
+                   f"{k.expected_purity_error:.1%} (mean P(quasar) on the sky over its {k.listed:,d} candidates)")
+    return out
 
 
 def summary_text(evaluation: TrainingEvaluation, summary: dict, configured=()) -> str:
@@ -387,7 +523,7 @@ def summary_text(evaluation: TrainingEvaluation, summary: dict, configured=()) -
     e = evaluation
     s = summary
     lines = [f"training set: {s['rows']:,d} labelled sources that passed the zero-motion test ("
-             + ", ".join(f"{n} {c:,d}" for n, c in s["by_class"].items()) + ")"]
+             + ", ".join(f"{n} {c:,d}" for n, c in s["by_class"].items() if c) + ")"]
     for name, src in s["sources"].items():
         dropped = sum(src.get("dropped_unknown_class", {}).values())
         lines.append(f"  {name}: {src['rows']:,d} rows, {src['matched']:,d} matched, {src['used']:,d} used"
@@ -397,10 +533,10 @@ def summary_text(evaluation: TrainingEvaluation, summary: dict, configured=()) -
                      + " > ".join(s["precedence"]) + ")")
     f = e.folds
     lines.append(f"cross-validation: {f.n} folds over {f.regions} sky regions (HEALPix order {f.group_order})")
-    lines.append(f"held-out, at threshold {e.threshold:.2f}:   completeness   purity")
-    for name in CLASSES:
+    lines.append(f"held-out at the labelled mix, threshold {e.threshold:.2f}:   completeness   purity")
+    for name in e.classes:
         r = e.at_threshold[name]
-        lines.append(f"  {name:<8} {_pct(_ratio(r.completeness)):>28} {_pct(_ratio(r.purity)):>8}")
+        lines.append(f"  {name:<8} {_pct(_ratio(r.completeness)):>45} {_pct(_ratio(r.purity)):>8}")
     b = e.brier
     lines.append(f"Brier score (held out): raw {b.raw:.4f} → calibrated {b.calibrated:.4f}")
     q = e.quasar_at_target
@@ -422,4 +558,6 @@ def summary_text(evaluation: TrainingEvaluation, summary: dict, configured=()) -
             lines.append(f"  {name} (configured) at its published boundary: completeness "
                          f"{_pct(_ratio(bd.completeness))}, purity {_pct(_ratio(bd.purity))}; the classifier at that "
                          f"completeness: purity {_pct(c.classifier_purity_at_same_completeness)}")
+    if e.sky is not None:
+        lines.extend(_sky_lines(e))
     return "\n".join(lines)

@@ -1,8 +1,9 @@
 """The classifier's inputs, computed from feature-cache columns only.
 
 Features (:func:`feature_specs`): magnitudes, infrared and optical−infrared colours, infrared
-magnitude errors, the zero-motion statistics under the current ``[motion]`` settings, the match
-separation, the blend count and, where mapped, the astrometric fit quality. A band that was not
+magnitude errors, the signed excess over the boundary of every published colour criterion the bands
+allow (so that the model decides, with the criteria as inputs rather than as a gate), the
+zero-motion statistics under the current ``[motion]`` settings, the match separation, the blend count and, where mapped, the astrometric fit quality. A band that was not
 measured stays NaN; the model (histogram gradient boosting) learns where missing values go at
 every split instead of seeing invented values.
 """
@@ -15,8 +16,8 @@ import numpy as np
 import pyarrow as pa
 
 from selector.core import schema
-from selector.core.photometry import vega_to_ab
-from selector.core.selection import MATCH_PROBABILITY_COLUMN, match_method, select
+from selector.core.photometry import CRITERIA, vega_to_ab
+from selector.core.selection import MATCH_PROBABILITY_COLUMN, infrared_mags, match_method, select
 from selector.settings.config import Config
 
 __all__ = ["FeatureSpec", "feature_matrix", "feature_settings", "feature_specs", "zero_motion"]
@@ -63,6 +64,8 @@ def feature_specs(cfg: Config) -> list[FeatureSpec]:
     out += [FeatureSpec(f"opt_{a}_minus_{b}_mag", "mag", f"optical {a} − {b} colour (AB)") for a, b in zip(opt, opt[1:])]
     out += [FeatureSpec(f"opt_{o}_minus_ir_{_ir_suffix(b)}_abmag", "mag", f"optical {o} − {b} micron colour (both AB)")
             for o in opt for b in ir[:2]]
+    out += [FeatureSpec(_excess_name(name), _excess_unit(name), f"signed excess over the boundary of {name} "
+                        f"({c.reference}); positive inside the selection") for name, c in _criteria(cfg).items()]
     out += [
         FeatureSpec("parallax_snr", "", "(parallax − zero point) / error, under the [motion] settings"),
         FeatureSpec("pm_chi2", "", "chi^2 of zero proper motion (2 degrees of freedom), under the [motion] settings"),
@@ -91,6 +94,21 @@ def match_and_shape_features(cfg: Config) -> list[FeatureSpec]:
     if "extended_flag" in cfg.infrared.columns:
         out.append(FeatureSpec(schema.IR_EXTENDED_FLAG_COLUMN, "", "infrared extendedness flag (1 = resolved)"))
     return out
+
+
+def _criteria(cfg: Config) -> dict:
+    """Published criteria whose bands this configuration measures, in registry order."""
+    have = set(cfg.infrared_bands())
+    return {name: c for name, c in CRITERIA.items() if set(c.bands) <= have}
+
+
+def _excess_unit(name: str) -> str:
+    # the three-band wedge measures its margin in dex of flux ratio, the others in magnitudes
+    return "dex" if "wedge" in name else "mag"
+
+
+def _excess_name(name: str) -> str:
+    return f"excess_{name}_{_excess_unit(name)}"
 
 
 def _column(table: pa.Table, name: str) -> np.ndarray:
@@ -146,10 +164,19 @@ def feature_matrix(table: pa.Table, cfg: Config, names=None, statistics=None) ->
     ir_ab = {}
     for b in cfg.infrared_bands():
         ir_ab[_ir_suffix(b)] = vega_to_ab(_column(table, schema.infrared_mag_column(b)), b)
+    excess = {}
+    wanted = {_excess_name(n): c for n, c in _criteria(cfg).items()}
+    if any(name in wanted for name in names):
+        mags = infrared_mags(table, cfg.infrared_bands())
+        with np.errstate(invalid="ignore"):
+            excess = {name: np.asarray(c.select(mags).excess_mag, np.float64) for name, c in wanted.items()
+                      if name in names}
     out = np.empty((table.num_rows, len(names)), np.float64)
     with np.errstate(invalid="ignore"):
         for j, name in enumerate(names):
-            if name == "parallax_snr":
+            if name in excess:
+                values = excess[name]
+            elif name == "parallax_snr":
                 values = plx_snr
             elif name == "pm_chi2":
                 values = chi2

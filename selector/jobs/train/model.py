@@ -1,45 +1,55 @@
-"""Folds, the estimator, calibration and training.
+"""Folds, the estimator, calibration, the classes a label set supports, and training.
 
 Honesty of the figures:
 
 * folds are whole sky regions (HEALPix pixels at ``classifier.group_order``, never finer than a
   tile), so neighbouring sources, which share depth, crowding and extinction, never sit on both
   sides of a split;
-* every held-out prediction comes from a model that did not see the row, and the calibration
-  applied to a fold is fitted on the other folds' out-of-fold predictions.
+* every held-out prediction comes from a model that did not see the row, and the calibration map
+  applied to a fold is fitted on the other folds' out-of-fold predictions only (cross-fitting,
+  :func:`selector.core.calibration.cross_fit_calibration`), so no row's label touches its own
+  held-out probability.
 
 The final model is fitted on every labelled row; its calibration maps are fitted on all the
-out-of-fold predictions (the scheme of scikit-learn's ``CalibratedClassifierCV`` with
-``ensemble=False``).
+out-of-fold predictions. The maps are strictly increasing (logistic or beta,
+:class:`selector.core.calibration.OneVsRestCalibrator`), so distinct scores keep distinct
+probabilities and the ranking has no plateaus.
 """
 
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from functools import lru_cache
 from pathlib import Path
 
 import numpy as np
 import pyarrow as pa
+import pyarrow.compute as pc
 
+from selector.core.calibration import OneVsRestCalibrator, cross_fit_calibration
+from selector.core.novelty import NoveltyModel
+from selector.core.selection import ModelScores, select, tile_rejects
 from selector.errors import SelectorError
 from selector.jobs.train.evaluation import TrainingEvaluation, evaluate
 from selector.jobs.train.features import feature_matrix, zero_motion
-from selector.jobs.train.labels import CLASSES, QUASAR, LabelledSet
+from selector.jobs.train.labels import CLASSES, QUASAR, LabelledSet, feature_cache
+from selector.jobs.train.sky import (PriorAdjustment, ScoredPopulation, band_column, identity, log_posteriors)
 from selector.settings.config import Config
 
-__all__ = ["Model", "TrainOutputs", "TrainResult", "apply_calibrators", "fit_calibrators", "grouped_folds",
-           "make_estimator", "raw_proba", "thread_controller", "train_labelled"]
+__all__ = ["ClassPlan", "Model", "TrainOutputs", "TrainResult", "grouped_folds", "make_estimator", "plan_classes",
+           "raw_proba", "score_population", "thread_controller", "train_labelled"]
 
 #: Held-out rows (over all folds together) used for permutation importances: their cost grows as
 #: features × repeats × rows × trees, while the ranking of the features settles with far fewer rows.
 _IMPORTANCE_ROWS = 5_000
 #: Rows scored at a time.
 _SCORE_BLOCK_ROWS = 1 << 20
+#: Rows of the scored population sampled for the coverage test (it subsamples to this anyway).
+_COVERAGE_ROWS = 5_000
 
 
-def grouped_folds(groups: np.ndarray, y: np.ndarray, n_folds: int, seed: int) -> np.ndarray:
+def grouped_folds(groups: np.ndarray, y: np.ndarray, n_folds: int, seed: int, *, classes=CLASSES) -> np.ndarray:
     """Fold index of every row; all rows of a sky region share a fold, class mix kept similar.
 
     Parameters
@@ -50,6 +60,8 @@ def grouped_folds(groups: np.ndarray, y: np.ndarray, n_folds: int, seed: int) ->
         Class index of every row.
     n_folds : int
     seed : int
+    classes : sequence of str
+        Names of the class indices (for the message about a fold without a class).
 
     Returns
     -------
@@ -71,7 +83,7 @@ def grouped_folds(groups: np.ndarray, y: np.ndarray, n_folds: int, seed: int) ->
     for k, (_, test) in enumerate(splitter.split(np.zeros((len(y), 1)), y, groups)):
         fold[test] = k
     for k in range(n_folds):
-        missing = [CLASSES[c] for c in range(len(CLASSES)) if not np.any(y[fold != k] == c)]
+        missing = [classes[c] for c in np.unique(y) if not np.any(y[fold != k] == c)]
         if missing:
             raise SelectorError(f"cross-validation fold {k + 1} would train without any source of class {missing[0]}: "
                                 "those labels lie in too few sky regions; lower classifier.folds or raise "
@@ -100,128 +112,222 @@ def make_estimator(cfg: Config, seed: int):
         class_weight="balanced" if c.class_weight == "balanced" else None, random_state=seed)
 
 
-def raw_proba(estimator, X: np.ndarray) -> np.ndarray:
-    """Uncalibrated probabilities in :data:`CLASSES` order (a class absent from training gets zero).
+def raw_proba(estimator, X: np.ndarray, n_classes: int | None = None) -> np.ndarray:
+    """Uncalibrated probabilities in the model's class order (a class absent from training gets zero).
 
     Parameters
     ----------
     estimator : fitted classifier
     X : numpy.ndarray, shape (rows, features)
+    n_classes : int, optional
+        Columns of the result (default: the estimator's classes).
 
     Returns
     -------
     numpy.ndarray, shape (rows, classes)
     """
     p = estimator.predict_proba(X)
-    out = np.zeros((len(X), len(CLASSES)))
+    k = len(estimator.classes_) if n_classes is None else n_classes
+    out = np.zeros((len(X), k))
     out[:, np.asarray(estimator.classes_, np.int64)] = p
     return out
 
 
-_EPS = 1e-6
 
+@dataclass(frozen=True)
+class ClassPlan:
+    """The classes a label set supports, after merging or dropping classes with too few labels.
 
-def _logit(p: np.ndarray) -> np.ndarray:
-    p = np.clip(p, _EPS, 1.0 - _EPS)
-    return np.log(p / (1.0 - p))
-
-
-def fit_calibrators(raw: np.ndarray, y: np.ndarray, method: str) -> list:
-    """One map per class from raw to calibrated probability, fitted one class against the rest.
-
-    Parameters
+    Attributes
     ----------
-    raw : numpy.ndarray, shape (rows, classes)
+    classes : tuple of str
+        The model's classes, quasar first, in the order of :data:`CLASSES`.
     y : numpy.ndarray of int
-    method : {"sigmoid", "isotonic"}
-
-    Returns
-    -------
-    list
-        One fitted map per class.
+        Model class of every kept labelled row.
+    keep : numpy.ndarray of bool
+        Labelled rows kept (rows of a dropped class are not).
+    messages : tuple of str
+        One line per class merged or dropped, naming it and saying why.
     """
-    from sklearn.isotonic import IsotonicRegression
-    from sklearn.linear_model import LogisticRegression
 
-    out = []
-    for k in range(len(CLASSES)):
-        target = (y == k).astype(np.float64)
-        if method == "isotonic":
-            m = IsotonicRegression(y_min=0.0, y_max=1.0, increasing=True, out_of_bounds="clip")
-            m.fit(raw[:, k], target)
-        else:
-            m = LogisticRegression(C=1e6, max_iter=1000)
-            m.fit(_logit(raw[:, k])[:, None], target.astype(np.int64))
-        out.append(m)
-    return out
+    classes: tuple
+    y: np.ndarray
+    keep: np.ndarray
+    messages: tuple
 
 
-def apply_calibrators(raw: np.ndarray, calibrators: list) -> np.ndarray:
-    """Calibrated class probabilities, renormalised to sum to one (uniform where all maps give 0).
+def plan_classes(y_labels: np.ndarray, minimum: int, *, folds: int) -> ClassPlan:
+    """Decide the model's classes from the labels: any two or more, quasar always among them.
+
+    A class other than quasar with fewer than ``minimum`` labels cannot be learnt or calibrated on
+    its own: all such classes (with "other" if it is small too) are pooled into "other", which is
+    kept if the pool reaches ``minimum`` and dropped otherwise.
 
     Parameters
     ----------
-    raw : numpy.ndarray, shape (rows, classes)
-    calibrators : list
-        From :func:`fit_calibrators`.
+    y_labels : numpy.ndarray of int
+        Index into :data:`CLASSES` of every labelled row.
+    minimum : int
+        Smallest number of labels of a class (``classifier.min_class_labels``; at least two per fold).
+    folds : int
 
     Returns
     -------
-    numpy.ndarray, shape (rows, classes)
-    """
-    from sklearn.isotonic import IsotonicRegression
+    ClassPlan
 
-    cal = np.empty_like(raw)
-    for k, m in enumerate(calibrators):
-        if isinstance(m, IsotonicRegression):
-            cal[:, k] = m.predict(raw[:, k])
+    Raises
+    ------
+    SelectorError
+        Too few quasar labels, or fewer than two classes left.
+    """
+    need = max(int(minimum), 2 * int(folds))
+    counts = np.bincount(y_labels, minlength=len(CLASSES))
+    why = (f"fewer than {need} (classifier.min_class_labels = {minimum}"
+           + (f", and 2 per fold with classifier.folds = {folds}" if 2 * folds > minimum else "") + ")")
+    present = [CLASSES[k] for k in range(len(CLASSES)) if counts[k] > 0]
+    if len(present) < 2:
+        only = present[0] if present else "none"
+        raise SelectorError(f"the labels that pass the zero-motion test hold one class only ({only}, "
+                            f"{int(counts.sum()):,d} sources); training needs two or more: add labels of another class "
+                            "(stars, galaxies, or anything not a quasar mapped to \"other\" in classifier.class_map)")
+    if counts[QUASAR] < need:
+        raise SelectorError(f"only {int(counts[QUASAR]):,d} labelled quasars pass the zero-motion test, {why}: add "
+                            "quasar labels (e.g. a labelled file in [classifier.labels]) or check classifier.class_map")
+    other = CLASSES.index("other")
+    small = [k for k in range(len(CLASSES)) if k != QUASAR and 0 < counts[k] < need]
+    mapping = np.arange(len(CLASSES))
+    messages = []
+    if small:
+        pool = set(small) | ({other} if counts[other] > 0 else set())
+        pooled = int(sum(counts[k] for k in pool))
+        names = [CLASSES[k] for k in small]
+        if pooled >= need:
+            for k in pool:
+                mapping[k] = other
+            for k in small:
+                if k != other:
+                    messages.append(f"class {CLASSES[k]}: {int(counts[k]):,d} labels, {why}: merged into other "
+                                    f"({pooled:,d} labels together)")
         else:
-            cal[:, k] = m.predict_proba(_logit(raw[:, k])[:, None])[:, 1]
-    total = cal.sum(axis=1, keepdims=True)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        cal = np.where(total > 0, cal / total, 1.0 / len(CLASSES))
-    return cal
+            for k in small:
+                mapping[k] = -1
+            messages.append(f"class{'es' if len(names) > 1 else ''} {', '.join(names)}: "
+                            f"{', '.join(f'{int(counts[k]):,d}' for k in small)} labels, {why}, and too few to make a "
+                            f"class \"other\" together: dropped (their sources are left out of training)")
+    mapped = mapping[y_labels]
+    keep = mapped >= 0
+    kept = sorted(set(mapped[keep].tolist()))
+    classes = tuple(CLASSES[k] for k in kept)
+    if len(classes) < 2:
+        raise SelectorError(f"the labels that pass the zero-motion test leave only the class quasar "
+                            f"({int(counts[QUASAR]):,d}) once the small classes are set aside ({'; '.join(messages)}); "
+                            "training needs two or more classes: add labels of another class, or lower "
+                            "classifier.min_class_labels")
+    index = {k: i for i, k in enumerate(kept)}
+    y = np.array([index[k] for k in mapped[keep].tolist()], np.int64)
+    return ClassPlan(classes, y, keep, tuple(messages))
+
+
+def decisions(calibration: OneVsRestCalibrator, raw: np.ndarray) -> np.ndarray:
+    """Calibrated log-odds of every class, shape (rows, classes); never saturated."""
+    if len(raw) == 0:
+        return np.zeros((0, len(calibration.maps)))
+    return np.column_stack([m.decision(raw[:, j]) for j, m in enumerate(calibration.maps)])
 
 
 class Model:
-    """A trained classifier: the boosting model, its calibration maps and its feature list.
+    """A trained classifier: the boosting model, its calibration maps, the sky adjustment, the novelty model.
 
     Parameters
     ----------
     estimator : fitted classifier
-    calibrators : list
+    calibration : OneVsRestCalibrator
     feature_names : sequence of str
+    classes : sequence of str
+        The model's classes, quasar first.
+    priors : PriorAdjustment, optional
+        The move to the sky mix (default: none, the labelled mix).
+    novelty : NoveltyModel, optional
     card : dict, optional
         The model card (JSON content), once written or read.
     """
 
-    def __init__(self, estimator, calibrators: list, feature_names: list, card: dict | None = None):
+    def __init__(self, estimator, calibration: OneVsRestCalibrator, feature_names, classes, *,
+                 priors: PriorAdjustment | None = None, novelty: NoveltyModel | None = None,
+                 card: dict | None = None):
         self.estimator = estimator
-        self.calibrators = calibrators
+        self.calibration = calibration
         self.feature_names = list(feature_names)
+        self.classes = tuple(classes)
+        self.priors = priors
+        self.novelty = novelty
         self.card = card or {}
 
-    def predict_proba(self, X: np.ndarray) -> np.ndarray:
-        """Calibrated P(quasar), P(star), P(galaxy) for a feature matrix, shape (rows, 3)."""
-        if len(X) == 0:
-            return np.zeros((0, len(CLASSES)))
-        return apply_calibrators(raw_proba(self.estimator, X), self.calibrators)
+    def decisions(self, X: np.ndarray) -> np.ndarray:
+        """Calibrated log-odds of every class at the labelled mix, shape (rows, classes)."""
+        return decisions(self.calibration, raw_proba(self.estimator, X, len(self.classes)))
 
-    def score_table(self, table: pa.Table, cfg: Config) -> np.ndarray:
-        """P(quasar) of every row of a feature table; NaN for rows that fail the zero-motion test."""
-        out = np.full(table.num_rows, np.nan)
+    def predict_proba(self, X: np.ndarray) -> np.ndarray:
+        """Calibrated class probabilities at the labelled mix, shape (rows, classes)."""
+        if len(X) == 0:
+            return np.zeros((0, len(self.classes)))
+        return np.exp(log_posteriors(self.decisions(X)))
+
+    def scores(self, X: np.ndarray, mags=None) -> ModelScores:
+        """Sky and labelled-mix P(quasar), the sky log-odds and the novelty of feature rows.
+
+        Parameters
+        ----------
+        X : numpy.ndarray, shape (rows, features)
+        mags : numpy.ndarray, optional
+            The sky bins' band magnitude of every row (only with binned sky proportions).
+        """
+        n = len(X)
+        d = self.decisions(X) if n else np.zeros((0, len(self.classes)))
+        lab = log_posteriors(d)
+        if self.priors is not None:
+            bins = self.priors.bin_index(np.full(n, np.nan) if mags is None else mags)
+            sky = log_posteriors(d, self.priors.log_weights(bins))
+        else:
+            sky = lab
+        others = np.delete(sky, QUASAR, axis=1)
+        from_logs = np.logaddexp.reduce(others, axis=1) if n else np.zeros(0)
+        with np.errstate(invalid="ignore"):
+            log_odds = sky[:, QUASAR] - from_logs
+        if self.novelty is not None and n:
+            nov = self.novelty.score(X)
+            distance, beyond = nov.distance, nov.flag
+        else:
+            distance, beyond = np.full(n, np.nan), np.zeros(n, bool)
+        return ModelScores(np.exp(sky[:, QUASAR]), np.exp(lab[:, QUASAR]), log_odds, distance, beyond)
+
+    def _mags(self, table: pa.Table) -> np.ndarray | None:
+        if self.priors is None or not self.priors.band:
+            return None
+        name = band_column(self.priors.band)
+        if name not in table.column_names:
+            return np.full(table.num_rows, np.nan)
+        return table.column(name).to_numpy(zero_copy_only=False).astype(np.float64)
+
+    def score_table(self, table: pa.Table, cfg: Config) -> ModelScores:
+        """Scores of every row of a feature table; NaN (and not beyond training) for rows failing the zero-motion test."""
+        n = table.num_rows
+        out = [np.full(n, np.nan), np.full(n, np.nan), np.full(n, np.nan), np.full(n, np.nan), np.zeros(n, bool)]
         # blocks of rows bound the temporaries when a whole feature cache is scored at once
-        for lo in range(0, table.num_rows, _SCORE_BLOCK_ROWS):
+        for lo in range(0, n, _SCORE_BLOCK_ROWS):
             part = table.slice(lo, _SCORE_BLOCK_ROWS)
             passed, plx_snr, chi2 = zero_motion(part, cfg)
             idx = np.flatnonzero(passed)
             if len(idx) == 0:
                 continue
-            X = feature_matrix(part.take(pa.array(idx, pa.int64())), cfg, self.feature_names, (plx_snr[idx], chi2[idx]))
+            rows = part.take(pa.array(idx, pa.int64()))
+            X = feature_matrix(rows, cfg, self.feature_names, (plx_snr[idx], chi2[idx]))
             # tiles run in parallel processes; threads inside each would only compete for the cores
             with thread_controller().limit(limits=1):
-                out[lo + idx] = self.predict_proba(X)[:, QUASAR]
-        return out
+                s = self.scores(X, self._mags(rows))
+            for column, values in zip(out, s):
+                column[lo + idx] = values
+        return ModelScores(*out)
 
 
 @lru_cache(maxsize=1)
@@ -301,23 +407,38 @@ class TrainResult:
         Per labelled row: id, tile, region, fold, label, raw and calibrated probabilities.
     outputs : TrainOutputs or None
         Paths written (None until the model files are written).
+    plan : ClassPlan
+        The classes learnt and the labelled rows kept.
+    held_out_proba : numpy.ndarray, shape (kept rows, classes)
+        Cross-fitted calibrated probabilities at the labelled mix.
+    fold : numpy.ndarray of int
+        Fold of every kept labelled row.
+    sky : dict
+        The sky estimate's account for the card and the summary (set by :func:`selector.jobs.train.train`).
     """
 
     model: Model
     evaluation: TrainingEvaluation
     held_out: pa.Table
     outputs: TrainOutputs | None = None
+    plan: ClassPlan | None = None
+    held_out_proba: np.ndarray | None = None
+    fold: np.ndarray | None = None
+    sky: dict = field(default_factory=dict)
 
 
 def train_labelled(cfg: Config, data: LabelledSet, log=print) -> TrainResult:
-    """Cross-validate, evaluate and fit the final model on a labelled set (nothing written).
+    """Cross-validate, calibrate (cross-fitted), evaluate and fit the final model on a labelled set (nothing written).
+
+    The model's sky adjustment is left at the labelled mix; :func:`selector.jobs.train.train`
+    estimates the sky's proportions afterwards over the feature cache.
 
     Parameters
     ----------
     cfg : Config
     data : LabelledSet
     log : callable
-        Receives a line per fold.
+        Receives a line per fold, and one per class merged or dropped.
 
     Returns
     -------
@@ -326,7 +447,7 @@ def train_labelled(cfg: Config, data: LabelledSet, log=print) -> TrainResult:
     Raises
     ------
     SelectorError
-        Too few labels of a class, or too few sky regions for the folds.
+        Too few labelled quasars, a single class, or too few sky regions for the folds.
     """
     # sums over threads round differently with the thread count, and idle threads spin on a busy
     # machine; classifier.threads = 1 (the default) avoids both
@@ -337,42 +458,109 @@ def train_labelled(cfg: Config, data: LabelledSet, log=print) -> TrainResult:
 def _train_labelled(cfg: Config, data: LabelledSet, log) -> TrainResult:
     c = cfg.classifier
     seed = cfg.project.seed
-    y, X = data.y, data.X
-    counts = np.bincount(y, minlength=len(CLASSES))
-    short = [CLASSES[k] for k in range(len(CLASSES)) if counts[k] < 2 * c.folds]
-    if short:
-        n = int(counts[CLASSES.index(short[0])])
-        raise SelectorError(f"only {n} labelled sources of class {short[0]} pass the zero-motion test; training needs "
-                            f"at least {2 * c.folds} of every class with classifier.folds = {c.folds}: add {short[0]} "
-                            "labels (e.g. a labelled file in [classifier.labels]) or check classifier.class_map")
-    fold = grouped_folds(data.groups, y, c.folds, seed)
-    raw = np.zeros((len(y), len(CLASSES)))
+    plan = plan_classes(data.y, c.min_class_labels, folds=c.folds)
+    for line in plan.messages:
+        log(line)
+    classes, y, keep = plan.classes, plan.y, plan.keep
+    X, groups = data.X[keep], data.groups[keep]
+    k = len(classes)
+    fold = grouped_folds(groups, y, c.folds, seed, classes=classes)
+    raw = np.zeros((len(y), k))
     importances = []
-    for k in range(c.folds):
-        train_rows, test_rows = fold != k, fold == k
+    for f in range(c.folds):
+        train_rows, test_rows = fold != f, fold == f
         est = make_estimator(cfg, seed).fit(X[train_rows], y[train_rows])
-        raw[test_rows] = raw_proba(est, X[test_rows])
-        importances.append(_importances(est, X[test_rows], y[test_rows], seed=seed + k, repeats=c.permutation_repeats,
+        raw[test_rows] = raw_proba(est, X[test_rows], k)
+        importances.append(_importances(est, X[test_rows], y[test_rows], seed=seed + f, repeats=c.permutation_repeats,
                                         max_rows=math.ceil(_IMPORTANCE_ROWS / c.folds)))
-        log(f"  fold {k + 1} of {c.folds}: trained on {int(train_rows.sum()):,d}, held out {int(test_rows.sum()):,d}")
-    # the calibration applied to a fold is fitted on the other folds' out-of-fold predictions
-    cal = np.zeros_like(raw)
-    for k in range(c.folds):
-        maps = fit_calibrators(raw[fold != k], y[fold != k], c.calibration)
-        cal[fold == k] = apply_calibrators(raw[fold == k], maps)
+        log(f"  fold {f + 1} of {c.folds}: trained on {int(train_rows.sum()):,d}, held out {int(test_rows.sum()):,d}")
+    # cross-fitting: the map applied to a fold is fitted on the other folds' out-of-fold predictions
+    crossed = cross_fit_calibration(raw, y, fold, method=c.calibration)
+    held_d = np.zeros_like(raw)
+    for fid, maps in zip(crossed.folds, crossed.fold_maps):
+        rows = fold == fid
+        held_d[rows] = decisions(maps, raw[rows])
+    cal = np.exp(log_posteriors(held_d))
     final = make_estimator(cfg, seed).fit(X, y)
-    final_maps = fit_calibrators(raw, y, c.calibration)
     imp = np.concatenate(importances, axis=1)
-    evaluation = evaluate(cfg, data, fold=fold, raw=raw, calibrated=cal, importances=imp)
-    model = Model(final, final_maps, data.feature_names)
+    train_mix = np.bincount(y, minlength=k) / len(y)
+    kept = LabelledSet(data.table.filter(pa.array(keep)), X, y, groups, data.feature_names, data.group_order,
+                       data.summary)
+    evaluation = evaluate(cfg, kept, fold=fold, raw=raw, calibrated=cal, importances=imp, classes=classes)
+    novelty = NoveltyModel(k=c.novelty_neighbours, quantile=c.novelty_quantile).fit(X, data.feature_names)
+    model = Model(final, crossed.final, data.feature_names, classes, priors=identity(classes, train_mix),
+                  novelty=novelty)
     held = pa.table({
-        "astro_id": data.table.column("astro_id"),
-        "tile": data.table.column("tile"),
-        "region": pa.array(data.groups),
+        "astro_id": kept.table.column("astro_id"),
+        "tile": kept.table.column("tile"),
+        "region": pa.array(groups),
         "fold": pa.array(fold),
-        "label": data.table.column("label"),
-        "label_source": data.table.column("label_source"),
-        **{f"p_{name}_raw": pa.array(raw[:, k]) for k, name in enumerate(CLASSES)},
-        **{f"p_{name}": pa.array(cal[:, k]) for k, name in enumerate(CLASSES)},
+        "label": kept.table.column("label"),
+        "model_class": pa.array([classes[j] for j in y], pa.string()),
+        "label_source": kept.table.column("label_source"),
+        **{f"p_{name}_raw": pa.array(raw[:, j]) for j, name in enumerate(classes)},
+        **{f"p_{name}_labelled_mix": pa.array(cal[:, j]) for j, name in enumerate(classes)},
     })
-    return TrainResult(model, evaluation, held)
+    return TrainResult(model, evaluation, held, plan=plan, held_out_proba=cal, fold=fold)
+
+
+def score_population(cfg: Config, result: TrainResult, data: LabelledSet) -> ScoredPopulation:
+    """Score every row a run would score (usable, zero-motion passing rows of every tile) for the sky estimate.
+
+    Labelled rows enter with their held-out probabilities (the final model has seen their labels);
+    the run's own probabilities (the final model's) are kept too, for the list the run will make.
+
+    Parameters
+    ----------
+    cfg : Config
+    result : TrainResult
+        From :func:`train_labelled`.
+    data : LabelledSet
+        The labelled set ``result`` was trained on.
+
+    Returns
+    -------
+    ScoredPopulation
+    """
+    model = result.model
+    k = len(model.classes)
+    keep = result.plan.keep
+    lab_ids = pc.cast(data.table.column("astro_id"), pa.string()).filter(pa.array(keep)).combine_chunks()
+    rng = np.random.default_rng(cfg.project.seed)
+    parts_d, parts_em, parts_m, parts_cut = [], [], [], []
+    sample_keys, sample_rows = np.zeros(0), np.zeros((0, len(model.feature_names)))
+    for table in feature_cache(cfg):
+        usable = table.filter(pa.array(~tile_rejects(table)))
+        if usable.num_rows == 0:
+            continue
+        # every cut of the run but the classifier's threshold (a probability of one passes it)
+        others = select(usable, cfg, np.ones(usable.num_rows)).passed
+        passed, plx_snr, chi2 = zero_motion(usable, cfg)
+        idx = np.flatnonzero(passed)
+        if len(idx) == 0:
+            continue
+        rows = usable.take(pa.array(idx, pa.int64()))
+        X = feature_matrix(rows, cfg, model.feature_names, (plx_snr[idx], chi2[idx]))
+        with thread_controller().limit(limits=cfg.classifier.threads or None):
+            d = model.decisions(X)
+        em = np.exp(log_posteriors(d))
+        at = pc.fill_null(pc.index_in(pc.cast(rows.column("astro_id"), pa.string()), value_set=lab_ids), -1)
+        at = at.to_numpy(zero_copy_only=False)
+        hit = at >= 0
+        em[hit] = result.held_out_proba[at[hit]]
+        parts_d.append(d)
+        parts_em.append(em)
+        mags = model._mags(rows)
+        parts_m.append(np.full(len(idx), np.nan) if mags is None else mags)
+        parts_cut.append(others[idx])
+        # a seeded uniform sample over all tiles: keep the rows with the smallest random keys
+        keys = np.concatenate([sample_keys, rng.random(len(idx))])
+        pool = np.concatenate([sample_rows, X])
+        pick = np.sort(np.argsort(keys, kind="stable")[:_COVERAGE_ROWS])
+        sample_keys, sample_rows = keys[pick], pool[pick]
+
+    def joined(parts, shape):
+        return np.concatenate(parts) if parts else np.zeros(shape)
+
+    return ScoredPopulation(joined(parts_d, (0, k)), joined(parts_em, (0, k)), joined(parts_m, (0,)),
+                            joined(parts_cut, (0,)).astype(bool), sample_rows)

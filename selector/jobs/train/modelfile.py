@@ -20,29 +20,33 @@ import pyarrow as pa
 
 from selector import __version__
 from selector.errors import SelectorError
+from selector.core.calibration import OneVsRestCalibrator
+from selector.core.novelty import NoveltyModel
+from selector.core.selection import ModelScores
 from selector.jobs.train.features import feature_settings, feature_specs
 from selector.jobs.train.labels import CLASSES, LabelledSet
 from selector.jobs.train.model import Model, TrainOutputs, TrainResult
+from selector.jobs.train.sky import PriorAdjustment
 from selector.settings.config import MATCH_SECTIONS, Config, config_hash, plain
 from selector.store.io import atomic_path, write_json, write_parquet
 from selector.store.layout import EVALUATION_FILE, MODEL_FILE, PREDICTIONS_FILE, card_path, classifier_dir
 
 __all__ = ["TRUSTED_TYPES", "archive_types", "build_bundle", "load_model", "load_scorer", "model_bytes",
-           "write_model_files"]
+           "model_from_bundle", "write_model_files"]
 
 _CARD_FORMAT = "selector-classifier-card"
 _BUNDLE_FORMAT = "selector-classifier"
-_FORMAT_VERSION = 1
+_FORMAT_VERSION = 2
 
-#: Every type a model archive may hold: exactly what ``selector train`` writes (the model, its
-#: binning and loss objects, the calibration maps, numpy arrays and scalars, plain containers).
-#: Anything else in a file is refused before any object is built from it.
+#: Every type a model archive may hold: exactly what ``selector train`` writes (the boosting model,
+#: its binning and loss objects, numpy arrays and scalars, plain containers). The calibration maps,
+#: the sky adjustment and the novelty model are stored as plain numpy arrays, never as objects of
+#: their own. Anything else in a file is refused before any object is built from it.
 TRUSTED_TYPES = (
     "builtins.dict",
     "builtins.list",
     "builtins.str",
     "builtins.tuple",
-    "numpy.float64",
     "numpy.ndarray",
     "numpy.random._generator.Generator",
     "numpy.uint64",
@@ -53,8 +57,6 @@ TRUSTED_TYPES = (
     "sklearn.ensemble._hist_gradient_boosting.binning._BinMapper",
     "sklearn.ensemble._hist_gradient_boosting.gradient_boosting.HistGradientBoostingClassifier",
     "sklearn.ensemble._hist_gradient_boosting.predictor.TreePredictor",
-    "sklearn.isotonic.IsotonicRegression",
-    "sklearn.linear_model._logistic.LogisticRegression",
     "sklearn.preprocessing._label.LabelEncoder",
 )
 
@@ -130,9 +132,35 @@ def _canonical_archive(data: bytes) -> bytes:
     return buf.getvalue()
 
 
+def _calibration_arrays(cal: OneVsRestCalibrator) -> dict:
+    d = cal.to_dict()
+    return {"method": np.array(d["method"], dtype=str), "min_slope": np.array(d["min_slope"]),
+            "l2": np.array(d["l2"]), "abc": np.array([[m["a"], m["b"], m["c"]] for m in d["maps"]], np.float64)}
+
+
+def _calibration_from_arrays(a: dict) -> OneVsRestCalibrator:
+    method, min_slope, l2 = str(a["method"]), float(a["min_slope"]), float(a["l2"])
+    maps = [{"method": method, "a": float(r[0]), "b": float(r[1]), "c": float(r[2]), "min_slope": min_slope, "l2": l2}
+            for r in np.asarray(a["abc"], np.float64)]
+    return OneVsRestCalibrator.from_dict({"method": method, "min_slope": min_slope, "l2": l2, "maps": maps})
+
+
 def _bundle(model: Model) -> dict:
-    return {"format": _BUNDLE_FORMAT, "format_version": str(_FORMAT_VERSION), "classes": list(CLASSES),
-            "features": list(model.feature_names), "estimator": model.estimator, "calibrators": list(model.calibrators)}
+    """The archive's content: named estimators and named groups of plain arrays (room for more of each)."""
+    return {"format": _BUNDLE_FORMAT, "format_version": str(_FORMAT_VERSION), "classes": list(model.classes),
+            "features": list(model.feature_names),
+            "estimators": {"classifier": model.estimator},
+            "arrays": {"calibration": _calibration_arrays(model.calibration),
+                       "sky_priors": model.priors.to_arrays(),
+                       "novelty": model.novelty.to_arrays()}}
+
+
+def model_from_bundle(bundle: dict, card: dict | None = None) -> Model:
+    """The :class:`Model` a checked bundle holds (see :func:`build_bundle`)."""
+    arrays = bundle["arrays"]
+    return Model(bundle["estimators"]["classifier"], _calibration_from_arrays(arrays["calibration"]),
+                 bundle["features"], bundle["classes"], priors=PriorAdjustment.from_arrays(arrays["sky_priors"]),
+                 novelty=NoveltyModel.from_arrays(arrays["novelty"]), card=card)
 
 
 def _versions() -> dict:
@@ -169,9 +197,8 @@ def model_bytes(model: Model, probe: np.ndarray) -> bytes:
     untrusted = [t for t in archive_types(data) if t not in TRUSTED_TYPES]
     if untrusted:
         raise SelectorError(f"internal error: the model holds {untrusted[0]}, which is not in TRUSTED_TYPES")
-    back = build_bundle(data, Path("(new model)"))
-    if not np.array_equal(Model(back["estimator"], back["calibrators"], back["features"]).predict_proba(probe),
-                          model.predict_proba(probe)):
+    back = model_from_bundle(build_bundle(data, Path("(new model)")))
+    if not all(np.array_equal(a, b, equal_nan=True) for a, b in zip(back.scores(probe), model.scores(probe))):
         raise SelectorError("internal error: the written model does not reproduce the trained model's predictions")
     return data
 
@@ -184,9 +211,11 @@ def _card(cfg: Config, data: LabelledSet, result: TrainResult, sha256: str) -> d
         "format_version": _FORMAT_VERSION,
         "model_file": MODEL_FILE,
         "model_sha256": sha256,
-        "purpose": "P(quasar), P(star), P(galaxy) for sources that passed the zero-motion test; a statistical "
-                   "ranking for follow-up, not a classification: spectroscopy decides",
-        "classes": list(CLASSES),
+        "purpose": "P(" + "), P(".join(result.model.classes) + ") for sources that passed the zero-motion test, "
+                   "on the sky and at the labelled mix; a statistical ranking for follow-up, not a classification: "
+                   "spectroscopy decides",
+        "classes": list(result.model.classes),
+        "classes_merged_or_dropped": list(result.plan.messages) if result.plan else [],
         "brown_dwarfs": "counted as stars",
         "features": [{"name": f.name, "unit": f.unit, "description": f.description} for f in feature_specs(cfg)],
         "feature_settings": feature_settings(cfg),
@@ -196,9 +225,38 @@ def _card(cfg: Config, data: LabelledSet, result: TrainResult, sha256: str) -> d
                   "hyperparameters": {k: getattr(cfg.classifier, k) for k in
                                       ("max_iter", "learning_rate", "max_leaf_nodes", "min_samples_leaf",
                                        "l2_regularization", "class_weight")},
-                  "calibration": f"{cfg.classifier.calibration}, one class against the rest on out-of-fold "
-                                 "predictions, renormalised",
+                  "calibration": {
+                      "maps": f"{cfg.classifier.calibration} (strictly increasing: distinct scores keep distinct "
+                              "probabilities), one class against the rest, renormalised",
+                      "scheme": "cross-fitted: the held-out probabilities of a fold come from a fold model that did "
+                                "not see it and a map fitted on the other folds' out-of-fold predictions only; the "
+                                "final map is fitted on all out-of-fold predictions and applied to the final model, "
+                                "which is fitted on every labelled source",
+                      "class_mix": "the boosting model is fitted with class_weight = "
+                                   f"{cfg.classifier.class_weight!r}, so its raw probabilities refer to "
+                                   + ("a uniform class mix" if cfg.classifier.class_weight == "balanced"
+                                      else "the labels' class mix")
+                                   + "; the maps are fitted on unweighted labels, so the calibrated probabilities "
+                                     "(p_quasar_labelled_mix) refer to the labels' class frequencies, the "
+                                     "'labelled_mix' below"},
                   "seed": cfg.project.seed},
+        "sky_priors": {**result.model.priors.to_card(),
+                       "population": "every usable feature-cache source that passes the zero-motion test under the "
+                                     "[motion] settings of training (the sources a run scores), over every tile",
+                       "motion_at_training": {"parallax_snr_max": cfg.motion.parallax_snr_max,
+                                              "pm_pvalue_min": cfg.motion.pm_pvalue_min},
+                       "how_applied": "a run moves each probability by the fixed factors sky/labelled_mix of its "
+                                      "bin: p_quasar = P(quasar) on the sky (Saerens, Latinne & Decaestecker 2002, "
+                                      "Neural Computation 14, 21); labelled sources entered the estimate with their "
+                                      "held-out probabilities; `selector train` estimates them again"},
+        "novelty": {"distance": "distance to the k-th nearest labelled source in features standardised by the "
+                                "labelled median and interquartile range, over the labelled sources' median of the "
+                                "same (1 = typical); missing values take the labelled median",
+                    "k": cfg.classifier.novelty_neighbours,
+                    "flag": f"beyond_training: distance above the labelled sources' {cfg.classifier.novelty_quantile} "
+                            "quantile of it; it never removes a candidate",
+                    "threshold": float(result.model.novelty.threshold)},
+        "label_coverage": result.sky.get("coverage", {}),
         "validation": {"folds": cfg.classifier.folds, "grouping": f"HEALPix order {data.group_order} sky regions",
                        "regions": e.folds.regions},
         "metrics": {
@@ -208,6 +266,12 @@ def _card(cfg: Config, data: LabelledSet, result: TrainResult, sha256: str) -> d
             "best_published_criterion": best,
             "best_criterion_purity_at_95_percent_completeness": e.criteria[best].at_target.purity if best else None,
             "brier": e.brier.to_dict(),
+            "held_out_quasar_at_threshold_labelled_mix": e.at_threshold["quasar"].as_dict(),
+            "held_out_quasar_at_threshold_sky_mix": e.sky.at_threshold if e.sky else None,
+            "default_list_expected_purity_on_the_sky": (
+                {"value": e.sky.expected_purity, "error": e.sky.expected_purity_error, "listed": e.sky.listed,
+                 "meaning": "mean P(quasar) on the sky over the list a run with this model and config makes"}
+                if e.sky else None),
         },
         "config_hash": config_hash(cfg),
         "match_config_hash": config_hash(cfg, MATCH_SECTIONS),
@@ -229,7 +293,8 @@ def build_bundle(data: bytes, path: Path) -> dict:
     Returns
     -------
     dict
-        ``format``, ``format_version``, ``classes``, ``features``, ``estimator``, ``calibrators``.
+        ``format``, ``format_version``, ``classes``, ``features``, ``estimators`` (named fitted models),
+        ``arrays`` (named groups of numpy arrays: ``calibration``, ``sky_priors``, ``novelty``).
 
     Raises
     ------
@@ -263,17 +328,28 @@ def build_bundle(data: bytes, path: Path) -> dict:
 
 def _check_bundle(bundle, path: Path) -> None:
     from sklearn.ensemble import HistGradientBoostingClassifier
-    from sklearn.isotonic import IsotonicRegression
-    from sklearn.linear_model import LogisticRegression
 
-    ok = (isinstance(bundle, dict) and bundle.get("format") == _BUNDLE_FORMAT
-          and bundle.get("format_version") == str(_FORMAT_VERSION)
-          and bundle.get("classes") == list(CLASSES)
-          and type(bundle.get("estimator")) is HistGradientBoostingClassifier
-          and isinstance(bundle.get("calibrators"), list) and len(bundle["calibrators"]) == len(CLASSES)
-          and all(type(m) in (IsotonicRegression, LogisticRegression) for m in bundle["calibrators"])
-          and isinstance(bundle.get("features"), list)
-          and getattr(bundle["estimator"], "n_features_in_", None) == len(bundle["features"]))
+    def arrays(group, keys):
+        return isinstance(group, dict) and all(isinstance(group.get(k), np.ndarray) for k in keys)
+
+    try:
+        classes = bundle.get("classes")
+        est = bundle["estimators"]["classifier"]
+        groups = bundle["arrays"]
+        ok = (isinstance(bundle, dict) and bundle.get("format") == _BUNDLE_FORMAT
+              and bundle.get("format_version") == str(_FORMAT_VERSION)
+              and isinstance(classes, list) and len(classes) >= 2 and classes[0] == "quasar"
+              and all(c in CLASSES for c in classes)
+              and type(est) is HistGradientBoostingClassifier and len(est.classes_) == len(classes)
+              and isinstance(bundle.get("features"), list)
+              and getattr(est, "n_features_in_", None) == len(bundle["features"])
+              and arrays(groups["calibration"], ("method", "min_slope", "l2", "abc"))
+              and groups["calibration"]["abc"].shape == (len(classes), 3)
+              and arrays(groups["sky_priors"], ("classes", "train", "sky", "band", "edges_mag"))
+              and groups["sky_priors"]["sky"].shape[-1] == len(classes)
+              and arrays(groups["novelty"], ("center", "scale", "reference")))
+    except (KeyError, TypeError, AttributeError):
+        ok = False
     if not ok:
         raise SelectorError(f"{path}: not a model written by `selector train` (unexpected contents)")
 
@@ -326,7 +402,12 @@ def load_model(path, cfg: Config) -> Model:
     bundle = build_bundle(data, path)
     if bundle["features"] != [f["name"] for f in card["features"]]:
         raise SelectorError(f"{path}: the model's feature list differs from its card's")
-    return Model(bundle["estimator"], bundle["calibrators"], bundle["features"], card)
+    try:
+        model = model_from_bundle(bundle, card)
+    except Exception as exc:  # numbers of the wrong shape surface anywhere in the rebuilding
+        raise SelectorError(f"{path}: not a model written by `selector train` ({_first_line(exc)})") from None
+    _check_sky_settings(model, cfg, path)
+    return model
 
 
 def _check_features(card: dict, cfg: Config, path: Path) -> None:
@@ -352,11 +433,32 @@ def _check_features(card: dict, cfg: Config, path: Path) -> None:
                                 f"{value!r}; the zero-motion features would mean something else, so retrain")
 
 
+def _check_sky_settings(model: Model, cfg: Config, path: Path) -> None:
+    """Refuse a model whose sky proportions were set by other ``[classifier]`` sky settings than ``cfg``'s."""
+    c = cfg.classifier
+    pri = model.priors
+    if c.sky_priors is not None:
+        want = {k: v for k, v in c.sky_priors.items() if k in model.classes}
+        total = sum(want.values())
+        have = dict(zip(model.classes, pri.sky[0].tolist())) if pri.method == "config" else None
+        same = have is not None and total > 0 and all(
+            abs(have.get(k, 0.0) - want.get(k, 0.0) / total) <= 1e-12 for k in model.classes)
+        if not same:
+            raise SelectorError(f"{path}: refused: its sky proportions were not set by this config's "
+                                "classifier.sky_priors; run `selector train` again (the model stores them)")
+        return
+    bins = c.sky_prior_bins
+    edges = np.asarray(bins.edges_mag, np.float64) if bins is not None else np.zeros(0)
+    if pri.method != "em" or (bins.band if bins else "") != pri.band or not np.array_equal(edges, pri.edges_mag):
+        raise SelectorError(f"{path}: refused: its sky proportions were estimated with other classifier.sky_priors / "
+                            "classifier.sky_prior_bins settings than this config's; run `selector train` again")
+
+
 _LOADED: dict = {}
 
 
-def load_scorer(path, cfg: Config) -> Callable[[pa.Table], np.ndarray]:
-    """A function giving P(quasar) for feature-cache rows (NaN for rows failing the zero-motion test).
+def load_scorer(path, cfg: Config) -> Callable[[pa.Table], ModelScores]:
+    """A function giving the model's scores of feature-cache rows (NaN for rows failing the zero-motion test).
 
     The model is read once per process and file version; the feature check against ``cfg`` runs
     on every call, so a changed config is never scored with a model that does not fit it.
@@ -370,7 +472,8 @@ def load_scorer(path, cfg: Config) -> Callable[[pa.Table], np.ndarray]:
     Returns
     -------
     callable
-        ``scorer(table) -> numpy.ndarray`` of P(quasar).
+        ``scorer(table) -> ModelScores``: P(quasar) on the sky and at the labelled mix, the sky
+        log-odds, the novelty distance and the beyond-training flag.
     """
     p = Path(path).resolve()
     try:
@@ -387,8 +490,9 @@ def load_scorer(path, cfg: Config) -> Callable[[pa.Table], np.ndarray]:
             _LOADED[key] = model
     else:
         _check_features(model.card, cfg, p)
+        _check_sky_settings(model, cfg, p)
 
-    def scorer(table: pa.Table) -> np.ndarray:
+    def scorer(table: pa.Table) -> ModelScores:
         return model.score_table(table, cfg)
 
     return scorer
