@@ -381,20 +381,27 @@ def rank_candidates(table: pa.Table) -> pa.Table:
 _MODEL_TIE_BREAKS = ("quasar_log_odds", "colour_excess_mag")
 
 
-def sort_by_score(table: pa.Table) -> pa.Table:
-    """Best first: by ``p_quasar`` and the science tie-breaks with a model, else by ``criteria_score``.
+def rank_keys(names) -> list[tuple[str, str]]:
+    """Sort keys of the ranked order for a table with these columns: best first.
 
-    The source id comes last only so that the bytes are deterministic when every science quantity
-    is equal.
+    With a model: ``p_quasar`` (on the sky), then ``quasar_log_odds`` (distinct where the probability
+    rounds to one), then ``colour_excess_mag``; without one, ``criteria_score``. The source id comes
+    last only so that the order is total and the bytes deterministic when every science quantity is
+    equal. NaN sorts last.
     """
-    if table.num_rows == 0:
-        return table
-    names = table.column_names
+    names = list(names)
     if "p_quasar" in names:
         keys = [("p_quasar", "descending")] + [(k, "descending") for k in _MODEL_TIE_BREAKS if k in names]
     else:
         keys = [("criteria_score", "descending")]
-    return table.sort_by(keys + [("astro_id", "ascending")])
+    return keys + [("astro_id", "ascending")]
+
+
+def sort_by_score(table: pa.Table) -> pa.Table:
+    """The rows in the ranked order of :func:`rank_keys`."""
+    if table.num_rows == 0:
+        return table
+    return table.sort_by(rank_keys(table.column_names))
 
 
 def check_accounting(n_rows: int, n_rejects: int, flow: list) -> None:

@@ -17,14 +17,17 @@ from pathlib import Path
 import numpy as np
 import pyarrow as pa
 
+from selector.core.calibration import tie_fraction
+from selector.core.priors import expected_purity
 from selector.core.selection import rank_candidates
 from selector.errors import InputError
 from selector.jobs import tune
+from selector.jobs.train import read_card
 from selector.present import plots
 from selector.settings.config import SELECTION_SECTIONS, plain
 from selector.store.cache import find_rows, load_cache
 from selector.store.io import read_parquet, write_text
-from selector.store.layout import layout_of_run
+from selector.store.layout import SKY_PLOT_FILES, TRAINING_PLOT_FILES, layout_of_run
 
 __all__ = ["TABLE_COLUMNS", "build_report", "write_report"]
 
@@ -43,7 +46,9 @@ TABLE_COLUMNS = (
     ("pm_pvalue", "p(μ = 0)", "{:.3f}"),
     ("colour_excess_mag", "colour excess (mag)", "{:+.3f}"),
     ("criteria_score", "criteria score", "{:.3f}"),
-    ("p_quasar", "P(quasar)", "{:.3f}"),
+    ("p_quasar", "P(quasar) on the sky", "{:.4f}"),
+    ("p_quasar_labelled_mix", "P(quasar) at the labelled mix", "{:.4f}"),
+    ("beyond_training", "beyond training", "{}"),
 )
 
 _STYLE = """
@@ -132,6 +137,82 @@ def _selection_rows(cfg) -> list[tuple[str, str]]:
     return rows
 
 
+#: Pictures of the model's training shown in the classifier section, with captions.
+_MODEL_PICTURES = (
+    (SKY_PLOT_FILES[0], "held-out quasar completeness and purity at the labelled and at the sky class mix"),
+    (SKY_PLOT_FILES[1], "reliability of P(quasar) on the sky, after the prior adjustment (held out)"),
+    (TRAINING_PLOT_FILES[2], "calibration at the labelled class mix (held out)"),
+    (TRAINING_PLOT_FILES[4], "the classifier against the published criteria (held out)"),
+)
+
+
+def _pct(x) -> str:
+    return "–" if x is None else f"{x:.1%}"
+
+
+def _classifier_section(cfg, cands: pa.Table, model_path: Path) -> list[str]:
+    """What the model claims and what this list is expected to hold on the sky, with the model's pictures."""
+    out = ["<h2 id='classifier'>Classifier</h2>"]
+    p = cands.column("p_quasar").to_numpy(zero_copy_only=False).astype(float)
+    expect = expected_purity(p) if len(p) else None
+    rows = [("model file", str(model_path))]
+    if expect is not None:
+        rows.append(("expected purity of this list on the sky",
+                     f"{expect.value:.1%} ± {expect.error:.1%} (mean P(quasar) on the sky over its {len(p):,d} "
+                     "candidates)"))
+    card = read_card(model_path)
+    if card is None:
+        out.append("<p class='note'>The model card beside the model file could not be read: the model's own figures "
+                   "are not shown.</p>")
+    else:
+        m = card.get("metrics", {})
+        claim = m.get("default_list_expected_purity_on_the_sky") or {}
+        lab = m.get("held_out_quasar_at_threshold_labelled_mix") or {}
+        sky = m.get("held_out_quasar_at_threshold_sky_mix") or {}
+        pri = card.get("sky_priors", {})
+        how = {"em": "estimated at training by EM (Saerens, Latinne & Decaestecker 2002)",
+               "config": "given in classifier.sky_priors"}.get(pri.get("method"), str(pri.get("method")))
+        if "sky" in pri:
+            mix = ", ".join(f"{c} {v:.4g}" for c, v in pri["sky"].items())
+            labelled = ", ".join(f"{c} {v:.4g}" for c, v in pri.get("labelled_mix", {}).items())
+        else:
+            mix = f"per {pri.get('band')} magnitude bin (see the model card)"
+            labelled = "per bin"
+        rows += [
+            ("expected purity of the default list, claimed at training",
+             f"{_pct(claim.get('value'))} over {claim.get('listed', 0):,d} candidates" if claim else "–"),
+            (f"held-out quasar purity at threshold {m.get('threshold', cfg.classifier.threshold):.2f}, labelled mix",
+             f"{_pct(lab.get('purity'))} (completeness {_pct(lab.get('completeness'))})"),
+            (f"held-out quasar purity at threshold {m.get('threshold', cfg.classifier.threshold):.2f}, sky mix",
+             f"{_pct(sky.get('purity'))} (completeness {_pct(sky.get('completeness'))})"),
+            ("classes", ", ".join(card.get("classes", []))),
+            ("class proportions on the sky", f"{mix}; {how}"),
+            ("class proportions of the labels", labelled),
+            ("calibration", (card.get("model", {}).get("calibration") or {}).get("scheme", "–")
+             if isinstance(card.get("model", {}).get("calibration"), dict) else "–"),
+        ]
+    rows.append(("candidates sharing their P(quasar) with another", f"{tie_fraction(p):.2%}"))
+    if "beyond_training" in cands.column_names:
+        flagged = int(np.sum(cands.column("beyond_training").to_numpy(zero_copy_only=False)))
+        rows.append(("candidates beyond the labelled sources' features",
+                     f"{flagged:,d} (flagged for a look, never removed)"))
+    out.append(_kv_table(rows).replace("<table>", "<table id='classifier-figures'>", 1))
+    if card is not None:
+        for line in (card.get("label_coverage") or {}).get("warnings", []):
+            out.append(f"<p class='note'>Labels and candidates: {_e(line)}.</p>")
+    folder = model_path.parent
+    for name, caption in _MODEL_PICTURES:
+        if (folder / name).is_file():
+            out.append(_figure_html(Path(name).stem, caption, (folder / name).read_bytes()))
+    return out
+
+
+def _model_file(run_dir: Path, cfg, prov: dict) -> Path:
+    """The run's model file: as recorded relative to the output folder, else as the config names it."""
+    rel = prov.get("classifier_model_file")
+    return layout_of_run(run_dir).output_dir / rel if rel else cfg.path(cfg.classifier.model)
+
+
 def build_report(run_dir: Path | str, top: int = 50) -> str:
     """The HTML text of the report of the run in ``run_dir``.
 
@@ -211,6 +292,8 @@ def build_report(run_dir: Path | str, top: int = 50) -> str:
         _figure_html("cutflow", captions["cutflow"], pngs["cutflow"]),
         "<h2 id='plots'>Diagnostics</h2>",
         *(_figure_html(name, captions[name], png) for name, png in pngs.items() if name != "cutflow"),
+        *(_classifier_section(cfg, cands, _model_file(run_dir, cfg, prov))
+          if cfg.classifier.model and "p_quasar" in cands.column_names else []),
         f"<h2 id='top-targets'>Top {min(top, cands.num_rows):,d} targets</h2>",
         _targets_table(cands, top),
         "</body></html>",

@@ -1,5 +1,6 @@
 """Pictures of a classifier's held-out evaluation: threshold curves, confusion matrix, calibration,
-permutation importance, and the classifier against the published criteria.
+permutation importance, the classifier against the published criteria, and the figures at the sky's
+class mix (completeness and purity at both mixes, reliability after the prior adjustment).
 
 Figures are drawn on the Agg canvas (no display, no global pyplot state) and saved without the
 software tag, so the same evaluation gives the same bytes.
@@ -13,7 +14,7 @@ import numpy as np
 
 from selector.jobs.train.evaluation import COMPLETENESS_TARGET, TrainingEvaluation
 from selector.store.io import atomic_path
-from selector.store.layout import TRAINING_PLOT_FILES
+from selector.store.layout import SKY_PLOT_FILES, TRAINING_PLOT_FILES
 
 __all__ = ["write_training_plots"]
 
@@ -54,16 +55,17 @@ def write_training_plots(evaluation: TrainingEvaluation, out_dir: Path) -> list[
     classes = e.classes
     thr = np.asarray(e.thresholds)
 
-    fig = Figure(figsize=(11, 3.6))
+    k = len(classes)
+    fig = Figure(figsize=(3.7 * k, 3.6))
     for i, name in enumerate(classes):
-        ax = fig.add_subplot(1, 3, i + 1)
+        ax = fig.add_subplot(1, k, i + 1)
         ax.plot(thr, _nan(e.threshold_curves[name].completeness), label="completeness")
         ax.plot(thr, _nan(e.threshold_curves[name].purity), label="purity")
         ax.axvline(e.threshold, color="0.6", lw=0.8, ls="--")
         ax.set(title=name, xlabel=f"threshold on P({name})", ylim=(0, 1.02))
         if i == 0:
             ax.legend(loc="lower left")
-    fig.suptitle("held-out completeness and purity")
+    fig.suptitle("held-out completeness and purity at the labelled class mix")
     fig.tight_layout()
     paths.append(out_dir / TRAINING_PLOT_FILES[0])
     _save_png(fig, paths[-1])
@@ -83,9 +85,9 @@ def write_training_plots(evaluation: TrainingEvaluation, out_dir: Path) -> list[
     paths.append(out_dir / TRAINING_PLOT_FILES[1])
     _save_png(fig, paths[-1])
 
-    fig = Figure(figsize=(11, 3.6))
+    fig = Figure(figsize=(3.7 * k, 3.6))
     for i, name in enumerate(classes):
-        ax = fig.add_subplot(1, 3, i + 1)
+        ax = fig.add_subplot(1, k, i + 1)
         ax.plot([0, 1], [0, 1], color="0.7", lw=0.8)
         curves = e.calibration_curves[name]
         for kind, cc, style in (("raw", curves.raw, "o--"), ("calibrated", curves.calibrated, "s-")):
@@ -93,7 +95,7 @@ def write_training_plots(evaluation: TrainingEvaluation, out_dir: Path) -> list[
         ax.set(title=name, xlabel=f"predicted P({name})", ylabel="observed fraction", xlim=(0, 1), ylim=(0, 1))
         if i == 0:
             ax.legend(loc="upper left")
-    fig.suptitle("calibration on held-out folds")
+    fig.suptitle("calibration on held-out folds, at the labelled class mix")
     fig.tight_layout()
     paths.append(out_dir / TRAINING_PLOT_FILES[2])
     _save_png(fig, paths[-1])
@@ -125,5 +127,46 @@ def write_training_plots(evaluation: TrainingEvaluation, out_dir: Path) -> list[
     ax.legend(loc="lower left", fontsize=7)
     fig.tight_layout()
     paths.append(out_dir / TRAINING_PLOT_FILES[4])
+    _save_png(fig, paths[-1])
+    if e.sky is not None:
+        paths += _sky_plots(e, out_dir)
+    return paths
+
+
+def _sky_plots(e: TrainingEvaluation, out_dir: Path) -> list[Path]:
+    """Quasar completeness and purity at both class mixes; the reliability diagram on the sky."""
+    from matplotlib.figure import Figure
+
+    thr = np.asarray(e.thresholds)
+    sky = e.sky
+    fig = Figure(figsize=(6.0, 4.4))
+    ax = fig.add_subplot(1, 1, 1)
+    lab = e.threshold_curves["quasar"]
+    ax.plot(thr, _nan(lab.completeness), color="tab:blue", ls="--", label="completeness, labelled mix")
+    ax.plot(thr, _nan(lab.purity), color="tab:orange", ls="--", label="purity, labelled mix")
+    ax.plot(thr, _nan(sky.curve.completeness), color="tab:blue", label="completeness, sky mix")
+    ax.plot(thr, _nan(sky.curve.purity), color="tab:orange", label="purity, sky mix")
+    if sky.expected_purity is not None:
+        ax.axhline(sky.expected_purity, color="0.3", lw=0.8, ls=":",
+                   label=f"expected purity of the default list ({sky.expected_purity:.1%})")
+    ax.axvline(e.threshold, color="0.6", lw=0.8, ls="--")
+    ax.set(xlabel="threshold on P(quasar) (at the mix named)", ylim=(0, 1.02),
+           title="held-out quasar completeness and purity")
+    ax.legend(loc="lower left", fontsize=7)
+    fig.tight_layout()
+    paths = [out_dir / SKY_PLOT_FILES[0]]
+    _save_png(fig, paths[-1])
+
+    r = sky.reliability
+    fig = Figure(figsize=(4.8, 4.4))
+    ax = fig.add_subplot(1, 1, 1)
+    ax.plot([0, 1], [0, 1], color="0.7", lw=0.8)
+    ax.errorbar(r["mean_predicted"], r["observed"], yerr=r["error"], fmt="s-", ms=3, capsize=2,
+                label="held out, weighted to the sky mix")
+    ax.set(xlabel="P(quasar) on the sky", ylabel="observed quasar fraction", xlim=(0, 1), ylim=(0, 1),
+           title="reliability after the prior adjustment")
+    ax.legend(loc="upper left", fontsize=7)
+    fig.tight_layout()
+    paths.append(out_dir / SKY_PLOT_FILES[1])
     _save_png(fig, paths[-1])
     return paths

@@ -384,3 +384,9 @@ def target_text_list(cfg, *, new_only: bool = False) -> Path:
 def merge_spool(layout: Layout) -> Path:
     """Scratch folder of a merge in progress: sorted runs of candidates (removed when it ends)."""
     return layout.run_dir / ".merge-spool"
+
+
+#: Pictures of a classifier's figures at the sky's class mix, below the classifier's output folder:
+#: quasar completeness and purity at the labelled and at the sky mix, and the reliability diagram
+#: after the prior adjustment.
+SKY_PLOT_FILES = ("sky_mix_curves.png", "reliability_on_the_sky.png")

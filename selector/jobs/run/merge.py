@@ -23,15 +23,16 @@ from astropy.table import Table
 
 from selector import __version__
 from selector.core import schema
-from selector.core.selection import check_accounting
+from selector.core.selection import check_accounting, rank_keys
 from selector.errors import SelectorError
 from selector.jobs.run.plan import ingest_summaries
+from selector.jobs.train import read_card
 from selector.settings.config import MATCH_SECTIONS, SELECTION_SECTIONS, Config, config_hash
 from selector.store.generations import generation_digest
 from selector.store.io import (PARQUET_ROW_GROUP_ROWS, DurableBatch, describe_arrow_columns, parquet_writer_options,
                                read_parquet, text_body, text_writable, write_json, write_parquet, write_table_file,
                                write_text)
-from selector.store.keys import model_sha, result_config
+from selector.store.keys import model_path, model_sha, result_config
 from selector.store.layout import MERGED_FILES, layout_of, merge_spool
 
 
@@ -106,11 +107,16 @@ def file_stats(paths) -> list:
 def provenance(cfg: Config) -> dict:
     """Config hashes, input fingerprints (from the ingest summaries), model file and package version."""
     summaries = ingest_summaries(cfg)
+    model = model_path(cfg)
     return {
         "config_hash": config_hash(cfg, tuple(result_config(cfg))),
         "match_config_hash": config_hash(cfg, MATCH_SECTIONS),
         "selection_config_hash": config_hash(cfg, SELECTION_SECTIONS),
         "classifier_model_sha256": model_sha(cfg),
+        # the model file relative to the output folder (so the run folder alone finds it), and the
+        # sky's class proportions its probabilities were moved to
+        "classifier_model_file": os.path.relpath(model, layout_of(cfg).output_dir) if model else None,
+        "classifier_sky_priors": (read_card(model) or {}).get("sky_priors") if model else None,
         "input_fingerprints": {k: s["input_fingerprints"] for k, s in summaries.items()},
         "selector_version": __version__,
         # which whole generation of tiles the run read, by content (see store/generations.py)
@@ -234,10 +240,9 @@ BLOCK_ROWS = 1 << 14
 
 
 def _rank_key(schema: pa.Schema) -> list[tuple[str, str]]:
-    # the order of rank_candidates: score descending (NaN last), then id ascending; ids are unique
+    # the order of rank_candidates (core.selection.rank_keys), ending with the id; ids are unique
     # (checked), so the order is total and a merge of sorted runs gives exactly the one sort
-    key = "p_quasar" if "p_quasar" in schema.names else "criteria_score"
-    return [(key, "descending"), ("astro_id", "ascending")]
+    return rank_keys(schema.names)
 
 
 class _Runs:

@@ -36,7 +36,7 @@ from selector.jobs.train.features import FeatureSpec, feature_matrix, feature_sp
 from selector.jobs.train.labels import CLASSES, QUASAR, LabelledSet, collect_labelled
 from selector.jobs.train.model import (Model, TrainOutputs, TrainResult, grouped_folds, plan_classes, score_population,
                                        train_labelled)
-from selector.jobs.train.modelfile import TRUSTED_TYPES, load_model, load_scorer, write_model_files
+from selector.jobs.train.modelfile import TRUSTED_TYPES, load_model, load_scorer, read_card, write_model_files
 from selector.jobs.train.sky import (ScoredPopulation, band_column, estimate_adjustment, list_expectation, move_proba,
                                      sky_weights)
 from selector.settings.config import Config
@@ -59,6 +59,7 @@ __all__ = [
     "load_scorer",
     "plan_classes",
     "purity_at_completeness",
+    "read_card",
     "estimate_sky",
     "train",
     "train_labelled",

@@ -32,7 +32,7 @@ from selector.store.io import atomic_path, write_json, write_parquet
 from selector.store.layout import EVALUATION_FILE, MODEL_FILE, PREDICTIONS_FILE, card_path, classifier_dir
 
 __all__ = ["TRUSTED_TYPES", "archive_types", "build_bundle", "load_model", "load_scorer", "model_bytes",
-           "model_from_bundle", "write_model_files"]
+           "model_from_bundle", "read_card", "write_model_files"]
 
 _CARD_FORMAT = "selector-classifier-card"
 _BUNDLE_FORMAT = "selector-classifier"
@@ -408,6 +408,24 @@ def load_model(path, cfg: Config) -> Model:
         raise SelectorError(f"{path}: not a model written by `selector train` ({_first_line(exc)})") from None
     _check_sky_settings(model, cfg, path)
     return model
+
+
+def read_card(model_path) -> dict | None:
+    """The model card beside a model file, or None when it is missing or unreadable (for display only).
+
+    Parameters
+    ----------
+    model_path : str or pathlib.Path
+
+    Returns
+    -------
+    dict or None
+    """
+    try:
+        card = json.loads(card_path(Path(model_path)).read_text(encoding="utf-8"))
+    except (OSError, ValueError):
+        return None
+    return card if isinstance(card, dict) and card.get("format") == _CARD_FORMAT else None
 
 
 def _check_features(card: dict, cfg: Config, path: Path) -> None:
