@@ -127,8 +127,20 @@ COLUMNS: dict[str, ColumnDoc] = {
                                    "(negative: fails all)", "phot.color.excess", P.magnitude),
     "criteria_score": ColumnDoc("ranking score from the infrared colour criteria (larger = redder than the "
                                 "boundaries by more)", "stat.value", P.probability),
-    "p_quasar": ColumnDoc("calibrated classifier probability that the source is a quasar", "stat.probability;src.class",
+    "p_quasar": ColumnDoc("classifier probability that the source is a quasar on the sky: calibrated, then moved "
+                          "to the sky's class proportions stored with the model", "stat.probability;src.class",
                           P.probability),
+    "p_quasar_labelled_mix": ColumnDoc("classifier probability that the source is a quasar at the class mix of the "
+                                       "training labels (calibrated, not moved to the sky)",
+                                       "stat.probability;src.class", P.probability),
+    "quasar_log_odds": ColumnDoc("natural log of p_quasar / (1 - p_quasar), computed without rounding p_quasar to 1; "
+                                 "the ranking's first tie-break", "stat.value", P.statistic),
+    "novelty_distance": ColumnDoc("distance from the labelled training sources in standardised features, over the "
+                                  "typical such distance among them (1 = typical)", "stat.value", P.statistic),
+    "beyond_training": ColumnDoc("true where novelty_distance exceeds what the labelled sources show among themselves: "
+                                 "the model extrapolates (the source is kept)", "meta.code"),
+    "passes_colour_criteria": ColumnDoc("true where the infrared colours pass the configured published criteria "
+                                        "(a reference column when the classifier decides)", "meta.code"),
     # --- target lists --------------------------------------------------------------------------
     "name": ColumnDoc("short name of the target: targets.name_prefix, a hyphen and a base-32 hash of astro_id",
                       "meta.id"),
