@@ -109,9 +109,9 @@ def main(argv=None) -> int:
         model = result.model
         model.score_table(features.slice(0, 100), cfg)  # warm up imports and the thread controller
         t0 = time.perf_counter()
-        p = model.score_table(features, cfg)
+        p = model.score_table(features, cfg)  # sky and labelled-mix P(quasar), log-odds, novelty
         t_score = time.perf_counter() - t0
-        scored = np.isfinite(p)
+        scored = np.isfinite(p.p_quasar)
         passed, plx, chi2 = zero_motion(features, cfg)
         idx = np.flatnonzero(passed)
         X = train.feature_matrix(features.take(pa.array(idx)), cfg, model.feature_names, (plx[idx], chi2[idx]))
