@@ -27,6 +27,7 @@ import numpy as np
 from scipy.spatial import cKDTree
 from scipy.special import expit
 
+from selector.core.frames import SkyPositions
 from selector.errors import ConfigError, InputError
 
 __all__ = [
@@ -150,19 +151,8 @@ class Assignment(NamedTuple):
     ambiguous: np.ndarray
 
 
-class Positions(NamedTuple):
-    """Sky positions.
-
-    Attributes
-    ----------
-    ra_deg : numpy.ndarray
-        Right ascension (deg) in [0, 360).
-    dec_deg : numpy.ndarray
-        Declination (deg).
-    """
-
-    ra_deg: np.ndarray
-    dec_deg: np.ndarray
+# Shifted positions come back in the package's one sky-position type.
+Positions = SkyPositions
 
 
 class ChanceCounterparts(NamedTuple):
@@ -694,12 +684,7 @@ def posterior_log_odds(ln_b, prior) -> np.ndarray:
 def posterior_probability(ln_b, prior) -> np.ndarray:
     """Posterior probability that two positions belong to one source.
 
-    Parameters
-    ----------
-    ln_b : array_like of float
-        ln B from :func:`bayes_factor`.
-    prior : array_like of float
-        P0 in [0, 1] from :func:`prior_from_density`.
+    Parameters are those of :func:`posterior_log_odds`.
 
     Returns
     -------

@@ -467,15 +467,8 @@ def assef2013_r90(mags: Mapping[str, np.ndarray]) -> CriterionResult:
     ``m1 - m2 > 0.662`` otherwise, and only ``m2 < 17.11`` (Vega; coefficients from
     memory, as given in the project design notes).
 
-    Parameters
-    ----------
-    mags : Mapping[str, array_like]
-        Band label → Vega magnitudes; needs ``"3.4"`` and ``"4.6"``.
-
-    Returns
-    -------
-    CriterionResult
-        ``excess_mag = min(m1 - m2 - threshold(m2), 17.11 - m2)`` (mag).
+    Takes ``mags`` and returns a :class:`CriterionResult` as :func:`stern2012` does, with
+    ``excess_mag = min(m1 - m2 - threshold(m2), 17.11 - m2)`` (mag).
     """
     return _assef(mags, ASSEF2013_R90)
 
@@ -487,15 +480,8 @@ def assef2018_r90(mags: Mapping[str, np.ndarray]) -> CriterionResult:
     ``m1 - m2 > 0.65`` otherwise (Vega; coefficients from memory, as given in the
     project design notes).  No faint limit is applied.
 
-    Parameters
-    ----------
-    mags : Mapping[str, array_like]
-        Band label → Vega magnitudes; needs ``"3.4"`` and ``"4.6"``.
-
-    Returns
-    -------
-    CriterionResult
-        ``excess_mag = m1 - m2 - threshold(m2)`` (mag).
+    Takes ``mags`` and returns a :class:`CriterionResult` as :func:`stern2012` does, with
+    ``excess_mag = m1 - m2 - threshold(m2)`` (mag).
     """
     return _assef(mags, ASSEF2018_R90)
 
@@ -507,15 +493,8 @@ def assef2018_r75(mags: Mapping[str, np.ndarray]) -> CriterionResult:
     ``m1 - m2 > 0.486`` otherwise (Vega; coefficients from memory, as given in the
     project design notes).  No faint limit is applied.
 
-    Parameters
-    ----------
-    mags : Mapping[str, array_like]
-        Band label → Vega magnitudes; needs ``"3.4"`` and ``"4.6"``.
-
-    Returns
-    -------
-    CriterionResult
-        ``excess_mag = m1 - m2 - threshold(m2)`` (mag).
+    Takes ``mags`` and returns a :class:`CriterionResult` as :func:`stern2012` does, with
+    ``excess_mag = m1 - m2 - threshold(m2)`` (mag).
     """
     return _assef(mags, ASSEF2018_R75)
 
@@ -526,15 +505,8 @@ def assef2018_c75(mags: Mapping[str, np.ndarray]) -> CriterionResult:
     Selected: ``m1 - m2 > 0.71`` at every magnitude (Vega; coefficient from memory,
     as given in the project design notes).
 
-    Parameters
-    ----------
-    mags : Mapping[str, array_like]
-        Band label → Vega magnitudes; needs ``"3.4"`` and ``"4.6"``.
-
-    Returns
-    -------
-    CriterionResult
-        ``excess_mag = m1 - m2 - 0.71`` (mag).
+    Takes ``mags`` and returns a :class:`CriterionResult` as :func:`stern2012` does, with
+    ``excess_mag = m1 - m2 - 0.71`` (mag).
     """
     m1, m2 = _bands(mags, TWO_BANDS)
     c = m1 - m2
