@@ -11,24 +11,15 @@ from typing import NamedTuple
 
 import numpy as np
 
+from selector.core.frames import SkyPositions
+
 __all__ = ["Propagated", "ZeroMotion", "max_shift_arcsec", "propagate", "zero_motion"]
 
 _RAD_PER_MAS = np.pi / 648_000_000.0
 
 
-class Propagated(NamedTuple):
-    """Positions at the new epoch.
-
-    Attributes
-    ----------
-    ra_deg : numpy.ndarray
-        Right ascension (deg) in [0, 360).
-    dec_deg : numpy.ndarray
-        Declination (deg).
-    """
-
-    ra_deg: np.ndarray
-    dec_deg: np.ndarray
+# Positions at the new epoch; the same two fields as every other set of sky positions.
+Propagated = SkyPositions
 
 
 class ZeroMotion(NamedTuple):

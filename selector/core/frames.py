@@ -9,6 +9,8 @@ from __future__ import annotations
 import os
 from functools import lru_cache
 from concurrent.futures import ThreadPoolExecutor
+from typing import NamedTuple
+
 import numpy as np
 
 
@@ -156,3 +158,18 @@ def xyz_to_radians(xyz) -> tuple[np.ndarray, np.ndarray]:
     """
     xyz = np.asarray(xyz, dtype=np.float64)
     return np.arctan2(xyz[..., 1], xyz[..., 0]), np.arctan2(xyz[..., 2], np.hypot(xyz[..., 0], xyz[..., 1]))
+
+
+class SkyPositions(NamedTuple):
+    """Sky positions (ICRS).
+
+    Attributes
+    ----------
+    ra_deg : numpy.ndarray
+        Right ascension (deg) in [0, 360).
+    dec_deg : numpy.ndarray
+        Declination (deg).
+    """
+
+    ra_deg: np.ndarray
+    dec_deg: np.ndarray
