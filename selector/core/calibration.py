@@ -36,6 +36,7 @@ __all__ = [
     "OneVsRestCalibrator",
     "Reliability",
     "cross_fit_calibration",
+    "probabilities_1d",
     "reliability_table",
     "tie_fraction",
 ]
@@ -48,13 +49,32 @@ _TINY = np.finfo(np.float64).tiny
 _TOP = 1.0 - 2.0 ** -53
 
 
-def _scores(s, name: str = "raw scores") -> np.ndarray:
-    s = np.asarray(s, dtype=np.float64)
+def probabilities_1d(values, name: str = "raw scores") -> np.ndarray:
+    """Check that ``values`` is a 1-D array of probabilities and return it as float64.
+
+    Parameters
+    ----------
+    values : array_like of float
+        The probabilities.
+    name : str, optional
+        What they are, for the error message.
+
+    Returns
+    -------
+    numpy.ndarray
+        ``values`` as float64.
+
+    Raises
+    ------
+    InputError
+        If ``values`` is not 1-D, or a value is NaN or outside [0, 1].
+    """
+    s = np.asarray(values, dtype=np.float64)
     if s.ndim != 1:
         raise InputError(f"{name} must be a 1-D array, got shape {s.shape}")
     bad = ~np.isfinite(s) | (s < 0) | (s > 1)
     if np.any(bad):
-        raise InputError(f"{name} must be probabilities in [0, 1]; {int(bad.sum())} values are not")
+        raise InputError(f"{name} must lie in [0, 1]; {int(bad.sum())} values do not")
     return s
 
 
@@ -124,7 +144,7 @@ class MonotoneCalibrator:
         sample_weight : array_like, shape (n,), optional
             Non-negative row weights.
         """
-        s = _scores(raw)
+        s = probabilities_1d(raw)
         y = _binary(outcome, len(s))
         w = np.ones(len(s)) if sample_weight is None else np.asarray(sample_weight, dtype=np.float64)
         if w.shape != s.shape or not np.all(np.isfinite(w)) or np.any(w < 0):
@@ -176,7 +196,7 @@ class MonotoneCalibrator:
     def decision(self, raw) -> np.ndarray:
         """Calibrated logit a·ln s − b·ln(1−s) + c: strictly increasing, never saturates."""
         self._check_fitted()
-        u, v = _log_features(_scores(raw))
+        u, v = _log_features(probabilities_1d(raw))
         return self.a * u + self.b * v + self.c
 
     def transform(self, raw) -> np.ndarray:
@@ -289,7 +309,7 @@ def _raw_matrix(raw) -> np.ndarray:
         raise InputError(f"raw scores must have shape (rows, classes) with at least 2 classes, got {r.shape}")
     bad = ~np.isfinite(r) | (r < 0) | (r > 1)
     if np.any(bad):
-        raise InputError(f"raw scores must be probabilities in [0, 1]; {int(bad.sum())} values are not")
+        raise InputError(f"raw scores must lie in [0, 1]; {int(bad.sum())} values do not")
     return r
 
 
@@ -412,7 +432,7 @@ def reliability_table(predicted, outcome, *, n_bins: int = 10, strategy: str = "
     Reliability
         ``(lower, upper, mean_predicted, observed, count, error)``.
     """
-    p = _scores(predicted, "predicted probabilities")
+    p = probabilities_1d(predicted, "predicted probabilities")
     y = _binary(outcome, len(p))
     if not (isinstance(n_bins, (int, np.integer)) and n_bins >= 1):
         raise ConfigError(f"n_bins must be a positive integer, got {n_bins!r}")

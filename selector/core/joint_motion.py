@@ -92,20 +92,16 @@ def joint_zero_motion(parallax_mas, parallax_error_mas, pmra_mas_yr, pmdec_mas_y
 
     Parameters
     ----------
-    parallax_mas, parallax_error_mas : array_like of float
-        Parallax ϖ and its standard error σϖ (mas).
-    pmra_mas_yr, pmdec_mas_yr : array_like of float
-        Proper motion μα* (including cos δ) and μδ (mas/yr).
+    parallax_mas, parallax_error_mas, pmra_mas_yr, pmdec_mas_yr : array_like of float
+        As in :func:`selector.core.astrometry.zero_motion`.
     pmra_error_mas_yr, pmdec_error_mas_yr : array_like of float
-        Their standard errors (mas/yr). Negative errors raise
+        Standard errors of the proper motion (mas/yr). Negative errors raise
         :class:`~selector.errors.InputError`; zero or NaN errors give NaN for the row.
     parallax_pmra_corr, parallax_pmdec_corr, pmra_pmdec_corr : array_like of float, optional
         Correlation coefficients ρϖα, ρϖδ, ραδ. None or NaN count as 0; values outside [−1, 1] raise
         :class:`~selector.errors.InputError`.
     parallax_zero_point_mas : float, optional
-        Parallax ϖ0 that a source at infinite distance shows in the catalogue (mas); the default
-        −0.017 mas is the median quasar parallax of a recent space astrometric solution (Lindegren
-        et al. 2021, A&A 649, A4; from memory).
+        As in :func:`selector.core.astrometry.zero_motion`.
     error_inflation : float or array_like of float, optional
         Factor k > 0 multiplying the three standard errors (so C by k²), for catalogues whose formal
         errors are too small. Correlations are unchanged.

@@ -24,6 +24,7 @@ from typing import NamedTuple
 
 import numpy as np
 
+from selector.core.calibration import probabilities_1d
 from selector.errors import ConfigError, InputError
 
 __all__ = [
@@ -462,7 +463,7 @@ def expected_purity(p_quasar) -> Expectation:
     Expectation
         ``(value, error)`` = (Σp/n, √Σp(1−p)/n); NaN for an empty list.
     """
-    p = _probabilities_1d(p_quasar)
+    p = probabilities_1d(p_quasar, "probabilities")
     if len(p) == 0:
         return Expectation(float("nan"), float("nan"))
     n = len(p)
@@ -487,19 +488,9 @@ def expected_counts(proba) -> Expectation:
     """
     a = np.asarray(proba, dtype=np.float64)
     if a.ndim == 1:
-        p = _probabilities_1d(a)
+        p = probabilities_1d(a, "probabilities")
         return Expectation(float(p.sum()), float(np.sqrt(np.sum(p * (1.0 - p)))))
     p = _proba(a)
     if np.any(p > 1):
         raise InputError(f"proba holds {int(np.sum(p > 1))} values above one")
     return Expectation(p.sum(axis=0), np.sqrt(np.sum(p * (1.0 - p), axis=0)))
-
-
-def _probabilities_1d(p_quasar) -> np.ndarray:
-    p = np.asarray(p_quasar, dtype=np.float64)
-    if p.ndim != 1:
-        raise InputError(f"probabilities must be a 1-D array, got shape {p.shape}")
-    bad = ~np.isfinite(p) | (p < 0) | (p > 1)
-    if np.any(bad):
-        raise InputError(f"probabilities must lie in [0, 1]; {int(bad.sum())} values do not")
-    return p
