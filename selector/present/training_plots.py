@@ -19,12 +19,24 @@ from selector.store.layout import SKY_PLOT_FILES, TRAINING_PLOT_FILES
 __all__ = ["write_training_plots"]
 
 
-def _save_png(fig, path: Path) -> None:
+def _save_png(fig, path: Path) -> Path:
+    """Lay the figure out, write it to ``path`` and return ``path``."""
     from matplotlib.backends.backend_agg import FigureCanvasAgg
 
+    fig.tight_layout()
     FigureCanvasAgg(fig)
     with atomic_path(path) as tmp:
         fig.savefig(tmp, format="png", dpi=110, metadata={"Software": None})
+    return path
+
+
+def _class_panels(classes):
+    """A figure with one panel per class, side by side, and its axes in class order."""
+    from matplotlib.figure import Figure
+
+    k = len(classes)
+    fig = Figure(figsize=(3.7 * k, 3.6))
+    return fig, [fig.add_subplot(1, k, i + 1) for i in range(k)]
 
 
 def _nan(values) -> np.ndarray:
@@ -55,20 +67,15 @@ def write_training_plots(evaluation: TrainingEvaluation, out_dir: Path) -> list[
     classes = e.classes
     thr = np.asarray(e.thresholds)
 
-    k = len(classes)
-    fig = Figure(figsize=(3.7 * k, 3.6))
-    for i, name in enumerate(classes):
-        ax = fig.add_subplot(1, k, i + 1)
+    fig, axes = _class_panels(classes)
+    for name, ax in zip(classes, axes):
         ax.plot(thr, _nan(e.threshold_curves[name].completeness), label="completeness")
         ax.plot(thr, _nan(e.threshold_curves[name].purity), label="purity")
         ax.axvline(e.threshold, color="0.6", lw=0.8, ls="--")
         ax.set(title=name, xlabel=f"threshold on P({name})", ylim=(0, 1.02))
-        if i == 0:
-            ax.legend(loc="lower left")
+    axes[0].legend(loc="lower left")
     fig.suptitle("held-out completeness and purity at the labelled class mix")
-    fig.tight_layout()
-    paths.append(out_dir / TRAINING_PLOT_FILES[0])
-    _save_png(fig, paths[-1])
+    paths.append(_save_png(fig, out_dir / TRAINING_PLOT_FILES[0]))
 
     fig = Figure(figsize=(4.8, 4.2))
     ax = fig.add_subplot(1, 1, 1)
@@ -81,24 +88,18 @@ def write_training_plots(evaluation: TrainingEvaluation, out_dir: Path) -> list[
                     color="white" if frac[r, c] > 0.5 else "black", fontsize=8)
     ax.set(xticks=range(len(classes)), yticks=range(len(classes)), xticklabels=classes, yticklabels=classes,
            xlabel="most probable class", ylabel="true class", title="held-out confusion matrix")
-    fig.tight_layout()
-    paths.append(out_dir / TRAINING_PLOT_FILES[1])
-    _save_png(fig, paths[-1])
+    paths.append(_save_png(fig, out_dir / TRAINING_PLOT_FILES[1]))
 
-    fig = Figure(figsize=(3.7 * k, 3.6))
-    for i, name in enumerate(classes):
-        ax = fig.add_subplot(1, k, i + 1)
+    fig, axes = _class_panels(classes)
+    for name, ax in zip(classes, axes):
         ax.plot([0, 1], [0, 1], color="0.7", lw=0.8)
         curves = e.calibration_curves[name]
         for kind, cc, style in (("raw", curves.raw, "o--"), ("calibrated", curves.calibrated, "s-")):
             ax.plot(_nan(cc.mean_predicted), _nan(cc.observed_fraction), style, ms=3, label=kind)
         ax.set(title=name, xlabel=f"predicted P({name})", ylabel="observed fraction", xlim=(0, 1), ylim=(0, 1))
-        if i == 0:
-            ax.legend(loc="upper left")
+    axes[0].legend(loc="upper left")
     fig.suptitle("calibration on held-out folds, at the labelled class mix")
-    fig.tight_layout()
-    paths.append(out_dir / TRAINING_PLOT_FILES[2])
-    _save_png(fig, paths[-1])
+    paths.append(_save_png(fig, out_dir / TRAINING_PLOT_FILES[2]))
 
     pi = e.importance
     fig = Figure(figsize=(6.4, 0.25 * len(pi.features) + 1.2))
@@ -108,9 +109,7 @@ def write_training_plots(evaluation: TrainingEvaluation, out_dir: Path) -> list[
     ax.set(yticks=ypos, yticklabels=pi.features, xlabel="drop in average precision of P(quasar)",
            title="permutation importance (held-out folds)")
     ax.tick_params(axis="y", labelsize=7)
-    fig.tight_layout()
-    paths.append(out_dir / TRAINING_PLOT_FILES[3])
-    _save_png(fig, paths[-1])
+    paths.append(_save_png(fig, out_dir / TRAINING_PLOT_FILES[3]))
 
     fig = Figure(figsize=(6.0, 4.6))
     ax = fig.add_subplot(1, 1, 1)
@@ -125,9 +124,7 @@ def write_training_plots(evaluation: TrainingEvaluation, out_dir: Path) -> list[
     ax.set(xlabel="quasar completeness", ylabel="quasar purity", xlim=(0, 1.01), ylim=(0, 1.01),
            title="classifier against the published criteria (held out)")
     ax.legend(loc="lower left", fontsize=7)
-    fig.tight_layout()
-    paths.append(out_dir / TRAINING_PLOT_FILES[4])
-    _save_png(fig, paths[-1])
+    paths.append(_save_png(fig, out_dir / TRAINING_PLOT_FILES[4]))
     if e.sky is not None:
         paths += _sky_plots(e, out_dir)
     return paths
@@ -153,9 +150,7 @@ def _sky_plots(e: TrainingEvaluation, out_dir: Path) -> list[Path]:
     ax.set(xlabel="threshold on P(quasar) (at the mix named)", ylim=(0, 1.02),
            title="held-out quasar completeness and purity")
     ax.legend(loc="lower left", fontsize=7)
-    fig.tight_layout()
-    paths = [out_dir / SKY_PLOT_FILES[0]]
-    _save_png(fig, paths[-1])
+    paths = [_save_png(fig, out_dir / SKY_PLOT_FILES[0])]
 
     r = sky.reliability
     fig = Figure(figsize=(4.8, 4.4))
@@ -166,7 +161,5 @@ def _sky_plots(e: TrainingEvaluation, out_dir: Path) -> list[Path]:
     ax.set(xlabel="P(quasar) on the sky", ylabel="observed quasar fraction", xlim=(0, 1), ylim=(0, 1),
            title="reliability after the prior adjustment")
     ax.legend(loc="upper left", fontsize=7)
-    fig.tight_layout()
-    paths.append(out_dir / SKY_PLOT_FILES[1])
-    _save_png(fig, paths[-1])
+    paths.append(_save_png(fig, out_dir / SKY_PLOT_FILES[1]))
     return paths

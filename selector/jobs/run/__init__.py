@@ -118,14 +118,8 @@ class RunResult:
     ----------
     ok : bool
         Every tile finished and the merged outputs are complete.
-    tiles : int
-        Tiles in the merged outputs.
-    candidates : int
-        Rows of the ranked list.
-    cutflow : list of (stage, rows left)
-        Summed over the merged tiles.
-    outputs : dict
-        Paths of the merged outputs.
+    tiles, candidates, cutflow, outputs
+        As in :class:`~selector.jobs.run.merge.Merged`.
     failed : dict
         Tile id → one-line error, for tiles that failed.
     run_id : int or None
