@@ -72,7 +72,7 @@ from selector.core import blackhole, luminosity
 from selector.errors import InputError, SelectorError
 from selector.jobs.targets.outcomes import OUTCOME_COLUMNS
 from selector.settings.config import Config, config_hash
-from selector.store.io import atomic_path, fingerprint, read_table, write_parquet, write_votable
+from selector.store.io import astropy_table, atomic_path, fingerprint, read_table, write_parquet, write_votable
 from selector.store.layout import weigh_outputs
 
 __all__ = [
@@ -342,20 +342,7 @@ def _provenance(cfg: Config, path: Path) -> dict:
 
 
 def _table(columns: dict, descriptions: dict, meta: dict) -> Table:
-    t = Table(meta=meta)
-    for name, values in columns.items():
-        values = np.asarray(values)
-        if values.dtype == object:
-            values = values.astype(str)
-        if values.dtype.kind == "U" and values.size == 0:
-            values = np.zeros(0, dtype="U1")
-        t[name] = values
-        unit, doc = descriptions.get(name, (None, ""))
-        if unit:
-            t[name].unit = unit
-        if doc:
-            t[name].description = doc
-    return t
+    return astropy_table(columns, meta, lambda name: descriptions.get(name, (None, "")))
 
 
 def _write_outputs(masses: Table, rejects: Table, prov: dict, outputs: dict[str, Path]) -> None:

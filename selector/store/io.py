@@ -17,7 +17,7 @@ import warnings
 from contextlib import contextmanager
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Iterator, Sequence
+from typing import Callable, Iterator, Sequence
 
 import numpy as np
 import pyarrow as pa
@@ -701,3 +701,45 @@ def read_parquet(path: Path, columns: Sequence[str] | None = None) -> pa.Table:
         return pq.read_table(path, columns=columns)
     except (OSError, pa.ArrowException) as exc:
         raise InputError(f"{path}: cannot read ({_first_line(exc)})") from None
+
+
+def astropy_table(columns: dict, meta: dict, describe_column: Callable[[str], tuple[str | None, str]]):
+    """Build an astropy table from named columns, ready for any of the table writers.
+
+    Parameters
+    ----------
+    columns : dict
+        Column name → values (numpy arrays, sequences or Arrow arrays; Arrow text nulls become "").
+    meta : dict
+        Table metadata.
+    describe_column : callable
+        Column name → (unit or None, description or ""); what it gives is set on the column.
+
+    Returns
+    -------
+    astropy.table.Table
+        Object columns are written as text, and an empty text column gets a one-character dtype
+        because writers refuse zero-width strings.
+    """
+    from astropy.table import Table
+
+    t = Table()
+    for name, values in columns.items():
+        if isinstance(values, (pa.Array, pa.ChunkedArray)):
+            if pa.types.is_string(values.type) or pa.types.is_large_string(values.type):
+                values = np.asarray(values.fill_null("").to_pylist(), dtype=str)
+            else:
+                values = values.to_numpy(zero_copy_only=False)
+        values = np.asarray(values)
+        if values.dtype == object:
+            values = values.astype(str)
+        if values.dtype.kind == "U" and values.size == 0:
+            values = np.zeros(0, dtype="U1")
+        t[name] = values
+        unit, doc = describe_column(name)
+        if unit:
+            t[name].unit = unit
+        if doc:
+            t[name].description = doc
+    t.meta.update(meta)
+    return t

@@ -54,7 +54,7 @@ from selector.jobs.targets.known import KnownMatch, KnownObjects, match_known, r
 from selector.settings.config import Config, config_hash
 from selector.store.history import (STATUSES, CandidateSet, History, ListRecord, id_kind_of, ids_as_text,
                                     observed_ids)
-from selector.store.io import atomic_path, file_sha256, format_columns, provenance_path, read_parquet, write_table_file
+from selector.store.io import astropy_table, atomic_path, file_sha256, format_columns, provenance_path, read_parquet, write_table_file
 from selector.store.layout import (history_file, layout_of, target_full_list, target_list, target_text_list,
                                    targets_file, targets_summary)
 from selector.store.manifest import Manifest
@@ -200,26 +200,7 @@ class TargetsResult:
 
 
 def _astropy_table(columns: dict, meta: dict):
-    from astropy.table import Table
-
-    t = Table()
-    for name, values in columns.items():
-        if isinstance(values, (pa.Array, pa.ChunkedArray)):
-            if pa.types.is_string(values.type) or pa.types.is_large_string(values.type):
-                values = np.asarray(values.fill_null("").to_pylist(), dtype=str)
-            else:
-                values = values.to_numpy(zero_copy_only=False)
-        values = np.asarray(values)
-        if values.dtype == object:
-            values = values.astype(str)
-        if values.dtype.kind == "U" and values.size == 0:
-            values = np.zeros(0, dtype="U1")
-        t[name] = values
-        unit = unit_of(name)
-        if unit:
-            t[name].unit = unit
-    t.meta.update(meta)
-    return t
+    return astropy_table(columns, meta, lambda name: (unit_of(name), ""))
 
 
 def make_targets(cfg: Config, new_only: bool = False, log=print) -> TargetsResult:
