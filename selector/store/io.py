@@ -604,26 +604,41 @@ def text_writable(column: pa.ChunkedArray | pa.Array) -> bool:
     return False
 
 
-def text_body(table: pa.Table, delimiter: str) -> bytes:
-    """The rows of ``table`` (no header) as :func:`write_table_file` writes them in ECSV (``" "``) or CSV (``","``).
+def text_cells(table: pa.Table) -> list[pa.Array]:
+    """Each column of ``table`` as the text :func:`write_table_file` writes in ECSV and CSV cells.
 
     Floats are rounded to the decimals their column warrants, as :func:`format_columns` does. Every
-    column must pass :func:`text_writable`.
+    column must pass :func:`text_writable`. The cells are the same in both formats, so a caller
+    writing both formats formats them once (:func:`text_lines`).
     """
-    arrays = []
+    cells = []
     for name, col in zip(table.column_names, table.columns):
         col = col.combine_chunks() if isinstance(col, pa.ChunkedArray) else col
         if pa.types.is_float64(col.type):
             doc = describe(name)
-            arrays.append(float_text(col, None if doc is None else doc.decimals))
+            cells.append(float_text(col, None if doc is None else doc.decimals))
         elif pa.types.is_integer(col.type):
-            arrays.append(pc.cast(col, pa.string()))
+            cells.append(pc.cast(col, pa.string()))
         else:
-            arrays.append(col)
-    sink = pa.BufferOutputStream()
-    pacsv.write_csv(pa.table(arrays, names=table.column_names), sink,
-                    pacsv.WriteOptions(include_header=False, delimiter=delimiter, quoting_style="none"))
-    return sink.getvalue().to_pybytes()
+            cells.append(pc.cast(col, pa.string()))
+    return cells
+
+
+def text_lines(cells: list[pa.Array], delimiter: str) -> pa.Buffer:
+    """The rows made of ``cells`` (:func:`text_cells`) joined by ``delimiter``, one line each, as one buffer."""
+    pieces = []
+    for i, cell in enumerate(cells):
+        pieces += [cell, delimiter if i < len(cells) - 1 else "\n"]
+    lines = pc.binary_join_element_wise(*pieces, "")
+    if len(lines) == 0:
+        return pa.py_buffer(b"")
+    offsets = np.frombuffer(lines.buffers()[1], np.int32, count=len(lines) + 1, offset=4 * lines.offset)
+    return lines.buffers()[2].slice(int(offsets[0]), int(offsets[-1] - offsets[0]))
+
+
+def text_body(table: pa.Table, delimiter: str) -> bytes:
+    """The rows of ``table`` (no header) as :func:`write_table_file` writes them in ECSV (``" "``) or CSV (``","``)."""
+    return text_lines(text_cells(table), delimiter).to_pybytes()
 
 
 #: Units a VOTable may carry under another spelling of the same unit: VOUnit (the VOTable unit

@@ -30,7 +30,7 @@ from selector.jobs.train import read_card
 from selector.settings.config import MATCH_SECTIONS, SELECTION_SECTIONS, Config, config_hash
 from selector.store.generations import generation_digest
 from selector.store.io import (PARQUET_ROW_GROUP_ROWS, DurableBatch, describe_arrow_columns, parquet_writer_options,
-                               read_parquet, text_body, text_writable, write_json, write_parquet, write_table_file,
+                               text_cells, text_lines, text_writable, write_json, write_parquet, write_table_file,
                                write_text)
 from selector.store.keys import model_path, model_sha, result_config
 from selector.store.layout import MERGED_FILES, layout_of, merge_spool
@@ -246,28 +246,48 @@ def _rank_key(schema: pa.Schema) -> list[tuple[str, str]]:
 
 
 class _Runs:
-    """The candidates, cut into sorted runs: kept in memory while they fit one run, spilled to disk after."""
+    """The candidates, cut into sorted runs: kept in memory while they fit one run, spilled to disk after.
 
-    def __init__(self, spool: Path, schema: pa.Schema):
+    Tiles normally share one schema; when they do not (a column that is all null in one tile), the
+    schemas are unified as ``concat_tables(promote_options="permissive")`` does, each spilled run
+    with its own, and every block is cast to the unified schema when the runs are merged.
+    """
+
+    def __init__(self, spool: Path):
         self.spool = spool
-        self.schema = schema
-        self.key = _rank_key(schema)
+        self.schemas: list[pa.Schema] = []
         self.pending: list[pa.Table] = []
         self.pending_rows = 0
         self.files: list[Path] = []
         self.rows = 0
 
     def add(self, part: pa.Table) -> None:
+        if not self.schemas or part.schema != self.schemas[-1]:
+            self.schemas.append(part.schema)
         self.pending.append(part)
         self.pending_rows += part.num_rows
         self.rows += part.num_rows
         if self.pending_rows >= RUN_ROWS:
             self.spill()
 
+    @property
+    def schema(self) -> pa.Schema:
+        """The unified schema of every part added (one ``astro_id`` column when there was none)."""
+        if not self.schemas:
+            return pa.schema([("astro_id", pa.int64())])
+        return pa.unify_schemas(self.schemas, promote_options="permissive")
+
+    def _unified(self, table: pa.Table, schema: pa.Schema) -> pa.Table:
+        if table.schema == schema:
+            return table
+        return pa.concat_tables([schema.empty_table(), table], promote_options="permissive").cast(schema)
+
     def sorted_pending(self) -> pa.Table:
-        table = pa.concat_tables(self.pending) if self.pending else self.schema.empty_table()
-        self.pending, self.pending_rows = [], 0
-        return table.sort_by(self.key).combine_chunks() if table.num_rows else table
+        parts, self.pending, self.pending_rows = self.pending, [], 0
+        if not parts:
+            return self.schema.empty_table()
+        table = pa.concat_tables(parts, promote_options="permissive")
+        return table.sort_by(_rank_key(table.schema)).combine_chunks() if table.num_rows else table
 
     def spill(self) -> None:
         table = self.sorted_pending()
@@ -281,11 +301,13 @@ class _Runs:
         self.files.append(path)
 
     def merged(self):
-        """Yield the candidates in rank order, in batches."""
+        """Yield the candidates in rank order, in batches, with the unified schema."""
+        schema = self.schema
+        key = _rank_key(schema)
         if not self.files:  # everything fitted in one run: sorted in memory
             table = self.sorted_pending()
             if table.num_rows:
-                yield table
+                yield self._unified(table, schema)
             return
         self.spill()
         readers = [pa.ipc.open_file(pa.OSFile(str(p))) for p in self.files]
@@ -295,7 +317,8 @@ class _Runs:
         def refill(i):
             if buffers[i] is None or buffers[i].num_rows == 0:
                 if next_block[i] < readers[i].num_record_batches:
-                    buffers[i] = pa.Table.from_batches([readers[i].get_batch(next_block[i])])
+                    block = pa.Table.from_batches([readers[i].get_batch(next_block[i])])
+                    buffers[i] = self._unified(block, schema)
                     next_block[i] += 1
                 else:
                     buffers[i] = None
@@ -305,7 +328,7 @@ class _Runs:
         while any(b is not None for b in buffers):
             live = [i for i, b in enumerate(buffers) if b is not None]
             table = pa.concat_tables([buffers[i] for i in live])
-            order = pc.sort_indices(table, sort_keys=self.key).to_numpy()
+            order = pc.sort_indices(table, sort_keys=key).to_numpy()
             position = np.empty_like(order)
             position[order] = np.arange(len(order))
             # rows up to the first last-row of a run with more blocks on disk are final: nothing
@@ -322,29 +345,25 @@ class _Runs:
 
 def _streamed(cfg: Config, summaries: list[TileSummary], lay) -> tuple[_Runs, bool, int]:
     """Read every tile's candidates once into sorted runs; whether the fast text writers apply; rows."""
-    paths = [lay.tile_candidates(s.tile) for s in summaries]
-    schemas = []
-    for s, path in zip(summaries, paths):
-        try:
-            schemas.append(pq.read_schema(path).remove_metadata())
-        except (OSError, pa.ArrowException) as exc:
-            raise SelectorError(f"{path}: cannot read ({exc}); re-run with --force") from None
-    schema = pa.unify_schemas(schemas, promote_options="permissive") if schemas else pa.schema([("astro_id", pa.int64())])
-    runs = _Runs(merge_spool(lay), schema)
+    runs = _Runs(merge_spool(lay))
     writable = True
     ids = []
-    for s, path in zip(summaries, paths):
-        part = read_parquet(path).replace_schema_metadata(None)
+    for s in summaries:
+        path = lay.tile_candidates(s.tile)
+        try:
+            # one open per tile: ParquetFile has less set-up than read_table's dataset layer
+            part = pq.ParquetFile(path).read().replace_schema_metadata(None)
+        except (OSError, pa.ArrowException) as exc:
+            first = (str(exc).strip().splitlines() or [type(exc).__name__])[0]
+            raise SelectorError(f"{path}: cannot read ({first}); re-run with --force") from None
         if part.num_rows != int(s.cutflow[-1][1]):
             raise SelectorError(f"internal error: {path} holds {part.num_rows} candidates but the tile's cut-flow "
                                 f"ends with {s.cutflow[-1][1]}; re-run with --force")
+        runs.add(part)
         if not part.num_rows:
             continue
-        if part.schema != schema:
-            part = pa.concat_tables([schema.empty_table(), part], promote_options="permissive").cast(schema)
         writable = writable and all(text_writable(c) for c in part.columns)
         ids.append(part.column("astro_id").to_numpy(zero_copy_only=False))
-        runs.add(part)
     # the one check that needs every row at once: the ids only (8 bytes a candidate for integer ids)
     ids = np.concatenate(ids) if ids else np.zeros(0)
     if len(np.unique(ids)) != len(ids):
@@ -437,8 +456,9 @@ def _write_streamed(runs: _Runs, prov: dict, outputs: dict, batches: dict) -> No
         for part in runs.merged():
             part = _with_rank(part, first)
             first += part.num_rows
-            files["ecsv"].write(text_body(part, " "))
-            files["csv"].write(text_body(part, ","))
+            cells = text_cells(part)  # the same cells in both formats: formatted once
+            files["ecsv"].write(text_lines(cells, " "))
+            files["csv"].write(text_lines(cells, ","))
             # row groups of the usual size, so the file is the one a single write would give
             pending.append(part)
             pending_rows += part.num_rows
