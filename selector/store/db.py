@@ -23,7 +23,7 @@ from contextlib import contextmanager
 from pathlib import Path
 from typing import Iterator
 
-__all__ = ["BUSY_TIMEOUT_S", "connect", "transaction", "utc_now"]
+__all__ = ["BUSY_TIMEOUT_S", "Database", "connect", "transaction", "utc_now"]
 
 #: Seconds a connection waits for another one's write lock before giving up.
 BUSY_TIMEOUT_S = 30.0
@@ -84,3 +84,22 @@ def transaction(conn: sqlite3.Connection) -> Iterator[sqlite3.Connection]:
         conn.execute("ROLLBACK")
         raise
     conn.execute("COMMIT")
+
+
+class Database:
+    """Base of the classes that own one SQLite connection in ``self.db``: closing, and ``with`` use.
+
+    Subclasses open the connection in their ``__init__``; leaving a ``with`` block closes it.
+    """
+
+    db: sqlite3.Connection
+
+    def close(self) -> None:
+        """Close the connection."""
+        self.db.close()
+
+    def __enter__(self):
+        return self
+
+    def __exit__(self, *exc):
+        self.close()

@@ -38,7 +38,7 @@ import pyarrow as pa
 
 from selector.errors import InputError, SelectorError
 from selector.settings.config import Config
-from selector.store.db import connect, transaction, utc_now
+from selector.store.db import Database, connect, transaction, utc_now
 from selector.store.layout import history_file
 
 __all__ = [
@@ -196,7 +196,7 @@ def _upgrade(db: sqlite3.Connection) -> None:
                 db.execute(statement)
 
 
-class History:
+class History(Database):
     """The candidate history in one SQLite file.
 
     Parameters
@@ -222,15 +222,6 @@ class History:
                                     (str(SCHEMA_VERSION),))
         except sqlite3.DatabaseError as exc:
             raise InputError(f"{self.path}: not a usable candidate history ({exc})") from None
-
-    def close(self) -> None:
-        self.db.close()
-
-    def __enter__(self):
-        return self
-
-    def __exit__(self, *exc):
-        self.close()
 
     @contextmanager
     def transaction(self) -> Iterator[History]:

@@ -19,7 +19,7 @@ import sqlite3
 from pathlib import Path
 
 from selector.errors import SelectorError
-from selector.store.db import connect, transaction, utc_now
+from selector.store.db import Database, connect, transaction, utc_now
 
 #: Bumped when the tables change shape; an older manifest is rebuilt (its tiles are then redone).
 SCHEMA_VERSION = 1
@@ -95,7 +95,7 @@ CREATE TABLE IF NOT EXISTS files (
 _TILE_JSON = ("inputs", "outputs", "cutflow")
 
 
-class Manifest:
+class Manifest(Database):
     """Read and write the run manifest at ``path``.
 
     Parameters
@@ -137,15 +137,6 @@ class Manifest:
                 self.db.execute("DELETE FROM tiles")
                 self.db.execute("DELETE FROM files")
                 self.db.execute("UPDATE meta SET value = ? WHERE key = 'schema_version'", (str(SCHEMA_VERSION),))
-
-    def close(self) -> None:
-        self.db.close()
-
-    def __enter__(self):
-        return self
-
-    def __exit__(self, *exc):
-        self.close()
 
     # --- runs ------------------------------------------------------------------------------
     def begin_run(self, **fields) -> int:
