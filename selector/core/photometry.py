@@ -245,17 +245,8 @@ def ab_to_vega(mag_ab, band: str) -> np.ndarray:
 
     ``m_Vega = m_AB - Δm(band)`` (Jarrett et al. 2011, ApJ 735, 112; from memory).
 
-    Parameters
-    ----------
-    mag_ab : array_like
-        AB magnitudes (mag).
-    band : str
-        Band label, one of :data:`BANDS`.
-
-    Returns
-    -------
-    numpy.ndarray
-        Vega magnitudes (mag), float64.
+    Parameters, result and errors are those of :func:`vega_to_ab`, with AB magnitudes
+    ``mag_ab`` in and Vega magnitudes out.
     """
     offset = _check_band(band)
     return np.asarray(mag_ab, dtype=np.float64) - offset
@@ -489,12 +480,8 @@ def assef2018_r90(mags: Mapping[str, np.ndarray]) -> CriterionResult:
 def assef2018_r75(mags: Mapping[str, np.ndarray]) -> CriterionResult:
     """Assef et al. 2018, ApJS 234, 23 criterion R75 (75 % reliability).
 
-    Selected: ``m1 - m2 > 0.486 exp[0.092 (m2 - 13.07)**2]`` for ``m2 > 13.07``,
-    ``m1 - m2 > 0.486`` otherwise (Vega; coefficients from memory, as given in the
-    project design notes).  No faint limit is applied.
-
-    Takes ``mags`` and returns a :class:`CriterionResult` as :func:`stern2012` does, with
-    ``excess_mag = m1 - m2 - threshold(m2)`` (mag).
+    The form, inputs and result of :func:`assef2018_r90`, with the coefficients 0.486, 0.092 and
+    13.07 in place of 0.65, 0.153 and 13.86.
     """
     return _assef(mags, ASSEF2018_R75)
 

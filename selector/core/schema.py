@@ -61,10 +61,15 @@ _CORRELATION_PAIRS = [
     ("dec", "pmra"), ("dec", "pmdec"), ("parallax", "pmra"), ("parallax", "pmdec"),
 ]
 
-ASTROMETRIC_ROLES = (
-    Role("id", "astro_id", "id", None, True, "unique source identifier (integer or text)"),
+# Both input catalogues give positions the same way.
+_CATALOGUE_POSITION = (
     Role("ra", "ra_deg", "lon", "deg", True, "right ascension (ICRS) at the catalogue epoch"),
     Role("dec", "dec_deg", "lat", "deg", True, "declination (ICRS) at the catalogue epoch"),
+)
+
+ASTROMETRIC_ROLES = (
+    Role("id", "astro_id", "id", None, True, "unique source identifier (integer or text)"),
+    *_CATALOGUE_POSITION,
     Role("ra_error", "ra_error_mas", "error", "mas", False, "uncertainty of RA, including cos(dec)"),
     Role("dec_error", "dec_error_mas", "error", "mas", False, "uncertainty of declination"),
     Role("parallax", "parallax_mas", "value", "mas", True, "parallax"),
@@ -90,8 +95,7 @@ ASTROMETRIC_ROLES = (
 
 INFRARED_ROLES = (
     Role("id", "ir_id", "id", None, True, "unique source identifier (integer or text)"),
-    Role("ra", "ra_deg", "lon", "deg", True, "right ascension (ICRS) at the catalogue epoch"),
-    Role("dec", "dec_deg", "lat", "deg", True, "declination (ICRS) at the catalogue epoch"),
+    *_CATALOGUE_POSITION,
     Role("position_error", "pos_error_arcsec", "error", "arcsec", False, "positional uncertainty (1 sigma, per axis)"),
     Role("flags", "ir_flags", "text", None, False, "quality flags, kept as text"),
     Role("extended_flag", IR_EXTENDED_FLAG_COLUMN, "flag", None, False,
