@@ -42,8 +42,15 @@ def _num(x):
     return x if math.isfinite(x) else None
 
 
+class _Record:
+    """Base of the evaluation records whose JSON form is just their fields."""
+
+    def to_dict(self) -> dict:
+        return asdict(self)
+
+
 @dataclass(frozen=True)
-class OperatingPoint:
+class OperatingPoint(_Record):
     """The selection ``score >= threshold`` chosen to reach a completeness.
 
     Attributes
@@ -58,9 +65,6 @@ class OperatingPoint:
     completeness: float | None
     purity: float | None
     selected: int
-
-    def to_dict(self) -> dict:
-        return asdict(self)
 
 
 def purity_at_completeness(score: np.ndarray, positive: np.ndarray, target: float = COMPLETENESS_TARGET) -> OperatingPoint:
@@ -91,7 +95,7 @@ def purity_at_completeness(score: np.ndarray, positive: np.ndarray, target: floa
 
 
 @dataclass(frozen=True)
-class FoldSummary:
+class FoldSummary(_Record):
     """The cross-validation: folds, sky-region order, regions, rows held out by each fold."""
 
     n: int
@@ -99,33 +103,24 @@ class FoldSummary:
     regions: int
     rows_per_fold: list
 
-    def to_dict(self) -> dict:
-        return asdict(self)
-
 
 @dataclass(frozen=True)
-class ThresholdCurve:
+class ThresholdCurve(_Record):
     """Completeness, purity and selected rows of one class at every threshold of :data:`THRESHOLDS`."""
 
     completeness: list
     purity: list
     selected: list
 
-    def to_dict(self) -> dict:
-        return asdict(self)
-
 
 @dataclass(frozen=True)
-class CalibrationCurve:
+class CalibrationCurve(_Record):
     """Reliability diagram in equal bins of predicted probability (None in an empty bin)."""
 
     bin_edges: list
     count: list
     mean_predicted: list
     observed_fraction: list
-
-    def to_dict(self) -> dict:
-        return asdict(self)
 
 
 @dataclass(frozen=True)
@@ -140,16 +135,13 @@ class ClassCalibration:
 
 
 @dataclass(frozen=True)
-class Brier:
+class Brier(_Record):
     """Brier scores (all classes, and P(quasar) alone), raw and calibrated."""
 
     raw: float
     calibrated: float
     quasar_raw: float
     quasar_calibrated: float
-
-    def to_dict(self) -> dict:
-        return asdict(self)
 
 
 @dataclass(frozen=True)

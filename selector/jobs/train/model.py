@@ -38,7 +38,7 @@ from selector.jobs.train.sky import (PriorAdjustment, ScoredPopulation, band_col
 from selector.settings.config import Config
 
 __all__ = ["ClassPlan", "Model", "TrainOutputs", "TrainResult", "grouped_folds", "make_estimator", "plan_classes",
-           "raw_proba", "score_population", "thread_controller", "train_labelled"]
+           "raw_proba", "score_population", "thread_controller", "train_labelled", "zero_motion_features"]
 
 #: Held-out rows (over all folds together) used for permutation importances: their cost grows as
 #: features × repeats × rows × trees, while the ranking of the features settles with far fewer rows.
@@ -321,18 +321,42 @@ class Model:
         # blocks of rows bound the temporaries when a whole feature cache is scored at once
         for lo in range(0, n, _SCORE_BLOCK_ROWS):
             part = table.slice(lo, _SCORE_BLOCK_ROWS)
-            passed, plx_snr, chi2 = zero_motion(part, cfg)
-            idx = np.flatnonzero(passed)
+            idx, rows, X = zero_motion_features(part, cfg, self.feature_names)
             if len(idx) == 0:
                 continue
-            rows = part.take(pa.array(idx, pa.int64()))
-            X = feature_matrix(rows, cfg, self.feature_names, (plx_snr[idx], chi2[idx]))
             # tiles run in parallel processes; threads inside each would only compete for the cores
             with thread_controller().limit(limits=1):
                 s = self.scores(X, self._mags(rows))
             for column, values in zip(out, s):
                 column[lo + idx] = values
         return ModelScores(*out)
+
+
+def zero_motion_features(table: pa.Table, cfg: Config,
+                         feature_names) -> tuple[np.ndarray, pa.Table, np.ndarray | None]:
+    """The rows of a feature table that pass the zero-motion test, and their feature matrix.
+
+    Parameters
+    ----------
+    table : pyarrow.Table
+        Feature-cache rows.
+    cfg : Config
+        The configuration (zero-motion test and feature settings).
+    feature_names : sequence of str
+        The model's features, in its column order.
+
+    Returns
+    -------
+    tuple of (numpy.ndarray, pyarrow.Table, numpy.ndarray)
+        Indices of the passing rows in ``table``, those rows, and their feature matrix; the matrix is
+        None when no row passes.
+    """
+    passed, plx_snr, chi2 = zero_motion(table, cfg)
+    idx = np.flatnonzero(passed)
+    if len(idx) == 0:
+        return idx, table.slice(0, 0), None
+    rows = table.take(pa.array(idx, pa.int64()))
+    return idx, rows, feature_matrix(rows, cfg, feature_names, (plx_snr[idx], chi2[idx]))
 
 
 @lru_cache(maxsize=1)
@@ -543,12 +567,9 @@ def score_population(cfg: Config, result: TrainResult, data: LabelledSet) -> Sco
             continue
         # every cut of the run but the classifier's threshold (a probability of one passes it)
         others = select(usable, cfg, np.ones(usable.num_rows)).passed
-        passed, plx_snr, chi2 = zero_motion(usable, cfg)
-        idx = np.flatnonzero(passed)
+        idx, rows, X = zero_motion_features(usable, cfg, model.feature_names)
         if len(idx) == 0:
             continue
-        rows = usable.take(pa.array(idx, pa.int64()))
-        X = feature_matrix(rows, cfg, model.feature_names, (plx_snr[idx], chi2[idx]))
         with thread_controller().limit(limits=cfg.classifier.threads or None):
             d = model.decisions(X)
         em = np.exp(log_posteriors(d))
