@@ -154,7 +154,8 @@ def test_missing_column_is_one_line_error(tmp_path, rng):
     write_parquet(a, tmp_path / "astro.parquet")
     write_parquet(random_ir(10, rng), tmp_path / "ir.parquet")
     cfg = build(base_config(), tmp_path)
-    with pytest.raises(InputError, match=r"astro.parquet: column 'plx' named in the config is not in the file"):
+    with pytest.raises(InputError, match=r"astro.parquet: column 'plx' \(named by astrometric.columns.parallax\) is "
+                                         r"not in the file; the nearest is 'parallax_typo'; the file's columns are: sid, "):
         ingest_catalogue(cfg, "astrometric", log=lambda *a: None)
 
 

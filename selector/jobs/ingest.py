@@ -31,8 +31,8 @@ from selector import __version__
 from selector.core import schema, tiles
 from selector.settings.config import CatalogueConfig, Config, config_hash
 from selector.errors import InputError, SelectorError
-from selector.store.io import (DurableBatch, expand_files, fingerprint, float_text, iter_chunks, write_json,
-                               write_parquet)
+from selector.store.io import (DurableBatch, expand_files, file_columns, fingerprint, float_text, iter_chunks,
+                               missing_column_message, write_json, write_parquet)
 from selector.store.generations import carry_over, commit_generation, new_generation
 from selector.store.layout import Layout, layout_of
 from selector.store.lock import output_lock
@@ -677,6 +677,9 @@ def ingest(cfg: Config, log=print, *, kinds: tuple[str, ...] | None = None) -> d
     lay = layout_of(cfg)
     out = {}
     with output_lock(cfg, "ingest", exclusive=True):
+        # everything that can be checked is checked before the first row is written
+        inputs = check_inputs(cfg, kinds)
+        check_space(lay.output_dir, inputs)
         current = lay.pinned()
         new = new_generation(lay)
         try:
@@ -695,6 +698,70 @@ def ingest(cfg: Config, log=print, *, kinds: tuple[str, ...] | None = None) -> d
                 shutil.rmtree(new.generation_dir(new.generation), ignore_errors=True)
             raise
     return out
+
+
+def _column_keys(cat: CatalogueConfig, kind: str) -> dict[str, str]:
+    """Each source column → the config key that names it (for messages)."""
+    keys = {}
+    for role, spec in cat.columns.items():
+        keys.setdefault(spec.column, f"{kind}.columns.{role}")
+    for i, m in enumerate(cat.magnitudes):
+        keys.setdefault(m.column, f"{kind}.magnitudes[{i}].column")
+        if m.error_column:
+            keys.setdefault(m.error_column, f"{kind}.magnitudes[{i}].error_column")
+    return keys
+
+
+def check_inputs(cfg: Config, kinds) -> dict[str, list[Path]]:
+    """Check every input file of every catalogue to ingest before any row is read: it exists, is of
+    the format its name says, and holds every column the config names. Returns the files by catalogue.
+
+    Raises
+    ------
+    InputError
+        One line naming the file, the missing column, the key that names it, the nearest column
+        and the file's columns.
+    """
+    out = {}
+    for kind in kinds:
+        cat: CatalogueConfig = getattr(cfg, kind)
+        sources = _source_columns(plan_fields(cat, kind))
+        keys = _column_keys(cat, kind)
+        out[kind] = paths = expand_files(cat.files, cfg.path("."))
+        for path in paths:
+            have = file_columns(path, cat.format)
+            gone = [c for c in sources if c not in have]
+            if gone:
+                raise InputError(missing_column_message(path, gone[0], have, keys.get(gone[0]), taken=sources))
+    return out
+
+
+#: Disk an ingest may need per input byte: binary inputs are spooled and then written as tiles
+#: beside the generation in force; text shrinks to about half as Parquet, compressed text grows.
+_DISK_PER_INPUT_BYTE = {"binary": 2.0, "text": 1.0, "compressed": 4.0}
+
+
+def check_space(output_dir: Path, inputs: dict[str, list[Path]]) -> int:
+    """Refuse an ingest that cannot fit: free space against an estimate from the input sizes.
+
+    Returns the estimate in bytes.
+    """
+    need = 0.0
+    for paths in inputs.values():
+        for p in paths:
+            name = p.name.lower()
+            kind = "compressed" if name.endswith(".gz") else ("text" if name.endswith((".csv", ".ecsv", ".vot",
+                                                                                      ".votable", ".xml")) else "binary")
+            need += p.stat().st_size * _DISK_PER_INPUT_BYTE[kind]
+    folder = Path(output_dir)
+    while not folder.exists() and folder != folder.parent:
+        folder = folder.parent
+    free = shutil.disk_usage(folder).free
+    if need > free:
+        raise SelectorError(f"{output_dir}: {free / 2**20:,.1f} MiB free on its device but this ingest needs about "
+                            f"{need / 2**20:,.1f} MiB (the new tiles are written beside those in force); free some "
+                            "space or move project.output_dir")
+    return int(need)
 
 
 def _in_force(lay: Layout) -> str | None:

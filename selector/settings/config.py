@@ -11,6 +11,8 @@ from __future__ import annotations
 import hashlib
 import json
 import math
+import os
+import posixpath
 import re
 import tomllib
 from dataclasses import dataclass
@@ -62,6 +64,15 @@ class MagnitudeSpec:
     vega_to_ab_mag: Optional[float] = setting(None, doc="AB − Vega offset of an optical band given in Vega (required then)")
     null_values: list[float] = setting(default_factory=tuple, doc="values meaning 'not measured' in the magnitude and error columns, e.g. [99.0]")
 
+    @classmethod
+    def _from_config(cls, value, where):
+        # "AB", "Vega", "ab": a magnitude system is a name, not a spelling
+        if isinstance(value, dict) and isinstance(value.get("system"), str):
+            value = {**value, "system": value["system"].strip().lower()}
+        if not isinstance(value, dict):
+            raise ConfigError(f"{where} has the wrong type; expected a table, got {value!r}")
+        return build(cls, value, where)
+
     def _check(self, where):
         _parse_unit(self.unit, f"{where}.unit")
         unit = u.Unit(self.unit)
@@ -87,6 +98,15 @@ class CatalogueConfig:
         if not isinstance(value, dict):
             raise ConfigError(f"[{where}] must be a table")
         return build(cls, value, where)
+
+
+def inside_output(value: str, where: str) -> None:
+    """Refuse a path meant to lie below ``project.output_dir`` that is absolute or climbs out of it."""
+    norm = posixpath.normpath(str(value).replace("\\", "/"))
+    if not str(value).strip() or norm in (".", "") or norm.startswith("../") or norm == ".." or posixpath.isabs(norm) \
+            or Path(str(value)).expanduser().is_absolute():
+        raise ConfigError(f"{where} = {value!r} must name a place inside project.output_dir (a relative path without "
+                          "'..' that leaves it); write e.g. \"targets\"")
 
 
 def _parse_unit(text, where):
@@ -306,6 +326,7 @@ class ClassifierConfig:
     output_folder: str = setting("model", doc="folder below project.output_dir for the model, card and evaluation")
 
     def _check(self, where):
+        inside_output(self.output_folder, f"{where}.output_folder")
         for key in self.class_map:
             if not key.strip():
                 raise ConfigError(f"{where}.class_map has an empty label; give the class text as it appears in the data")
@@ -397,6 +418,8 @@ class TargetsConfig:
     def _check(self, where):
         import datetime
 
+        inside_output(self.output_folder, f"{where}.output_folder")
+        inside_output(self.history_file, f"{where}.history_file")
         if not re.fullmatch(r"[A-Za-z][A-Za-z0-9]{0,7}", self.name_prefix):
             raise ConfigError(f"{where}.name_prefix = {self.name_prefix!r} is not 1 to 8 letters or digits starting "
                               "with a letter (e.g. \"cand\")")
@@ -665,6 +688,11 @@ def load_config(path: str | Path) -> Config:
         raise ConfigError(f"{path}: no such configuration file") from None
     except OSError as exc:
         raise ConfigError(f"{path}: cannot read ({exc.strerror})") from None
+    except UnicodeDecodeError as exc:
+        raw = path.read_bytes()
+        line = raw.count(b"\n", 0, exc.start) + 1
+        raise ConfigError(f"{path}: line {line} is not UTF-8 text (byte 0x{raw[exc.start]:02x}); save the file as "
+                          "UTF-8") from None
     try:
         data = tomllib.loads(text)
     except tomllib.TOMLDecodeError as exc:
@@ -675,19 +703,45 @@ def load_config(path: str | Path) -> Config:
         raise ConfigError(f"{path}: {exc}") from None
 
 
+def _relative(path: str, base: Path) -> str:
+    """An absolute path written in a config, relative to the config's folder (others as written)."""
+    p = Path(str(path)).expanduser()
+    if not p.is_absolute() or not base.is_absolute():
+        return path
+    return Path(os.path.relpath(p, base)).as_posix()
+
+
 def plain(cfg: Config) -> dict:
-    """The configuration as plain data, without the machine-dependent base folder."""
+    """The configuration as plain data, without the machine-dependent base folder.
+
+    Absolute paths (output folder, input files, model, labels) are written relative to the config's
+    folder, so the same job set up in another folder gives the same record and hashes.
+    """
     data = to_plain(cfg)
-    data.pop("base_dir")
+    base = Path(data.pop("base_dir"))
+    data["project"]["output_dir"] = _relative(data["project"]["output_dir"], base)
+    catalogues = [data.get(k) for k in ("astrometric", "infrared", "known")]
+    catalogues.append((data.get("targets") or {}).get("known"))
+    for cat in catalogues:
+        if cat:
+            cat["files"] = [_relative(f, base) for f in cat["files"]]
+    classifier = data["classifier"]
+    if classifier.get("model"):
+        classifier["model"] = _relative(classifier["model"], base)
+    if classifier.get("labels"):
+        classifier["labels"]["file"] = _relative(classifier["labels"]["file"], base)
     return data
 
 
 def config_hash(cfg: Config, sections: tuple[str, ...] | None = None) -> str:
     """SHA-256 of the canonical JSON form of the configuration (or of some of its sections).
 
-    Paths are hashed as written, so the same config file gives the same hash on any machine.
+    Paths are hashed relative to the config's folder (:func:`plain`), and the output folder not at
+    all: where results go never changes what they are, so the same job run from another folder,
+    or into another output folder, gives the same hash and the same result bytes.
     """
     data = plain(cfg)
+    data["project"].pop("output_dir", None)
     if sections is not None:
         data = {k: data[k] for k in sections}
     text = json.dumps(data, sort_keys=True, separators=(",", ":"), ensure_ascii=True)

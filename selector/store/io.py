@@ -8,10 +8,13 @@ and VOTable are read through astropy (FITS memory-mapped) and handed out in chun
 
 from __future__ import annotations
 
+import errno
 import glob
 import hashlib
+import io
 import json
 import os
+import shutil
 import tempfile
 import warnings
 from contextlib import contextmanager
@@ -26,7 +29,7 @@ import pyarrow.csv as pacsv
 import pyarrow.parquet as pq
 
 from selector.core.columns import describe
-from selector.errors import InputError
+from selector.errors import InputError, SelectorError
 
 _ENDINGS = {
     ".parquet": "parquet", ".pq": "parquet", ".fits": "fits", ".fit": "fits", ".fits.gz": "fits",
@@ -116,19 +119,76 @@ def read_table(path: Path, columns: Sequence[str] | None = None, fmt: str = "aut
     return pa.concat_tables(parts, promote_options="permissive"), units
 
 
+def file_columns(path: Path, fmt: str = "auto") -> list[str]:
+    """The column names of an input file, read from its header alone where the format allows.
+
+    Used to check every input before the first row is ingested. Raises :class:`InputError` with one
+    line for a file that is not what its name or ``fmt`` says (see :func:`csv_header`).
+    """
+    path = Path(path)
+    kind = guess_format(path) if fmt == "auto" else fmt
+    try:
+        if kind == "parquet":
+            return list(pq.read_schema(path).names)
+        if kind == "csv":
+            return csv_header(path)
+        if kind == "fits":
+            from astropy.io import fits
+
+            _check_fits_size(path)
+            with warnings.catch_warnings():
+                warnings.simplefilter("ignore")
+                with fits.open(path, memmap=True) as hdus:
+                    for hdu in hdus:
+                        if getattr(hdu, "columns", None) is not None:
+                            return list(hdu.columns.names)
+            raise InputError(f"{path}: holds no table; give the FITS file that holds the catalogue")
+        table, _ = next(((c.table, c.units) for c in _astropy(path, kind, None, 1 << 30)), (pa.table({}), {}))
+        return list(table.column_names)
+    except InputError:
+        raise
+    except FileNotFoundError:
+        raise InputError(f"{path}: no such file") from None
+    except (OSError, ValueError, pa.ArrowException, TypeError) as exc:
+        raise InputError(f"{path}: cannot read as {kind} ({_first_line(exc)}); is it damaged, or of another "
+                         "format than its name says?") from None
+
+
 def _first_line(exc) -> str:
     text = str(exc).strip().splitlines()
     return text[0] if text else type(exc).__name__
 
 
-def _missing(path: Path, have: Sequence[str], want: Sequence[str]):
-    import difflib
+def _missing(path: Path, have: Sequence[str], want: Sequence[str], where: dict | None = None):
+    """Refuse a file without a wanted column: name it, the nearest column the file has, and its columns.
 
+    ``where`` maps a column to the config key that names it, for the message.
+    """
     gone = [c for c in want if c not in have]
     if gone:
-        hint = difflib.get_close_matches(gone[0], list(have), n=1)
-        extra = f" (did you mean '{hint[0]}'?)" if hint else ""
-        raise InputError(f"{path}: column '{gone[0]}' named in the config is not in the file{extra}")
+        raise InputError(missing_column_message(path, gone[0], have, (where or {}).get(gone[0])))
+
+
+def missing_column_message(path: Path, column: str, have: Sequence[str], key: str | None = None,
+                           taken: Sequence[str] = ()) -> str:
+    """One line for a column the config names but the file lacks (nearest column, the file's columns).
+
+    The nearest is looked for first among the columns no other key names (``taken``): a renamed
+    column is usually one the config does not use yet.
+    """
+    import difflib
+
+    free = [h for h in have if h not in set(taken)]
+    hint = difflib.get_close_matches(column, free, n=1, cutoff=0.3) or difflib.get_close_matches(
+        column, list(have), n=1, cutoff=0.5)
+    if not hint:
+        lower = {h.lower(): h for h in have}
+        hint = [lower[column.lower()]] if column.lower() in lower else []
+    extra = f"; the nearest is '{hint[0]}'" if hint else ""
+    shown = ", ".join(list(have)[:25]) + (f" and {len(have) - 25} more" if len(have) > 25 else "")
+    named = f" (named by {key})" if key else " named in the config"
+    return (f"{path}: column '{column}'{named} is not in the file{extra}; the file's columns are: {shown or 'none'}; "
+            "fix the config or the file")
 
 
 def _parquet(path, kind, columns, chunk_rows):
@@ -154,29 +214,76 @@ def _arrow_units(schema: pa.Schema) -> dict[str, str]:
     return units
 
 
-def _csv(path, kind, columns, chunk_rows):
-    # Every column is read as text so that an unparsable value rejects its own row, not the file.
-    # Through pyarrow, so a compressed file (.csv.gz) gives its real header, as the reader below sees
-    # it; "utf-8-sig" drops a byte-order mark, which the reader also skips.
+#: Leading bytes of formats a file named ``.csv`` may really hold, with the advice for each.
+_MAGIC = ((b"\x1f\x8b", "is gzip-compressed; name it .csv.gz (or decompress it)"),
+          (b"PAR1", "is a Parquet file; name it .parquet or set format = \"parquet\""),
+          (b"SIMPLE  =", "is a FITS file; name it .fits or set format = \"fits\""),
+          (b"<?xml", "is XML (a VOTable?); name it .vot or set format = \"votable\""),
+          (b"PK\x03\x04", "is a zip archive; unpack it first"))
+
+
+def csv_header(path: Path) -> list[str]:
+    """The column names of a CSV file, after checking that it really is comma-separated text.
+
+    Raises
+    ------
+    InputError
+        One line for an empty file, a file of another format under a ``.csv`` name (compressed,
+        Parquet, FITS, XML, zip), or a header separated by something other than commas.
+    """
+    # Through pyarrow, so a compressed file (.csv.gz) gives its real header, as the reader sees it;
+    # "utf-8-sig" drops a byte-order mark, which the reader also skips.
+    path = Path(path)
+    if path.stat().st_size == 0:
+        raise InputError(f"{path}: is empty (0 bytes); a CSV file needs at least a header line of column names")
+    with open(path, "rb") as fh:
+        raw = fh.read(16)
+    if not path.name.lower().endswith(".gz"):
+        for magic, advice in _MAGIC:
+            if raw.startswith(magic):
+                raise InputError(f"{path}: {advice}")
     head = b""
     with pa.input_stream(str(path), compression="detect") as fh:
-        while b"\n" not in head:
+        while b"\n" not in head and len(head) < 1 << 24:
             block = fh.read(1 << 16)
             if not block:
                 break
             head += block
-    header = head.split(b"\n", 1)[0].decode("utf-8-sig", "replace").strip().split(",")
-    header = [h.strip().strip('"') for h in header]
+    line = head.split(b"\n", 1)[0].decode("utf-8-sig", "replace").strip()
+    if not line:
+        raise InputError(f"{path}: line 1 is empty; a CSV file starts with a header line of column names")
+    header = [h.strip().strip('"') for h in line.split(",")]
+    if len(header) == 1:
+        for sep, name in ((";", "semicolons"), ("\t", "tabs"), ("|", "vertical bars"), (" ", "spaces")):
+            if sep in line.strip():
+                raise InputError(f"{path}: line 1 separates its fields with {name}, not commas; convert it to "
+                                 "comma-separated values (or to Parquet)")
+    return header
+
+
+def _csv(path, kind, columns, chunk_rows):
+    # Every column is read as text so that an unparsable value rejects its own row, not the file.
+    header = csv_header(path)
     columns = header if columns is None else columns
     _missing(path, header, columns)
     convert = pacsv.ConvertOptions(include_columns=columns, column_types={c: pa.string() for c in columns},
                                    strings_can_be_null=True, quoted_strings_can_be_null=True)
     read = pacsv.ReadOptions(block_size=max(1 << 20, chunk_rows * 64))
-    reader = pacsv.open_csv(path, read_options=read, convert_options=convert)
+    try:
+        reader = pacsv.open_csv(path, read_options=read, convert_options=convert)
+    except pa.ArrowInvalid as exc:
+        raise _csv_problem(path, exc, len(header)) from None
     first = 0
     pending: list[pa.RecordBatch] = []
     rows = 0
-    for batch in reader:
+    batches = iter(reader)
+    while True:
+        try:
+            batch = next(batches)
+        except StopIteration:
+            break
+        except pa.ArrowInvalid as exc:
+            raise _csv_problem(path, exc, len(header)) from None
         pending.append(batch)
         rows += batch.num_rows
         while rows >= chunk_rows:
@@ -189,14 +296,58 @@ def _csv(path, kind, columns, chunk_rows):
         yield Chunk(path, first, pa.Table.from_batches(pending, schema=reader.schema))
 
 
+def _csv_problem(path: Path, exc: Exception, n_fields: int) -> InputError:
+    """Find the line a CSV reader stumbled on (a ragged row, bytes that are not UTF-8) and say what is wrong.
+
+    Only on the error path: the file is read again, as text, up to the bad line.
+    """
+    import codecs
+    import csv
+
+    with pa.input_stream(str(path), compression="detect") as raw:
+        decoder = codecs.getincrementaldecoder("utf-8")()
+        line = 1
+        while True:
+            block = raw.read(1 << 20)
+            try:
+                decoder.decode(block, final=not block)
+            except UnicodeDecodeError as bad:
+                start = min(max(bad.start, 0), max(len(block) - 1, 0))
+                byte = block[start] if block else 0
+                line += block[:start].count(b"\n")
+                return InputError(f"{path}: line {line} holds bytes that are not UTF-8 "
+                                  f"text (byte 0x{byte:02x}); save the file as UTF-8")
+            if not block:
+                break
+            line += block.count(b"\n")
+    with pa.input_stream(str(path), compression="detect") as raw, \
+            io.TextIOWrapper(raw, encoding="utf-8-sig", newline="") as fh:
+        reader = csv.reader(fh)
+        for row in reader:
+            if row and len(row) != n_fields:
+                return InputError(f"{path}: line {reader.line_num} has {len(row)} fields but the header has {n_fields}; "
+                                  "mend that line (a stray or missing comma or quote?)")
+    return InputError(f"{path}: cannot read as csv ({_first_line(exc)})")
+
+
 def _astropy(path, kind, columns, chunk_rows):
     from astropy.table import Table
 
     fmt = {"fits": "fits", "ecsv": "ascii.ecsv", "votable": "votable"}[kind]
     kwargs = {"memmap": True} if kind == "fits" else {}
     try:
-        tab = Table.read(path, format=fmt, **kwargs)
+        with warnings.catch_warnings():
+            # astropy warns before it fails on a damaged file; the one-line error below says it all
+            warnings.simplefilter("ignore")
+            tab = Table.read(path, format=fmt, **kwargs)
+            if kind == "fits":
+                _check_fits_size(path)
+    except InputError:
+        raise
     except Exception as exc:  # astropy raises many types for unreadable files
+        if kind == "fits" and ("buffer is too small" in str(exc) or "truncated" in str(exc).lower()):
+            raise InputError(f"{path}: the FITS file is truncated (shorter than its header says); copy it again "
+                             "from its source") from None
         raise InputError(f"{path}: cannot read as {kind} ({_first_line(exc)})") from None
     columns = tab.colnames if columns is None else columns
     _missing(path, tab.colnames, columns)
@@ -209,6 +360,22 @@ def _astropy(path, kind, columns, chunk_rows):
         yield Chunk(path, first, pa.table(arrays, names=list(columns)), units)
         if len(tab) == 0:
             break
+
+
+def _check_fits_size(path: Path) -> None:
+    """Refuse a FITS file whose data end before its headers say (astropy may read it without a word)."""
+    from astropy.io import fits
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        with fits.open(path, memmap=True) as hdus:
+            need = 0
+            for hdu in hdus:
+                info = hdu.fileinfo()
+                need = max(need, info["datLoc"] + hdu.size)
+    if Path(path).stat().st_size < need:
+        raise InputError(f"{path}: the FITS file is truncated ({Path(path).stat().st_size:,d} bytes, its headers "
+                         f"describe {need:,d}); copy it again from its source")
 
 
 def _astropy_column_to_arrow(col) -> pa.Array:
@@ -379,12 +546,48 @@ def atomic_path(path: Path, batch: DurableBatch | None = None):
     With a ``batch``, the file is only registered with it and put in place at its commit; without,
     it is a batch of one (fsync the file, rename, fsync the folder).
     """
-    if batch is not None:
-        with batch.path(path) as tmp:
+    try:
+        if batch is not None:
+            with batch.path(path) as tmp:
+                yield tmp
+            return
+        with DurableBatch() as own, own.path(path) as tmp:
             yield tmp
-        return
-    with DurableBatch() as own, own.path(path) as tmp:
-        yield tmp
+    except (OSError, pa.ArrowException) as exc:
+        # a full or read-only disk, in whatever words the writing library used: one line
+        err = _write_error(path, exc)
+        if err is None:
+            raise
+        raise err from None
+
+
+def no_space(exc: BaseException) -> bool:
+    """Whether an error means the device (or the quota) is full, however the library words it."""
+    if isinstance(exc, OSError) and exc.errno in (errno.ENOSPC, errno.EDQUOT):
+        return True
+    text = str(exc).lower()
+    return "no space left" in text or "disk quota exceeded" in text or "database or disk is full" in text
+
+
+def no_space_error(path: Path) -> SelectorError:
+    """The one line for a full device while writing ``path``."""
+    folder = Path(path).parent
+    try:
+        free = f"{shutil.disk_usage(folder).free / 2**20:,.1f} MiB free"
+    except OSError:
+        free = "free space unknown"
+    return SelectorError(f"{path}: no space left on the device ({free}); free some space or move "
+                         "project.output_dir, then run the command again (finished work is kept)")
+
+
+def _write_error(path: Path, exc: BaseException) -> SelectorError | None:
+    """A one-line error for a write that failed for a reason outside the program (full, read-only)."""
+    if no_space(exc):
+        return no_space_error(path)
+    if isinstance(exc, OSError) and exc.errno in (errno.EROFS, errno.EACCES, errno.EPERM):
+        return SelectorError(f"{path}: cannot write ({exc.strerror}); make {Path(path).parent} writable or move "
+                             "project.output_dir")
+    return None
 
 
 def write_parquet(table: pa.Table, path: Path, metadata: dict | None = None, *,
@@ -714,8 +917,11 @@ def read_parquet(path: Path, columns: Sequence[str] | None = None) -> pa.Table:
     """Read one of our own Parquet outputs, with a one-line error when it is damaged."""
     try:
         return pq.read_table(path, columns=columns)
+    except FileNotFoundError:
+        raise InputError(f"{path}: missing (it was written, then removed); run the command that writes it again "
+                         "(`selector ingest` for tiles)") from None
     except (OSError, pa.ArrowException) as exc:
-        raise InputError(f"{path}: cannot read ({_first_line(exc)})") from None
+        raise InputError(f"{path}: damaged, cannot read ({_first_line(exc)})") from None
 
 
 def astropy_table(columns: dict, meta: dict, describe_column: Callable[[str], tuple[str | None, str]]):
