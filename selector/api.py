@@ -29,20 +29,24 @@ def _config(config: Config | str | os.PathLike) -> Config:
     return config if isinstance(config, Config) else load_config(config)
 
 
-def ingest(config, *, log: Log = print) -> dict:
+def ingest(config, *, strict: bool = False, log: Log = print) -> dict:
     """Validate every row of the configured catalogues and split them into HEALPix tiles.
 
-    Returns the ingest summary of each catalogue, by catalogue name.
+    Returns the ingest summary of each catalogue, by catalogue name. ``strict`` makes the
+    plausibility checks errors (the previous tiles then stay in force).
     """
-    return ingest_job.ingest(_config(config), log=log)
+    return ingest_job.ingest(_config(config), log=log, strict=strict)
 
 
 def run(config, *, workers: int | None = None, executor: str | None = None, scheduler: str | None = None,
-        quiet: bool = False, verbose: bool = False, force: bool = False, log: Log = print) -> run_job.RunResult:
-    """Bring the run folder up to date: cross-match, test and rank every tile, merge the ranked list."""
+        quiet: bool = False, verbose: bool = False, force: bool = False, strict: bool = False,
+        log: Log = print) -> run_job.RunResult:
+    """Bring the run folder up to date: cross-match, test and rank every tile, merge the ranked list.
+
+    ``strict`` makes the plausibility checks errors (raised before the merge)."""
     config_path = None if isinstance(config, Config) else config
     return run_job.run(_config(config), workers=workers, executor=executor, scheduler=scheduler, quiet=quiet,
-                       verbose=verbose, log=log, force=force, config_path=config_path)
+                       verbose=verbose, log=log, force=force, config_path=config_path, strict=strict)
 
 
 def status(config, *, runs: int = 10, failed_only: bool = False) -> str:

@@ -36,7 +36,7 @@ def _cmd_ingest(args) -> int:
     from selector.store.layout import layout_of
 
     cfg = api.load_config(args.config)
-    api.ingest(cfg, log=print)
+    api.ingest(cfg, strict=args.strict, log=print)
     print(f"tiles written below {layout_of(cfg).tiles_dir}")
     return 0
 
@@ -45,7 +45,7 @@ def _cmd_run(args) -> int:
     from selector import api
 
     result = api.run(args.config, workers=args.workers, executor=args.executor, scheduler=args.scheduler,
-                     quiet=args.quiet, verbose=args.verbose, force=args.force)
+                     quiet=args.quiet, verbose=args.verbose, force=args.force, strict=args.strict)
     return 0 if result.ok else 1
 
 
@@ -108,6 +108,11 @@ def _cmd_demo(args) -> int:
     return 0
 
 
+def _strict_arg(p: argparse.ArgumentParser) -> None:
+    p.add_argument("--strict", action="store_true",
+                   help="make the plausibility warnings (units, magnitude systems, no match, no candidates) errors")
+
+
 def _allow_incomplete_arg(p: argparse.ArgumentParser) -> None:
     p.add_argument("--allow-incomplete", action="store_true",
                    help="go ahead on a run whose failed tiles are missing from its outputs (stated in the outputs)")
@@ -124,6 +129,7 @@ def build_parser() -> argparse.ArgumentParser:
 
     p = sub.add_parser("ingest", help="map columns, validate rows and split the catalogues into tiles")
     _config_arg(p)
+    _strict_arg(p)
     p.set_defaults(func=_cmd_ingest)
 
     p = sub.add_parser("run", help="cross-match, test and rank every tile; write the candidate list")
@@ -134,6 +140,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--quiet", action="store_true", help="print only the final summary")
     p.add_argument("--verbose", action="store_true", help="print a line per tile")
     p.add_argument("--force", action="store_true", help="recompute every tile, whatever the run manifest says")
+    _strict_arg(p)
     p.set_defaults(func=_cmd_run)
 
     p = sub.add_parser("demo", help="write an invented mock sky, ingest it, run the whole job and score it")

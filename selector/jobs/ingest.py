@@ -18,7 +18,7 @@ from __future__ import annotations
 import json
 import shutil
 from collections import Counter, defaultdict
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 
 import astropy.units as u
@@ -33,6 +33,8 @@ from selector.settings.config import CatalogueConfig, Config, config_hash
 from selector.errors import InputError, SelectorError
 from selector.store.io import (DurableBatch, expand_files, file_columns, fingerprint, float_text, iter_chunks,
                                missing_column_message, write_json, write_parquet)
+from selector.jobs.checks import ingest_findings, sample_rows, settle
+from selector.jobs.run.execute import fault
 from selector.store.generations import carry_over, commit_generation, new_generation
 from selector.store.layout import Layout, layout_of
 from selector.store.lock import output_lock
@@ -47,8 +49,16 @@ REASONS = (
     "negative_error",
     "correlation_out_of_range",
     "non_finite_value",
+    "beyond_physical_limit",
     "duplicate_id",
 )
+
+#: Values no star or quasar can have, in canonical units: a row beyond them is rejected
+#: (``beyond_physical_limit``). The fastest known star moves about 10.4 arcsec/yr and the nearest
+#: has a parallax of about 0.77 arcsec (common practice); errors beyond the same limits say nothing.
+#: Bounding the motions also bounds every tile's margin (it grows with the largest own motion).
+PHYSICAL_LIMITS = {"parallax_mas": 1e3, "parallax_error_mas": 1e3, "pmra_mas_yr": 1e4, "pmdec_mas_yr": 1e4,
+                   "pmra_error_mas_yr": 1e4, "pmdec_error_mas_yr": 1e4}
 
 # Oke & Gunn 1983, ApJ 266, 713 define m_AB = -2.5 log10(f_nu / erg s^-1 cm^-2 Hz^-1) - 48.60, i.e. a zero
 # point of 3630.78 Jy (1 Jy = 1e-23 cgs); the rounded 3631 Jy would shift every magnitude by 6.6e-5 mag.
@@ -245,6 +255,9 @@ def map_chunk(chunk, fields: list[_Field], id_kind: IdKind):
             checks.append(("correlation_out_of_range", np.abs(values) > 1.0, f.source))
         else:
             checks.append(("non_finite_value", np.isinf(values), f.source))
+        if f.canonical in PHYSICAL_LIMITS:
+            with np.errstate(invalid="ignore"):
+                checks.append(("beyond_physical_limit", np.abs(values) > PHYSICAL_LIMITS[f.canonical], f.source))
         arrays.append(pa.array(values, pa.float64()))
         names.append(f.canonical)
     # flux-density errors need the flux itself; done here once the magnitudes are known
@@ -360,6 +373,8 @@ class IngestSummary:
     rejected: dict[str, int]
     rows_per_tile: dict[int, int]
     files: dict[str, str]
+    #: evenly spaced accepted rows (canonical columns) for the plausibility checks; not written
+    sample: pa.Table | None = field(default=None, repr=False, compare=False)
 
     def as_dict(self):
         return {
@@ -398,6 +413,8 @@ def _ingest_into(cfg: Config, kind: str, lay: Layout) -> IngestSummary:
     id_buffers: list[pa.Table] = []
     buffered = 0
     id_kind = IdKind()
+    samples: list[pa.Table] = []
+    sampled = 0
     # One Arrow IPC file per flush, one record batch per tile (and per id bucket): a few large files
     # instead of one small Parquet file per tile per flush, which at order 5 over the whole sky meant
     # 12288 files per flush and cost more than everything else together.
@@ -466,6 +483,10 @@ def _ingest_into(cfg: Config, kind: str, lay: Layout) -> IngestSummary:
         if bad.size:
             table = _take(table, good)
         global_row = rows_in + good
+        picked = sample_rows(table, sampled)
+        if picked is not None:
+            samples.append(picked)
+            sampled += picked.num_rows
         ra = table.column("ra_deg").to_numpy()
         dec = table.column("dec_deg").to_numpy()
         fine = tiles.fine_index(ra, dec)
@@ -514,7 +535,8 @@ def _ingest_into(cfg: Config, kind: str, lay: Layout) -> IngestSummary:
     rejects = rejects.sort_by([("input_file", "ascending"), ("input_row", "ascending")])
     write_parquet(rejects, lay.ingest_rejects(kind), batch=batch)
     summary = IngestSummary(kind, rows_in, accepted, dict(rejected), rows_per_tile,
-                            {input_name(cfg, p): fingerprint(p) for p in paths})
+                            {input_name(cfg, p): fingerprint(p) for p in paths},
+                            sample=pa.concat_tables(samples, promote_options="permissive") if samples else None)
     if rows_in != accepted + sum(rejected.values()) or len(rejects) != sum(rejected.values()):
         raise SelectorError(f"internal error: {kind} ingest lost rows ({rows_in} in, {accepted} accepted, "
                             f"{sum(rejected.values())} rejected); nothing was trusted, please report this")
@@ -613,6 +635,7 @@ def _write_tiles(cfg, kind, parts, *, lay, duplicates, id_col, fields, reject_pa
             path = lay.tile_file(kind, order, tile)
             write_parquet(t, path, {**meta, "tile": str(tile)}, batch=batch)
             written.add(path.name)
+            fault("ingest:tile")
         else:
             write_parquet(t, lay.known_objects, meta, batch=batch)
         rows_per_tile[tile] = t.num_rows
@@ -649,7 +672,8 @@ def _with_units(table: pa.Table, units: dict[str, str]) -> pa.Table:
 CATALOGUES = ("astrometric", "infrared", "known")
 
 
-def ingest(cfg: Config, log=print, *, kinds: tuple[str, ...] | None = None) -> dict[str, IngestSummary]:
+def ingest(cfg: Config, log=print, *, kinds: tuple[str, ...] | None = None,
+           strict: bool = False) -> dict[str, IngestSummary]:
     """Ingest the configured catalogues into a new generation of tiles and put it in force.
 
     The output folder is held alone for the whole ingest (:mod:`selector.store.lock`), so no run
@@ -666,6 +690,9 @@ def ingest(cfg: Config, log=print, *, kinds: tuple[str, ...] | None = None) -> d
     kinds : tuple of str, optional
         The catalogues to ingest (default: every configured one); the other configured catalogues
         of the generation in force are carried over unchanged.
+    strict : bool
+        Make the plausibility checks (:mod:`selector.jobs.checks`) errors: the new generation is
+        then dropped and the previous one stays in force.
 
     Returns
     -------
@@ -691,6 +718,9 @@ def ingest(cfg: Config, log=print, *, kinds: tuple[str, ...] | None = None) -> d
             for kind in configured:
                 if kind not in kinds:
                     carry_over(current, new, kind)
+            settle(ingest_findings(cfg, out), strict=strict, log=log,
+                   what="the new tiles were dropped and the previous ones stay in force")
+            fault("ingest:commit")
             commit_generation(lay, new)
         except BaseException:
             # the generation in force stays; this one's files go now (a kill leaves them to the next start)

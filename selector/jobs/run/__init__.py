@@ -24,18 +24,24 @@ import traceback
 from dataclasses import dataclass, field, replace
 from pathlib import Path
 
+import numpy as np
+import pyarrow as pa
+
 from selector import __version__
 from selector.errors import SelectorError
+from selector.jobs.checks import moving, run_findings, settle
 from selector.jobs.run.commit import commit, committed_run, read_record, withdraw
-from selector.jobs.run.execute import KILL_AT_ENV, TileOutcome, execute, fault, one_line, run_tile, worker_count
+from selector.jobs.run.execute import (BLOCKED_BY, KILL_AT_ENV, TileOutcome, check_model, execute, fault, one_line,
+                                      run_tile, worker_count)
 from selector.core.selection import skipped_cut_notes
 from selector.jobs.run.merge import (TileSummary, account, file_stats, format_cutflow, merge, merged_from_summaries,
                                      merged_paths, provenance, total_cutflow)
 from selector.jobs.run.plan import (TilePlan, compute_plan, expected_rows, file_digest, file_row, ingest_summaries,
-                                    inputs_key, must_compute, output_stats, plan_tiles, scan_inputs, tile_ids)
+                                    inputs_key, must_compute, output_stats, plan_tiles, scan_inputs, tile_ids, tile_rel)
 from selector.jobs.run.progress import Reporter
 from selector.jobs.run.status import status_text
 from selector.settings.config import Config
+from selector.store.io import read_parquet
 from selector.store.keys import digest
 from selector.store.layout import FEATURE_FILES, SELECTION_FILES, Layout, layout_of
 from selector.store.lock import FolderLock, output_lock, run_lock
@@ -168,8 +174,10 @@ class _Run:
     scheduler: str | None
     force: bool
     config_path: str | os.PathLike | None
+    strict: bool = False
     records: dict = field(default_factory=dict)
     shas: dict = field(default_factory=dict)
+    missing: dict = field(default_factory=dict)
     expected_rows: dict = field(default_factory=dict)
     timings: RunTimings = field(default_factory=RunTimings)
     #: Fingerprints returned by the workers, stored in the manifest in batches: one lost in a crash
@@ -180,7 +188,7 @@ class _Run:
 
 def run(cfg: Config, workers: int | None = None, executor: str | None = None, scheduler: str | None = None, *,
         quiet: bool = False, verbose: bool = False, log=print, force: bool = False,
-        config_path: str | os.PathLike | None = None) -> RunResult:
+        config_path: str | os.PathLike | None = None, strict: bool = False) -> RunResult:
     """Bring the run folder up to date with the ingested tiles and the configuration.
 
     Parameters
@@ -200,6 +208,9 @@ def run(cfg: Config, workers: int | None = None, executor: str | None = None, sc
         Recompute every tile whatever the manifest says.
     config_path : path, optional
         The configuration file, named in the retry advice after failures.
+    strict : bool
+        Make the plausibility checks (:mod:`selector.jobs.checks`) errors, raised before the merge
+        (the previous merged outputs then stay as they were).
 
     Returns
     -------
@@ -227,7 +238,7 @@ def run(cfg: Config, workers: int | None = None, executor: str | None = None, sc
                        interval_s=cfg.run.progress_interval_s)
         man.update_run(run_id, log_file=str(log_path))
         ctx = _Run(cfg=cfg, layout=lay, man=man, run_id=run_id, rep=rep, executor=executor, workers=n,
-                   scheduler=scheduler, force=force, config_path=config_path)
+                   scheduler=scheduler, force=force, config_path=config_path, strict=strict)
         try:
             result = _run(ctx)
         except KeyboardInterrupt:
@@ -271,7 +282,10 @@ def _run(ctx: _Run) -> RunResult:
     needed = {rel for t in ids if not must_compute(cfg, records.get(t), compute, ctx.force)
               for rel in records[t]["inputs"]}
     ctx.shas = scan_inputs(cfg, man, recorded_inputs, ctx.workers, needed=needed)
+    check_model(cfg, compute.model)  # a bad model refuses the run before any tile is rewritten
+    ctx.missing = missing_inputs(cfg, ingest)
     plans, reused = plan_tiles(cfg, records, ctx.shas, tiles=ids, compute=compute, force=ctx.force)
+    check_run_space(lay, plans, cfg.tiling.order)
     stale = sorted(set(records) - set(ids))
     man.plan(sorted(plans), stale)
     for t in stale:  # tiles gone from the ingested catalogue must not be merged
@@ -300,6 +314,11 @@ def _run(ctx: _Run) -> RunResult:
     summaries = [TileSummary.from_record(records[t]) for t in finished]
     complete = not failed
     merge_prov = {**prov, "complete": complete, "failed_tiles": sorted(failed)}
+    warnings = settle(run_findings(cfg, {t: records[t] for t in finished}, ingest, _moving_stars(lay, finished)),
+                      strict=ctx.strict, log=rep.always,
+                      what="nothing was merged and the previous merged outputs stay as they were")
+    if warnings:
+        merge_prov["warnings"] = warnings
     outputs = merged_paths(cfg)
     merge_key = digest("merge", merge_prov, [(t, records[t]["match_key"], records[t]["content_key"],
                                              records[t]["selection_key"]) for t in finished])
@@ -392,6 +411,13 @@ def _record(ctx: _Run, t: int, plan: TilePlan, res: TileOutcome) -> TileOutcome:
         res = replace(res, action="failed",
                       error=f"{own}: holds {res.rows:,} rows but the ingest summary says {expected[t]:,}; the tiles "
                             "changed after ingest, run `selector ingest --config ...` again")
+    gone = [rel for rel, existed in (res.inputs or []) if not existed and rel in ctx.missing]
+    if res.action != "failed" and gone:
+        # the tile ran without a file the ingest wrote: its result would silently lack those rows
+        res = replace(res, action="failed",
+                      error=f"{BLOCKED_BY} {lay.tiles_dir / gone[0]}: missing (the ingest wrote it with "
+                            f"{ctx.missing[gone[0]]:,} rows, something removed it); run `selector ingest --config "
+                            "...` again")
     if res.action == "failed":
         ctx.man.record_tile(ctx.run_id, t, "failed", status="failed", error=res.error, duration_s=res.duration_s)
         return res
@@ -420,6 +446,67 @@ def _record(ctx: _Run, t: int, plan: TilePlan, res: TileOutcome) -> TileOutcome:
     return res
 
 
+#: Tiles whose feature caches are read for the stellar-locus check after a run (spread over the sky).
+_LOCUS_TILES = 32
+
+
+def _moving_stars(lay: Layout, finished: list[int]):
+    """Feature-cache rows with a significant proper motion from a spread of finished tiles."""
+    if not finished:
+        return None
+    picked = sorted(set(finished[i] for i in np.linspace(0, len(finished) - 1, min(_LOCUS_TILES, len(finished)),
+                                                         dtype=int)))
+    parts = []
+    for t in picked:
+        try:
+            parts.append(moving(read_parquet(lay.features(t))))
+        except SelectorError:
+            continue  # a damaged cache is the tile's own problem, reported elsewhere
+    return pa.concat_tables(parts, promote_options="permissive") if parts else None
+
+
+def missing_inputs(cfg: Config, ingest: dict) -> dict[str, int]:
+    """Tile files the ingest summaries list (with rows) that are not on disk: relative path → rows."""
+    lay = layout_of(cfg)
+    out = {}
+    for kind in ("astrometric", "infrared"):
+        present = set(lay.list_tiles(kind, cfg.tiling.order))
+        for t, n_rows in ingest[kind].get("rows_per_tile", {}).items():
+            if int(n_rows) and int(t) not in present:
+                out[tile_rel(cfg, kind, int(t))] = int(n_rows)
+    return out
+
+
+#: Disk a computed tile may need per byte of its own astrometric tile file (feature cache, the
+#: infrared blend counts, candidates, rejects), with room for the merged lists.
+_RUN_DISK_PER_TILE_BYTE = 2.0
+
+
+def check_run_space(lay: Layout, plans: dict, order: int) -> None:
+    """Refuse a run whose tiles to compute cannot fit: free space against an estimate."""
+    need = 0.0
+    for t, plan in plans.items():
+        if plan.mode != "select":
+            try:
+                need += lay.tile_file("astrometric", order, t).stat().st_size * _RUN_DISK_PER_TILE_BYTE
+            except OSError:
+                pass
+    free = shutil.disk_usage(lay.output_dir).free
+    if need > free:
+        raise SelectorError(f"{lay.output_dir}: {free / 2**20:,.1f} MiB free on its device but the tiles to compute "
+                            f"need about {need / 2**20:,.1f} MiB; free some space or move project.output_dir")
+
+
+def blocked_by(failed: dict) -> dict[str, list[int]]:
+    """Failed tiles grouped by the damaged or missing file of another tile that blocked them."""
+    out: dict[str, list[int]] = {}
+    for t, err in sorted(failed.items()):
+        if err and err.startswith(BLOCKED_BY):
+            cause = err[len(BLOCKED_BY):].strip().split(": ", 1)[0]
+            out.setdefault(cause, []).append(t)
+    return out
+
+
 def _summarise(ctx: _Run, result: RunResult, work_s: float) -> None:
     rep, a = ctx.rep, result.actions
     rep.info(format_cutflow(result.cutflow))
@@ -437,6 +524,9 @@ def _summarise(ctx: _Run, result: RunResult, work_s: float) -> None:
                    + (" (the merged list holds the finished tiles only; its provenance says complete: false):"
                       if result.merged else ":"))
         shown = sorted(result.failed.items())
+        for cause, blocked in sorted(blocked_by(result.failed).items()):
+            rep.always(f"  {cause} blocks {len(blocked)} tiles: {', '.join(map(str, blocked[:10]))}"
+                       + (" ..." if len(blocked) > 10 else ""))
         for t, err in shown[:20]:
             rep.always(f"  tile {t}: {err}")
         if len(shown) > 20:

@@ -37,7 +37,9 @@ from selector.store.tilereader import load_tile
 
 #: Environment variable naming a moment at which the run kills itself with SIGKILL (tests only):
 #: ``planned``, ``tile@N`` (N-th tile result received, not yet recorded), ``recorded@N``,
-#: ``merge:<ecsv|csv|parquet|cutflow|provenance>`` (after writing that merged file) or ``merged``.
+#: ``merge:<ecsv|csv|parquet|cutflow|provenance>`` (after writing that merged file) or ``merged``; in
+#: ingest, ``ingest:tile@N`` (N-th tile file written) and ``ingest:commit`` (all written, pointer not
+#: yet switched).
 KILL_AT_ENV = "SELECTOR_TEST_KILL_AT"
 
 
@@ -119,7 +121,17 @@ def one_line(exc: BaseException) -> str:
     return f"{type(exc).__name__}: {first} (unexpected; the run log has the traceback)"
 
 
+#: How the error of a tile that fails because of another tile's file begins (the cause follows).
+BLOCKED_BY = "blocked by a damaged input read for its margin:"
+
 _SCORERS: dict = {}
+
+
+def check_model(cfg: Config, model: tuple[str, str] | None) -> None:
+    """Load the classifier model once in this process before any tile is done, so a bad model file
+    (type outside the allow-list, card missing or not matching) refuses the run up front; in-process
+    and forked workers then reuse it."""
+    _scorer(cfg, model)
 
 
 def _scorer(cfg: Config, model: tuple[str, str] | None):
@@ -233,7 +245,13 @@ def _work(cfg: Config, tile: int, plan: TilePlan, batch: DurableBatch) -> TileOu
             if part.num_rows:
                 digests[rel] = table_digest(part)
 
-        own, neighbours, infrared = load_tile(cfg, tile, on_input, cache=TILE_CACHE)
+        try:
+            own, neighbours, infrared = load_tile(cfg, tile, on_input, cache=TILE_CACHE)
+        except InputError as exc:
+            if not str(exc).startswith(str(lay.tile_file("astrometric", cfg.tiling.order, tile))):
+                # a neighbour's file, read for the margin: say that this tile fails because of it
+                raise InputError(f"{BLOCKED_BY} {exc}") from None
+            raise
         content_key = combined_digest(digests)
         rows = own.num_rows
         out.inputs, out.content_key, out.rows = sorted(consulted.items()), content_key, rows
