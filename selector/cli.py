@@ -238,6 +238,15 @@ def main(argv=None) -> int:
     except KeyboardInterrupt:
         print("selector: interrupted", file=sys.stderr)
         return 130
+    except Exception as exc:
+        # a full disk can surface from any library (SQLite, Arrow, astropy) in its own words
+        from selector.store.io import no_space
+
+        if not no_space(exc):
+            raise
+        print(f"selector: no space left on the device ({str(exc).strip().splitlines()[0]}); free some space or move "
+              "project.output_dir, then run the command again (finished work is kept)", file=sys.stderr)
+        return 2
 
 
 if __name__ == "__main__":
