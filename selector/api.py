@@ -17,7 +17,8 @@ from selector.jobs import ingest as ingest_job, targets as targets_job, train as
 from selector.jobs import run as run_job
 from selector.present import plots, report as report_page, training_plots
 from selector.settings.config import Config, load_config
-from selector.store.layout import classifier_dir, layout_of, layout_of_run
+from selector.store.io import remove_stale_tmp
+from selector.store.layout import classifier_dir, layout_of, layout_of_run, targets_dir
 from selector.store.lock import FolderLock, output_lock
 
 Log = Callable[[str], None]
@@ -73,6 +74,7 @@ def train(config, *, allow_incomplete: bool = False, log: Log = print) -> train_
     """
     cfg = _config(config)
     with output_lock(cfg, "train", exclusive=False):
+        remove_stale_tmp(classifier_dir(cfg))  # left by a killed `selector train`
         record = run_job.committed_run(layout_of(cfg), "train", cfg=cfg, config_name=_name(config),
                                        allow_incomplete=allow_incomplete)
         _incomplete_note(record, log)
@@ -120,6 +122,7 @@ def targets(config, *, new_only: bool = False, allow_incomplete: bool = False,
     if cfg.targets is None:
         raise ConfigError(f"{config}: no [targets] section; add one (every key is in configs/default.toml)")
     with output_lock(cfg, "targets", exclusive=False):
+        remove_stale_tmp(targets_dir(cfg))  # left by a killed `selector targets`
         record = run_job.committed_run(layout_of(cfg), "targets", cfg=cfg, config_name=_name(config),
                                        allow_incomplete=allow_incomplete)
         _incomplete_note(record, log)

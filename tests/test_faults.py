@@ -20,6 +20,7 @@ import shutil
 import subprocess
 import sys
 import textwrap
+import time
 from contextlib import contextmanager
 from pathlib import Path
 
@@ -82,6 +83,7 @@ FAULT_KINDS = {
     "kill_during_reingest": "a kill while a re-ingest writes its tiles",
     "kill_before_switch": "a kill after a re-ingest wrote everything, before it switched",
     "leftovers_cleaned": "leftovers of an interrupted ingest are removed at the next start",
+    "stray_tmp_targets": "temporary files a killed `selector targets` left in its folder",
     "output_folder_in_hash": "the same job run from another folder",
 }
 
@@ -751,6 +753,18 @@ def test_leftovers_of_an_interrupted_ingest_are_removed(project):
     assert lay.current_generation() == "g000002"  # the leftover went first
 
 
+def test_stray_temporary_files_of_a_killed_targets_are_removed(project, capsys):
+    cfg = load_config(project)
+    folder = layout_of(cfg).output_dir / "targets"
+    folder.mkdir(parents=True, exist_ok=True)
+    old, fresh = folder / ".targets.ecsv.abc123.tmp", folder / ".targets.csv.def456.tmp"
+    old.write_bytes(b"x" * 10_000)
+    fresh.write_bytes(b"y")
+    os.utime(old, (time.time() - 3600, time.time() - 3600))
+    assert _cli(capsys, "targets", "--config", project)[0] == 0
+    assert not old.exists() and fresh.exists()  # a fresh one may belong to another command writing now
+
+
 # --- where the job runs ----------------------------------------------------------------------------
 
 def test_the_same_job_from_another_folder_gives_the_same_bytes(clean, tmp_path):
@@ -771,4 +785,4 @@ def test_the_same_job_from_another_folder_gives_the_same_bytes(clean, tmp_path):
 def test_every_fault_kind_has_a_test():
     """The battery's count: every kind listed is exercised above, and ends in one line or a warning."""
     names = {name for name in globals() if name.startswith("test_")}
-    assert len(FAULT_KINDS) == 39 and len(names) >= 28
+    assert len(FAULT_KINDS) == 40 and len(names) >= 29

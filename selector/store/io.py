@@ -16,6 +16,7 @@ import json
 import os
 import shutil
 import tempfile
+import time
 import warnings
 from contextlib import contextmanager
 from dataclasses import dataclass, field
@@ -559,6 +560,28 @@ def atomic_path(path: Path, batch: DurableBatch | None = None):
         if err is None:
             raise
         raise err from None
+
+
+#: A temporary file of an atomic write untouched this long was left by a killed process.
+STALE_TMP_S = 600.0
+
+
+def remove_stale_tmp(folder: Path, older_than_s: float = STALE_TMP_S) -> int:
+    """Remove temporary files of atomic writes cut short by a kill (``.<name>.<random>.tmp``) from
+    ``folder``; only those untouched for ``older_than_s``, since a reader's shared lock lets another
+    command of the same kind write there now. Returns how many were removed."""
+    folder = Path(folder)
+    if not folder.is_dir():
+        return 0
+    now, removed = time.time(), 0
+    for tmp in folder.glob(".*.tmp"):
+        try:
+            if now - tmp.stat().st_mtime > older_than_s:
+                tmp.unlink()
+                removed += 1
+        except OSError:
+            continue
+    return removed
 
 
 def no_space(exc: BaseException) -> bool:
