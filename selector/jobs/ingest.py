@@ -32,7 +32,7 @@ from selector.core import schema, tiles
 from selector.settings.config import CatalogueConfig, Config, config_hash
 from selector.errors import InputError, SelectorError
 from selector.store.io import (DurableBatch, expand_files, file_columns, fingerprint, float_text, iter_chunks,
-                               missing_column_message, write_json, write_parquet)
+                               missing_column_message, no_space, no_space_error, write_json, write_parquet)
 from selector.jobs.checks import ingest_findings, sample_rows, settle
 from selector.jobs.run.execute import fault
 from selector.store.generations import carry_over, commit_generation, new_generation
@@ -722,10 +722,12 @@ def ingest(cfg: Config, log=print, *, kinds: tuple[str, ...] | None = None,
                    what="the new tiles were dropped and the previous ones stay in force")
             fault("ingest:commit")
             commit_generation(lay, new)
-        except BaseException:
+        except BaseException as exc:
             # the generation in force stays; this one's files go now (a kill leaves them to the next start)
             if _in_force(lay) != new.generation:
                 shutil.rmtree(new.generation_dir(new.generation), ignore_errors=True)
+            if no_space(exc) and not isinstance(exc, SelectorError):
+                raise no_space_error(new.generation_dir(new.generation)) from None
             raise
     return out
 

@@ -30,7 +30,8 @@ import pyarrow as pa
 from selector import __version__
 from selector.errors import SelectorError
 from selector.jobs.checks import moving, run_findings, settle
-from selector.jobs.run.commit import commit, committed_run, read_record, withdraw
+# imported under another name, so `selector.jobs.run.commit` stays the module
+from selector.jobs.run.commit import commit as commit_outputs, committed_run, read_record, withdraw
 from selector.jobs.run.execute import (BLOCKED_BY, KILL_AT_ENV, TileOutcome, check_model, execute, fault, one_line,
                                       run_tile, worker_count)
 from selector.core.selection import skipped_cut_notes
@@ -41,7 +42,7 @@ from selector.jobs.run.plan import (TilePlan, compute_plan, expected_rows, file_
 from selector.jobs.run.progress import Reporter
 from selector.jobs.run.status import status_text
 from selector.settings.config import Config
-from selector.store.io import read_parquet
+from selector.store.io import no_space, no_space_error, read_parquet
 from selector.store.keys import digest
 from selector.store.layout import FEATURE_FILES, SELECTION_FILES, Layout, layout_of
 from selector.store.lock import FolderLock, output_lock, run_lock
@@ -252,6 +253,14 @@ def run(cfg: Config, workers: int | None = None, executor: str | None = None, sc
             rep.close()
             raise
         except BaseException as exc:
+            if no_space(exc):
+                # the manifest itself may be what cannot grow: say so in one line, whatever recording manages
+                try:
+                    man.end_run(run_id, "failed", message="no space left on the device")
+                    rep.close()
+                except Exception:
+                    pass
+                raise no_space_error(lay.manifest) from None
             man.end_run(run_id, "failed", message=one_line(exc))
             rep.to_file(traceback.format_exc())
             rep.close()
@@ -339,7 +348,7 @@ def _run(ctx: _Run) -> RunResult:
         t_merge = time.perf_counter()
         withdraw(lay)
         merged_out = merge(cfg, summaries, merge_prov, fault=fault)
-        commit(cfg, lay, merge_prov, merge_key=merge_key)
+        commit_outputs(cfg, lay, merge_prov, merge_key=merge_key)
         ctx.timings.merge_s = time.perf_counter() - t_merge
         merged = True
         man.set("merge", {"key": merge_key, "outputs": file_stats(outputs.values())})
