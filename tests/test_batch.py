@@ -216,7 +216,6 @@ def test_second_run_on_the_same_folder_is_refused(finished, capsys):
     with Manifest(layout_of(finished).manifest) as man:
         n_runs = len(man.runs())
     with run_job.run_lock(finished):
-        run_dir = layout_of(finished).run_dir
         with pytest.raises(SelectorError, match=rf"{finished.output_dir}: another `selector run` .*pid {os.getpid()}"):
             run_job.run(finished, workers=1, quiet=True, log=_quiet)
         code = cli.main(["run", "--config", str(Path(finished.base_dir) / "demo.toml"), "--quiet"])
