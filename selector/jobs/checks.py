@@ -125,26 +125,13 @@ def motion_findings(cfg, sample: pa.Table | None, rows_in: int, rejected: dict) 
     bright = _bright(sample, cfg)
     pmra, pmdec, plx = (_column(sample, c) for c in ("pmra_mas_yr", "pmdec_mas_yr", "parallax_mas"))
     if pmra is not None and pmdec is not None:
-        pm = np.hypot(pmra, pmdec)[bright]
-        pm = pm[np.isfinite(pm)]
-        if len(pm) >= MIN_ROWS:
-            med = float(np.median(pm))
-            lo, hi = PM_MEDIAN_RANGE_MAS_YR
-            if not lo <= med <= hi:
-                out.append(Finding("pm_units", f"astrometric: the median total proper motion of the brighter sources is "
-                                               f"{med:.3g} mas/yr, outside the {lo:g}–{hi:g} mas/yr stars show: check "
-                                               "astrometric.columns.pmra.unit and pmdec.unit (mas/yr against "
-                                               "arcsec/yr?)"))
+        out += _median_outside(np.hypot(pmra, pmdec)[bright], PM_MEDIAN_RANGE_MAS_YR, "pm_units",
+                               "the median total proper motion of the brighter sources", "mas/yr",
+                               setting="astrometric.columns.pmra.unit and pmdec.unit (mas/yr against arcsec/yr?)")
     if plx is not None:
-        p = np.abs(plx[bright])
-        p = p[np.isfinite(p)]
-        if len(p) >= MIN_ROWS:
-            med = float(np.median(p))
-            lo, hi = PARALLAX_MEDIAN_RANGE_MAS
-            if not lo <= med <= hi:
-                out.append(Finding("parallax_units", f"astrometric: the median |parallax| of the brighter sources is "
-                                                     f"{med:.3g} mas, outside the {lo:g}–{hi:g} mas stars show: check "
-                                                     "astrometric.columns.parallax.unit (mas against arcsec?)"))
+        out += _median_outside(np.abs(plx[bright]), PARALLAX_MEDIAN_RANGE_MAS, "parallax_units",
+                               "the median |parallax| of the brighter sources", "mas",
+                               setting="astrometric.columns.parallax.unit (mas against arcsec?)")
     return out
 
 
@@ -262,3 +249,16 @@ def settle(findings: list[Finding], *, strict: bool, log, what: str) -> list[str
         more = f" (and {len(findings) - 1} more warnings above)" if len(findings) > 1 else ""
         raise SelectorError(f"{findings[0].message}{more}; --strict makes this an error, so {what}")
     return lines
+
+
+def _median_outside(values, limits, code: str, what: str, unit: str, *, setting: str = "") -> list:
+    """A finding when the median of the finite ``values`` lies outside ``limits`` (none with too few rows)."""
+    values = values[np.isfinite(values)]
+    if len(values) < MIN_ROWS:
+        return []
+    med = float(np.median(values))
+    lo, hi = limits
+    if lo <= med <= hi:
+        return []
+    return [Finding(code, f"astrometric: {what} is {med:.3g} {unit}, outside the {lo:g}–{hi:g} {unit} stars show: "
+                          f"check {setting}")]
