@@ -20,6 +20,8 @@ BASE = {
     "astrometric": {
         "files": ["astro.parquet"],
         "epoch_jyear": 2016.0,
+        # no positional error columns here: floors stand in for them (the probabilistic match needs one)
+        "position_floor_arcsec": 0.001,
         "columns": {
             "id": "sid", "ra": "ra", "dec": "dec", "parallax": "plx", "parallax_error": "eplx",
             "pmra": "pmra", "pmdec": "pmdec", "pmra_error": "epmra", "pmdec_error": "epmdec",
@@ -29,6 +31,8 @@ BASE = {
     "infrared": {
         "files": ["ir.parquet"],
         "epoch_jyear": 2010.0,
+        # 5 sigma of 0.8 arcsec is the default largest radius, 4 arcsec: every pair within it is a candidate
+        "position_floor_arcsec": 0.8,
         "columns": {"id": "irid", "ra": "ra", "dec": "dec"},
         "magnitudes": [
             {"band": "3.4", "column": "m3p4", "error_column": "e_m3p4"},

@@ -207,7 +207,7 @@ def test_selection_change_reuses_the_feature_cache_and_match_change_recomputes(f
     assert result.actions["reselected"] == n
     assert _merged_bytes(back) == reference["merged"] and _tile_bytes(back) == reference["tiles"]
 
-    wider = _edit_config(finished, "radius_arcsec = 2.0", "radius_arcsec = 2.5")
+    wider = _edit_config(finished, "radius_arcsec = 4.0", "radius_arcsec = 4.5")
     result = run_job.run(wider, workers=2, quiet=True, log=_quiet)
     assert result.actions["computed"] == n
 

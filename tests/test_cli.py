@@ -45,9 +45,9 @@ def test_missing_input_file_is_one_line(tmp_path):
 
     cfg = tmp_path / "c.toml"
     cfg.write_text(
-        '[astrometric]\nfiles = ["nowhere.parquet"]\nepoch_jyear = 2016.0\n'
+        '[astrometric]\nfiles = ["nowhere.parquet"]\nepoch_jyear = 2016.0\nposition_floor_arcsec = 0.001\n'
         '[astrometric.columns]\n' + "".join(f'{k} = "{v}"\n' for k, v in BASE["astrometric"]["columns"].items()) +
-        '[infrared]\nfiles = ["ir.parquet"]\nepoch_jyear = 2010.0\n[infrared.columns]\nid = "a"\nra = "b"\ndec = "c"\n'
+        '[infrared]\nfiles = ["ir.parquet"]\nepoch_jyear = 2010.0\nposition_floor_arcsec = 0.8\n[infrared.columns]\nid = "a"\nra = "b"\ndec = "c"\n'
         '[[infrared.magnitudes]]\nband = "3.4"\ncolumn = "m3p4"\n[[infrared.magnitudes]]\nband = "4.6"\ncolumn = "m4p6"\n')
     proc = subprocess.run([sys.executable, "-m", "selector.cli", "ingest", "--config", str(cfg)],
                           capture_output=True, text=True)

@@ -20,7 +20,7 @@ CONFIGS = Path(__file__).resolve().parents[1] / "configs"
 
 def test_base_config_is_valid():
     cfg = build(base_config())
-    assert cfg.match.radius_arcsec == 2.0
+    assert cfg.match.radius_arcsec == 4.0 and cfg.match.method == "probabilistic"
     assert cfg.epoch_difference_yr == pytest.approx(-6.0)
 
 

@@ -1,6 +1,9 @@
-"""The selection pipeline: exact pairs at tile edges and poles, ownership, accounting, mock recovery."""
+"""The selection pipeline: exact pairs at tile edges and poles, ownership, one-to-one counterparts equal to the
+untiled sky, accounting, mock recovery."""
 
 from __future__ import annotations
+
+from dataclasses import replace
 
 import healpy as hp
 import numpy as np
@@ -20,6 +23,7 @@ from selector.jobs.run.tile import process_tile
 from selector.store.layout import layout_of
 
 from conftest import base_config, build, write_parquet
+from test_counterpart_match import assert_same_assignment, untiled_assignment
 
 
 def _special_points(rng, order):
@@ -80,6 +84,7 @@ def edge_sky(tmp_path_factory):
           "m3p4": m4p6 + rng.uniform(-0.2, 1.5, k), "e_m3p4": np.full(k, 0.03), "m4p6": m4p6, "e_m4p6": np.full(k, 0.05)}
     write_parquet(astro, tmp / "astro.parquet")
     write_parquet(ir, tmp / "ir.parquet")
+    data["match"] = {"chance_shifts": 1}  # one shifted copy is enough here, and keeps the fixture quick
     cfg = build(data, tmp)
     ingest(cfg, log=lambda *a: None)
     results = [process_tile(cfg, t, keep_pairs=True)
@@ -104,17 +109,35 @@ def test_pairs_equal_astropy_on_the_untiled_catalogues(edge_sky):
     assert len(expected) > 2000
 
 
-def test_every_source_in_exactly_one_tile(edge_sky):
+def test_every_source_in_exactly_one_tile_and_tiled_equals_untiled(edge_sky):
     cfg, astro, ir, moved, results = edge_sky
     feats = pa.concat_tables([r.features for r in results])
     ids = feats.column("astro_id").to_numpy()
     assert len(ids) == len(np.unique(ids))
     n_rows = sum(r.n_rows for r in results)
     assert n_rows == len(astro["sid"])
-    # nearest counterpart and counts agree with a brute-force look at the untiled pairs
+    # one-to-one: no infrared source is the counterpart of two astrometric sources
+    ir_ids = feats.column("ir_id").to_pylist()
+    assert len(ir_ids) == len(set(ir_ids))
+    # the tiled assignment equals the one made on the whole, untiled sky (poles, RA = 0/360, tile corners)
+    ref = untiled_assignment(cfg, astro, ir, moved)
+    assert_same_assignment(feats, ref)
+
+
+def test_nearest_method_keeps_the_plain_nearest_match(edge_sky):
     from astropy.coordinates import SkyCoord, search_around_sky
     import astropy.units as u
 
+    cfg, astro, ir, moved, _ = edge_sky
+    ncfg = replace(cfg, match=replace(cfg.match, method="nearest", chance_shifts=0))
+    # tiles at both poles, on RA = 0 and a few others: the places where a tile's edge matters
+    ns = tiles.nside(cfg.tiling.order)
+    chosen = sorted({int(t) for t in tiles.tile_of([0.0, 0.0, 359.99, 0.01, 45.0], [89.99, -89.99, 30.0, 30.0, 0.0],
+                                                  cfg.tiling.order)} | {0, hp.nside2npix(ns) - 1})
+    results = [process_tile(ncfg, t) for t in chosen]
+    feats = pa.concat_tables([r.features for r in results])
+    # reference: the nearest infrared source within the radius, from astropy search_around_sky on the untiled
+    # catalogues at the infrared epoch
     a = SkyCoord(moved.ra_deg * u.deg, moved.dec_deg * u.deg)
     b = SkyCoord(ir["ra"] * u.deg, ir["dec"] * u.deg)
     ia, ib, sep, _ = search_around_sky(a, b, cfg.match.radius_arcsec * u.arcsec)
@@ -124,8 +147,10 @@ def test_every_source_in_exactly_one_tile(edge_sky):
     for i, j, s in zip(ia, ib, sep.arcsec):
         if i not in best or s < best[i][1]:
             best[i] = (j, s)
+    owner = tiles.tile_of(astro["ra"], astro["dec"], cfg.tiling.order)
+    expected_ids = {int(astro["sid"][i]) for i in best if owner[i] in chosen}
     got_ids = feats.column("astro_id").to_numpy()
-    assert set(got_ids.tolist()) == {int(astro["sid"][i]) for i in best}
+    assert set(got_ids.tolist()) == expected_ids and len(expected_ids) > 100
     got_ir = feats.column("ir_id").to_pylist()
     got_n = feats.column("n_ir_within").to_numpy()
     got_blend = feats.column("ir_blend_count").to_numpy()
@@ -136,6 +161,7 @@ def test_every_source_in_exactly_one_tile(edge_sky):
         assert got_sep[k] == pytest.approx(s, abs=1e-6)
         assert got_n[k] == n_within[sid]
         assert got_blend[k] == blend[j]
+    assert np.all(np.isnan(feats.column("match_probability").to_numpy()))
 
 
 def test_cutflow_never_increases_and_adds_up(edge_sky):

@@ -324,7 +324,7 @@ def test_command_refuses_matching_keys(demo_run, capsys):
 def test_config_file_with_changed_matching_is_refused(demo_run, tmp_path):
     _, path, _ = demo_run
     edited = path.with_name("edited.toml")
-    edited.write_text(path.read_text().replace("radius_arcsec = 2.0", "radius_arcsec = 1.5"))
+    edited.write_text(path.read_text().replace("radius_arcsec = 4.0", "radius_arcsec = 3.5"))
     try:
         with pytest.raises(ConfigError, match=r"\[match\] differ.*a full `selector run` is needed"):
             tune.tune(edited)

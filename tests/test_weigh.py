@@ -256,9 +256,10 @@ def _toml(tmp_path):
     path = tmp_path / "c.toml"
     path.write_text(
         '[project]\noutput_dir = "out"\n'
-        '[astrometric]\nfiles = ["a.parquet"]\nepoch_jyear = 2016.0\n[astrometric.columns]\n'
+        '[astrometric]\nfiles = ["a.parquet"]\nepoch_jyear = 2016.0\nposition_floor_arcsec = 0.001\n'
+        '[astrometric.columns]\n'
         + "".join(f'{k} = "{v}"\n' for k, v in base_config()["astrometric"]["columns"].items())
-        + '[infrared]\nfiles = ["ir.parquet"]\nepoch_jyear = 2010.0\n[infrared.columns]\nid = "a"\nra = "b"\ndec = "c"\n'
+        + '[infrared]\nfiles = ["ir.parquet"]\nepoch_jyear = 2010.0\nposition_floor_arcsec = 0.8\n[infrared.columns]\nid = "a"\nra = "b"\ndec = "c"\n'
         '[[infrared.magnitudes]]\nband = "3.4"\ncolumn = "m3p4"\n[[infrared.magnitudes]]\nband = "4.6"\ncolumn = "m4p6"\n')
     return path
 

@@ -31,7 +31,8 @@ class Role:
         The internal column name written to tiles.
     kind : str
         ``id`` (integer or string identifier), ``lon``/``lat`` (a position, wrapped or range-checked),
-        ``value`` (a finite-or-missing quantity), ``error`` (non-negative), ``corr`` (in [−1, 1]),
+        ``value`` (a finite-or-missing quantity), ``error`` (non-negative), ``position_error``
+        (non-negative and present: the probabilistic cross-match needs it for every row), ``corr`` (in [−1, 1]),
         ``flag`` (a number or a boolean, nonzero meaning set; kept as 0/1 floats, NaN when missing),
         ``text`` (kept as a string), ``magnitude`` and ``magnitude_error``.
     unit : str or None
@@ -70,8 +71,9 @@ _CATALOGUE_POSITION = (
 ASTROMETRIC_ROLES = (
     Role("id", "astro_id", "id", None, True, "unique source identifier (integer or text)"),
     *_CATALOGUE_POSITION,
-    Role("ra_error", "ra_error_mas", "error", "mas", False, "uncertainty of RA, including cos(dec)"),
-    Role("dec_error", "dec_error_mas", "error", "mas", False, "uncertainty of declination"),
+    Role("ra_error", "ra_error_mas", "position_error", "mas", False,
+         "uncertainty of RA at the catalogue epoch, including cos(dec)"),
+    Role("dec_error", "dec_error_mas", "position_error", "mas", False, "uncertainty of declination at the catalogue epoch"),
     Role("parallax", "parallax_mas", "value", "mas", True, "parallax"),
     Role("parallax_error", "parallax_error_mas", "error", "mas", True, "parallax uncertainty"),
     Role("pmra", "pmra_mas_yr", "value", "mas / yr", True, "proper motion in RA, including cos(dec)"),
@@ -96,7 +98,13 @@ ASTROMETRIC_ROLES = (
 INFRARED_ROLES = (
     Role("id", "ir_id", "id", None, True, "unique source identifier (integer or text)"),
     *_CATALOGUE_POSITION,
-    Role("position_error", "pos_error_arcsec", "error", "arcsec", False, "positional uncertainty (1 sigma, per axis)"),
+    Role("position_error", "pos_error_arcsec", "position_error", "arcsec", False,
+         "positional uncertainty (1 sigma, per axis, the same on both axes)"),
+    Role("ra_error", "ir_ra_error_arcsec", "position_error", "arcsec", False,
+         "uncertainty of RA including cos(dec), when the catalogue gives one per axis"),
+    Role("dec_error", "ir_dec_error_arcsec", "position_error", "arcsec", False,
+         "uncertainty of declination, when the catalogue gives one per axis"),
+    Role("ra_dec_corr", "ir_ra_dec_corr", "corr", None, False, "correlation of the RA and declination errors"),
     Role("flags", "ir_flags", "text", None, False, "quality flags, kept as text"),
     Role("extended_flag", IR_EXTENDED_FLAG_COLUMN, "flag", None, False,
          "nonzero (or true) when the source is resolved (extended) in the infrared beam"),
@@ -109,6 +117,11 @@ KNOWN_ROLES = (
     Role("class", "known_class", "text", None, True, "class, e.g. quasar, star, galaxy"),
     Role("redshift", "redshift", "value", None, False, "redshift"),
 )
+
+#: Roles that describe a catalogue's positional errors (any one of these sets is enough for the
+#: probabilistic cross-match; a configured floor replaces them).
+POSITION_ERROR_ROLES = {"astrometric": (("ra_error", "dec_error"),),
+                        "infrared": (("position_error",), ("ra_error", "dec_error"))}
 
 ROLES = {"astrometric": ASTROMETRIC_ROLES, "infrared": INFRARED_ROLES, "known": KNOWN_ROLES}
 

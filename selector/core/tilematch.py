@@ -1,39 +1,131 @@
-"""The cross-match of one tile: propagate to the infrared epoch, pair within the radius, count blends.
+"""The cross-match of one tile: propagate, pair, weigh, assign one-to-one, count blends and chance matches.
 
 Pure functions over columnar tables (no files): the tile reader supplies the tables, the run job writes the
 result. Ownership: an astrometric source belongs to the tile its catalogue position falls in, so every source
 is processed in exactly one tile; its counterparts and competitors come from every tile within the margin.
+
+Two methods (``MatchSettings.method``):
+
+``probabilistic``
+    Every pair within ``n_sigma`` combined standard deviations (never beyond ``radius_arcsec``) gets the
+    Bayes factor of Budavári & Szalay (2008, ApJ 679, 301) from both positions' error ellipses at the
+    infrared epoch and a prior from the local infrared source density (:func:`tile_density_per_sr`, the
+    density of the infrared source's tile); each infrared source then becomes the counterpart of at most
+    one astrometric source, the most probable pairs first (:func:`selector.core.counterparts.assign_one_to_one`).
+    The greedy assignment decides each connected component of the pair graph on its own, so a tile gives
+    the same answer as the whole sky when every component holding an owned source lies inside the loaded
+    area; :func:`match_tile` checks that and asks for a larger margin when it does not.
+``nearest``
+    The nearest infrared source within ``radius_arcsec``, whatever the errors (kept for comparison).
 """
 
 from __future__ import annotations
 
 from dataclasses import dataclass
+from typing import NamedTuple
+
 import numpy as np
 import pyarrow as pa
+from scipy.sparse import coo_matrix
+from scipy.sparse.csgraph import connected_components
+
 from selector.core import tiles
 from selector.core.astrometry import propagate
+from selector.core.counterparts import (PositionCovariance, assign_one_to_one, astrometric_covariance,
+                                        bayes_factor, chance_counterparts, combine_covariances, infrared_covariance,
+                                        major_sigma_arcsec, prior_from_density, rotate_covariance,
+                                        search_radius_arcsec, shift_positions, tangent_offset)
 from selector.core.crossmatch import nearest_within, pairs_within
-from selector.core.frames import galactic
-
+from selector.core.frames import galactic, radec_to_xyz
 
 _ARCSEC_PER_RAD = 180.0 / np.pi * 3600.0
 
-
 #: Columns the match adds to each astrometric source in the feature cache.
 MATCH_COLUMNS = ("tile", "ra_match_deg", "dec_match_deg", "ir_id", "ir_ra_deg", "ir_dec_deg", "sep_arcsec",
-                 "n_ir_within", "ir_blend_count", "gal_l_deg", "gal_b_deg")
+                 "n_ir_within", "ir_blend_count", "match_probability", "match_ln_bayes_factor", "n_competitors",
+                 "match_ambiguous", "pair_sigma_arcsec", "gal_l_deg", "gal_b_deg")
+
+#: Column the tile reader adds to every infrared row: the density of its tile (:func:`tile_density_per_sr`).
+DENSITY_COLUMN = "ir_density_per_sr"
+
+#: Column of the chance-match table naming the shifted copy a row comes from.
+CHANCE_SHIFT_COLUMN = "chance_shift"
+
+#: Astrometric columns that shape the positional error at the infrared epoch (those present are used).
+ASTROMETRIC_ERROR_COLUMNS = ("ra_error_mas", "dec_error_mas", "pmra_error_mas_yr", "pmdec_error_mas_yr",
+                             "ra_dec_corr", "pmra_pmdec_corr", "ra_pmra_corr", "dec_pmdec_corr", "ra_pmdec_corr",
+                             "dec_pmra_corr")
+
+# rows per density cell on average when choosing the cells that measure the covered area
+_ROWS_PER_CELL = 8
+_MAX_CELL_DEPTH = 6
 
 
-def _propagated(table: pa.Table, dt_yr: float):
-    """Positions at the infrared epoch; sources without a proper motion stay where they are."""
-    ra = table.column("ra_deg").to_numpy()
-    dec = table.column("dec_deg").to_numpy()
-    pmra = np.nan_to_num(table.column("pmra_mas_yr").to_numpy(zero_copy_only=False), nan=0.0)
-    pmdec = np.nan_to_num(table.column("pmdec_mas_yr").to_numpy(zero_copy_only=False), nan=0.0)
-    if dt_yr == 0.0:
-        return ra, dec
-    p = propagate(ra, dec, pmra, pmdec, dt_yr)
-    return p.ra_deg, p.dec_deg
+@dataclass(frozen=True)
+class MatchSettings:
+    """Everything the match of a tile depends on (built from the configuration by the run job).
+
+    Attributes
+    ----------
+    radius_arcsec : float
+        Largest search radius (arcsec); the radius of the nearest method.
+    dt_yr : float
+        Infrared epoch minus astrometric epoch (Julian years).
+    order : int or None
+        Tiling order; needed for the infrared blend table and the chance matches.
+    method : {"probabilistic", "nearest"}
+    n_sigma : float
+        Search radius of a pair in combined standard deviations (major axis).
+    completeness : float
+        Fraction of astrometric sources with an infrared counterpart, for the prior.
+    ambiguity_ratio : float
+        ``match_ambiguous`` when the runner-up has more than this fraction of the chosen probability.
+    astrometric_floor_arcsec, infrared_floor_arcsec : float
+        Systematic floors added in quadrature on each axis (arcsec).
+    astrometric_inflation, infrared_inflation : float
+        Factors on the catalogues' positional errors.
+    max_proper_motion_mas_yr : float
+        Largest proper motion a competitor may have (bounds the astrometric margin).
+    chance_shift_arcsec : float
+        Shift of the owned positions for the chance-match estimate.
+    chance_shifts : int
+        Shifted copies (position angles 360° k / n + 45°); 0 skips the estimate.
+    """
+
+    radius_arcsec: float
+    dt_yr: float
+    order: int | None = None
+    method: str = "probabilistic"
+    n_sigma: float = 5.0
+    completeness: float = 0.5
+    ambiguity_ratio: float = 0.5
+    astrometric_floor_arcsec: float = 0.0
+    astrometric_inflation: float = 1.0
+    infrared_floor_arcsec: float = 0.0
+    infrared_inflation: float = 1.0
+    max_proper_motion_mas_yr: float = 10_000.0
+    chance_shift_arcsec: float = 180.0
+    chance_shifts: int = 0
+
+
+class LoadedArea(NamedTuple):
+    """The caps around a tile inside which its infrared and astrometric rows were loaded.
+
+    Attributes
+    ----------
+    centre_xyz : numpy.ndarray
+        Unit vector of the tile centre.
+    reach_rad : float
+        Largest centre-to-corner distance of the tile (rad).
+    ir_margin_arcsec, astro_margin_arcsec : float
+        Infrared rows lie within ``reach + ir_margin`` of the centre, astrometric rows (at their catalogue
+        epoch) within ``reach + astro_margin``; every row of either catalogue inside those caps is loaded.
+    """
+
+    centre_xyz: np.ndarray
+    reach_rad: float
+    ir_margin_arcsec: float
+    astro_margin_arcsec: float
 
 
 @dataclass
@@ -43,26 +135,268 @@ class TileMatch:
     Attributes
     ----------
     features : pyarrow.Table
-        One row per owned astrometric source with at least one infrared source within the radius.
+        One row per owned astrometric source with a counterpart: its columns, the counterpart's columns and
+        :data:`MATCH_COLUMNS`.
     pairs : pyarrow.Table
-        Every (astro_id, ir_id, sep_arcsec) pair within the radius for owned sources.
+        Every candidate (astro_id, ir_id, sep_arcsec) pair of owned sources.
     n_input : int
         Owned astrometric sources.
     infrared : pyarrow.Table or None
-        One row per infrared source owned by the tile (its position falls in it): ``ir_id`` and
-        ``n_astro_within``, how many astrometric sources (at the infrared epoch) lie within the
-        radius — the blend count of every infrared source, matched or not. None unless the tiling
-        order was given.
+        One row per infrared source owned by the tile: ``ir_id`` and ``n_astro_within``, how many astrometric
+        sources have it as a candidate (the blend count of every infrared source, matched or not). None unless
+        the tiling order was given.
+    chance : pyarrow.Table or None
+        The chance matches of the shifted owned sources, in the form of ``features`` plus
+        :data:`CHANCE_SHIFT_COLUMN`; None when no estimate was asked for.
+    n_chance_sources : int
+        Shifted sources that took part (those whose shifted position stays inside the tile, summed over shifts).
+    needs_ir_margin_arcsec : float or None
+        Set (and nothing else computed) when a component of competing pairs holding an owned source reaches
+        the edge of the loaded area: reload with at least this infrared margin.
     """
 
     features: pa.Table
     pairs: pa.Table
     n_input: int
     infrared: pa.Table | None = None
+    chance: pa.Table | None = None
+    n_chance_sources: int = 0
+    needs_ir_margin_arcsec: float | None = None
 
 
-def match_tile(own: pa.Table, neighbours: pa.Table, infrared: pa.Table, tile: int, *, radius_arcsec: float,
-               dt_yr: float, order: int | None = None) -> TileMatch:
+class MatchSide(NamedTuple):
+    """One side of a match: positions at the common epoch (deg) and their error ellipses (arcsec²)."""
+
+    ra_deg: np.ndarray
+    dec_deg: np.ndarray
+    cov: PositionCovariance
+
+
+class PairCandidates(NamedTuple):
+    """Candidate pairs: indices into both sides, separation (arcsec), ln B, prior P0 and combined major-axis
+    standard deviation (arcsec)."""
+
+    ia: np.ndarray
+    ib: np.ndarray
+    separation_arcsec: np.ndarray
+    ln_b: np.ndarray
+    prior: np.ndarray
+    sigma_arcsec: np.ndarray
+
+
+# ---------------------------------------------------------------------------------------------------
+# Local density
+# ---------------------------------------------------------------------------------------------------
+
+def tile_density_per_sr(ra_deg, dec_deg, order: int) -> float:
+    """Surface density of one tile's own rows over the part of the tile they cover (per steradian).
+
+    Parameters
+    ----------
+    ra_deg, dec_deg : array_like of float
+        Every row of the tile (ICRS degrees).
+    order : int
+        Tiling order.
+
+    Returns
+    -------
+    float
+        ``N / (n_cells Ω_cell)``: the rows over the area of the HEALPix sub-cells holding at least one row
+        (equal-area cells, Górski et al. 2005, ApJ 622, 759), at the finest sub-order with at least eight rows
+        per cell on average (at most six orders below the tile). A tile the catalogue covers entirely gives
+        N / Ω_tile; a tile at the edge of a survey gives the density inside the survey, not a diluted one.
+        0 for an empty tile.
+
+    Notes
+    -----
+    With eight rows per cell on average an uncovered-looking cell inside the footprint occurs with
+    probability e⁻⁸ = 3e-4 (Poisson), so the area is not underestimated by chance holes. The tile's own
+    rows alone decide the value, so every tile that loads this tile's rows computes the same number.
+    """
+    ra = np.asarray(ra_deg, np.float64)
+    n = ra.size
+    if n == 0:
+        return 0.0
+    depth = 0
+    while depth < _MAX_CELL_DEPTH and n / 4.0 ** (depth + 1) >= _ROWS_PER_CELL:
+        depth += 1
+    cells = tiles.parent(tiles.fine_index(ra, np.asarray(dec_deg, np.float64)), order + depth)
+    occupied = np.unique(cells).size
+    return float(n / (occupied * 4.0 * np.pi / tiles.n_tiles(order + depth)))
+
+
+# ---------------------------------------------------------------------------------------------------
+# Positional covariances from the tables
+# ---------------------------------------------------------------------------------------------------
+
+def _float(table: pa.Table, name: str):
+    if name not in table.column_names:
+        return None
+    return table.column(name).to_numpy(zero_copy_only=False).astype(np.float64, copy=False)
+
+
+def astrometric_position_covariance(table: pa.Table, s: MatchSettings) -> PositionCovariance:
+    """Error ellipse of each astrometric position carried to the infrared epoch.
+
+    The catalogue-epoch errors and the proper-motion errors times the epoch difference, with the
+    correlations given (:func:`selector.core.counterparts.astrometric_covariance`); missing columns count
+    as zero. A source without a proper-motion error (no motion solution) keeps its position error alone:
+    it stays where it was measured, as :func:`_propagated` leaves it.
+    """
+    n = table.num_rows
+    zero = np.zeros(n)
+    ra_e, dec_e = _float(table, "ra_error_mas"), _float(table, "dec_error_mas")
+    pm_a, pm_d = _float(table, "pmra_error_mas_yr"), _float(table, "pmdec_error_mas_yr")
+    corr = {name: _float(table, name) for name in ASTROMETRIC_ERROR_COLUMNS if name.endswith("_corr")}
+    return astrometric_covariance(
+        zero if ra_e is None else ra_e, zero if dec_e is None else dec_e, s.dt_yr,
+        zero if pm_a is None else np.nan_to_num(pm_a, nan=0.0), zero if pm_d is None else np.nan_to_num(pm_d, nan=0.0),
+        ra_dec_corr=corr["ra_dec_corr"], pmra_pmdec_corr=corr["pmra_pmdec_corr"],
+        ra_pmra_corr=corr["ra_pmra_corr"], dec_pmdec_corr=corr["dec_pmdec_corr"],
+        ra_pmdec_corr=corr["ra_pmdec_corr"], dec_pmra_corr=corr["dec_pmra_corr"],
+        systematic_arcsec=s.astrometric_floor_arcsec, inflation=s.astrometric_inflation)
+
+
+def infrared_position_covariance(table: pa.Table, s: MatchSettings) -> PositionCovariance:
+    """Error ellipse of each infrared position: per-axis errors when mapped, else the one error, else zero."""
+    ra_e, dec_e = _float(table, "ir_ra_error_arcsec"), _float(table, "ir_dec_error_arcsec")
+    if ra_e is None or dec_e is None:
+        one = _float(table, "pos_error_arcsec")
+        ra_e = dec_e = np.zeros(table.num_rows) if one is None else one
+    return infrared_covariance(ra_e, dec_e, _float(table, "ir_ra_dec_corr"),
+                               systematic_arcsec=s.infrared_floor_arcsec, inflation=s.infrared_inflation)
+
+
+def _take_cov(cov: PositionCovariance, index) -> PositionCovariance:
+    return PositionCovariance(*(np.broadcast_to(c, (len(cov.var_east_arcsec2),))[index] if np.ndim(c) == 0
+                                else np.asarray(c)[index] for c in cov))
+
+
+def _concat_cov(a: PositionCovariance, b: PositionCovariance) -> PositionCovariance:
+    return PositionCovariance(*(np.concatenate([np.asarray(x, np.float64), np.asarray(y, np.float64)])
+                                for x, y in zip(a, b)))
+
+
+# ---------------------------------------------------------------------------------------------------
+# Pairs and their probabilities
+# ---------------------------------------------------------------------------------------------------
+
+def candidate_pairs(a: MatchSide, b: MatchSide, density_b, s: MatchSettings, *, workers: int = 1) -> PairCandidates:
+    """Every pair within its search radius, with separation, ln B, prior and combined sigma.
+
+    A pair is a candidate when its separation is at most ``min(n_sigma σ, radius_arcsec)``, σ the major-axis
+    standard deviation of the summed error ellipse (:func:`selector.core.counterparts.search_radius_arcsec`),
+    and its Bayes factor is defined. The offset of b is measured on a's tangent-plane axes (azimuthal
+    equidistant, exact in separation) and b's ellipse is turned onto those axes, so the poles are ordinary
+    places. The prior is ``P0 = c / (4π ρ)`` with ρ the density of b's tile (Budavári & Szalay 2008,
+    ApJ 679, 301; :func:`selector.core.counterparts.prior_from_density`).
+    """
+    found = pairs_within(a.ra_deg, a.dec_deg, b.ra_deg, b.dec_deg, s.radius_arcsec, workers=workers)
+    ia, ib = found.index_a, found.index_b
+    off = tangent_offset(a.ra_deg[ia], a.dec_deg[ia], b.ra_deg[ib], b.dec_deg[ib])
+    cov = combine_covariances(_take_cov(a.cov, ia), rotate_covariance(_take_cov(b.cov, ib), off.rotation_rad))
+    sigma = major_sigma_arcsec(cov)
+    ln_b = bayes_factor(off.east_arcsec, off.north_arcsec, cov).ln_b
+    with np.errstate(invalid="ignore"):
+        reach = search_radius_arcsec(np.nan_to_num(sigma, nan=np.inf), s.n_sigma, s.radius_arcsec)
+        keep = (found.separation_arcsec <= reach) & np.isfinite(ln_b)
+    prior = prior_from_density(np.asarray(density_b, np.float64)[ib[keep]], s.completeness)
+    return PairCandidates(ia[keep], ib[keep], found.separation_arcsec[keep], ln_b[keep], prior, sigma[keep])
+
+
+def _propagated(table: pa.Table, dt_yr: float):
+    """Positions at the infrared epoch; sources without a proper motion stay where they are."""
+    ra = table.column("ra_deg").to_numpy()
+    dec = table.column("dec_deg").to_numpy()
+    if dt_yr == 0.0 or table.num_rows == 0:
+        return ra, dec
+    pmra = np.nan_to_num(table.column("pmra_mas_yr").to_numpy(zero_copy_only=False), nan=0.0)
+    pmdec = np.nan_to_num(table.column("pmdec_mas_yr").to_numpy(zero_copy_only=False), nan=0.0)
+    p = propagate(ra, dec, pmra, pmdec, dt_yr)
+    return p.ra_deg, p.dec_deg
+
+
+def _angle_from_arcsec(centre_xyz, ra_deg, dec_deg) -> np.ndarray:
+    if len(ra_deg) == 0:
+        return np.zeros(0)
+    xyz = radec_to_xyz(ra_deg, dec_deg, workers=1)
+    # atan2 of |cross| and dot stays accurate at every distance
+    cross = np.linalg.norm(np.cross(xyz, centre_xyz), axis=1)
+    return np.arctan2(cross, xyz @ centre_xyz) * _ARCSEC_PER_RAD
+
+
+def _margin_needed(c: PairCandidates, *, n_own: int, n_a: int, a_pos, b_pos, area: LoadedArea,
+                   s: MatchSettings) -> float | None:
+    """None when every pair component holding an owned source lies inside the loaded area, else the margin.
+
+    An astrometric node has all its candidates when its search disc (radius_arcsec around its position at
+    the infrared epoch) lies inside the infrared cap; an infrared node has all its competitors when every
+    astrometric source that could reach it (radius_arcsec plus the largest allowed proper motion times the
+    epoch difference) lies inside the astrometric cap. Greedy one-to-one decisions depend only on the
+    component, so complete components decide exactly as on the untiled sky.
+    """
+    n_b = len(b_pos[0])
+    if c.ia.size == 0:
+        return None
+    graph = coo_matrix((np.ones(c.ia.size, np.int8), (c.ia, n_a + c.ib)), shape=(n_a + n_b, n_a + n_b))
+    _, label = connected_components(graph, directed=False)
+    owned = np.zeros(label.max() + 1, bool)
+    owned[label[:n_own]] = True
+    in_owned = owned[label]
+    reach_arcsec = area.reach_rad * _ARCSEC_PER_RAD
+    shift = s.max_proper_motion_mas_yr * abs(s.dt_yr) / 1000.0
+    # a node closer than a milliarcsecond to the edge counts as open: rounding of the distances (here and in
+    # the reader's cap filter) must never make an open node look complete
+    eps = 1e-3
+    a_check = np.flatnonzero(in_owned[:n_a])
+    a_check = a_check[a_check >= n_own]  # owned sources are complete by construction of the margins
+    b_check = np.flatnonzero(in_owned[n_a:])
+    need = []
+    if a_check.size:
+        d = _angle_from_arcsec(area.centre_xyz, a_pos[0][a_check], a_pos[1][a_check]) + s.radius_arcsec
+        over = d - (reach_arcsec + area.ir_margin_arcsec)
+        if np.any(over > -eps):
+            need.append(float(np.max(d)) - reach_arcsec)
+    if b_check.size:
+        d = _angle_from_arcsec(area.centre_xyz, b_pos[0][b_check], b_pos[1][b_check]) + s.radius_arcsec + shift
+        over = d - (reach_arcsec + area.astro_margin_arcsec)
+        if np.any(over > -eps):
+            # the reader keeps astro_margin = ir_margin + radius + shift
+            need.append(float(np.max(d)) - reach_arcsec - s.radius_arcsec - shift)
+    if not need:
+        return None
+    # grow generously: a chain that reached the edge once is likely to reach a little further
+    return max(max(need), 1.5 * area.ir_margin_arcsec) + 2.0 * s.radius_arcsec
+
+
+# ---------------------------------------------------------------------------------------------------
+# The tile
+# ---------------------------------------------------------------------------------------------------
+
+def _features(own: pa.Table, infrared: pa.Table, rows, ir_for, columns: dict) -> pa.Table:
+    """Owned rows with their counterparts' columns and the match columns, in :data:`MATCH_COLUMNS` order."""
+    feats = own.take(pa.array(rows, pa.int64()))
+    ir_sel = infrared.take(pa.array(ir_for, pa.int64()))
+    l_deg, b_deg = galactic(feats.column("ra_deg").to_numpy(), feats.column("dec_deg").to_numpy())
+    add = {**columns, "ir_id": ir_sel.column("ir_id"), "ir_ra_deg": ir_sel.column("ra_deg"),
+           "ir_dec_deg": ir_sel.column("dec_deg"), "gal_l_deg": pa.array(l_deg), "gal_b_deg": pa.array(b_deg)}
+    for name in MATCH_COLUMNS:
+        feats = feats.append_column(name, add[name])
+    for name in ir_sel.column_names:
+        if name not in ("ir_id", "ra_deg", "dec_deg"):
+            feats = feats.append_column(name, ir_sel.column(name))
+    return feats
+
+
+def _density(infrared: pa.Table) -> np.ndarray:
+    d = _float(infrared, DENSITY_COLUMN)
+    if d is None:
+        raise ValueError(f"the infrared rows lack {DENSITY_COLUMN}; the tile reader adds it")
+    return d
+
+
+def match_tile(own: pa.Table, neighbours: pa.Table, infrared: pa.Table, tile: int, *, settings: MatchSettings,
+               area: LoadedArea | None = None) -> TileMatch:
     """Cross-match the owned sources of a tile against the infrared sources around it.
 
     Parameters
@@ -70,66 +404,237 @@ def match_tile(own: pa.Table, neighbours: pa.Table, infrared: pa.Table, tile: in
     own : pyarrow.Table
         Astrometric sources owned by the tile (canonical columns).
     neighbours : pyarrow.Table
-        Astrometric sources of neighbouring tiles (``_NEIGHBOUR_COLUMNS``), for the blend count.
+        Astrometric sources of other tiles within the astrometric margin (positions, motions and their errors):
+        the competitors.
     infrared : pyarrow.Table
-        Infrared sources covering the owned sources' match margin.
+        Infrared sources within the infrared margin, with :data:`DENSITY_COLUMN` (probabilistic method).
     tile : int
         The tile id, written into the features.
-    radius_arcsec : float
-        Match radius, applied at the infrared epoch.
-    dt_yr : float
-        Infrared epoch minus astrometric epoch (Julian years).
-    order : int, optional
-        Tiling order; when given, the blend count of every infrared source owned by the tile is
-        returned as well (``TileMatch.infrared``).
+    settings : MatchSettings
+    area : LoadedArea, optional
+        Where the rows were loaded. When given (probabilistic method), components of competing pairs that reach
+        the edge are detected and ``TileMatch.needs_ir_margin_arcsec`` is returned instead of a result.
     """
-    ra_own, dec_own = _propagated(own, dt_yr)
-    ra_nb, dec_nb = _propagated(neighbours, dt_yr)
+    s = settings
+    if s.method == "nearest":
+        return _match_nearest(own, neighbours, infrared, tile, s)
+    n_own = own.num_rows
+    ra_own, dec_own = _propagated(own, s.dt_yr)
+    ra_nb, dec_nb = _propagated(neighbours, s.dt_yr)
+    ra_a, dec_a = np.concatenate([ra_own, ra_nb]), np.concatenate([dec_own, dec_nb])
+    n_a = len(ra_a)
+    cov_own = astrometric_position_covariance(own, s)
+    cov_a = _concat_cov(cov_own, astrometric_position_covariance(neighbours, s))
+    ir_ra = infrared.column("ra_deg").to_numpy()
+    ir_dec = infrared.column("dec_deg").to_numpy()
+    ir_side = MatchSide(ir_ra, ir_dec, infrared_position_covariance(infrared, s))
+    density = _density(infrared)
+    c = candidate_pairs(MatchSide(ra_a, dec_a, cov_a), ir_side, density, s)
+    if area is not None:
+        need = _margin_needed(c, n_own=n_own, n_a=n_a, a_pos=(ra_a, dec_a), b_pos=(ir_ra, ir_dec), area=area, s=s)
+        if need is not None:
+            return TileMatch(own.slice(0, 0), pa.table({}), n_own, needs_ir_margin_arcsec=need)
+    asg = assign_one_to_one(c.ia, c.ib, c.ln_b, c.prior, c.separation_arcsec, n_astrometric=n_a,
+                            ambiguity_ratio=s.ambiguity_ratio)
+    blend = np.bincount(c.ib, minlength=len(ir_ra)).astype(np.int64)
+    rows = np.flatnonzero(asg.pair_index[:n_own] >= 0)
+    ir_for = asg.ib[rows]
+    columns = _match_columns(tile, rows, asg, pos=(ra_a, dec_a), sigma=c.sigma_arcsec, blend=blend)
+    feats = _features(own, infrared, rows, ir_for, columns)
+    owned_pairs = c.ia < n_own
+    pairs = pa.table({
+        "astro_id": own.column("astro_id").take(pa.array(c.ia[owned_pairs], pa.int64())),
+        "ir_id": infrared.column("ir_id").take(pa.array(c.ib[owned_pairs], pa.int64())),
+        "sep_arcsec": pa.array(c.separation_arcsec[owned_pairs]),
+    })
+    chance, n_shifted = None, 0
+    if s.chance_shifts > 0 and s.order is not None:
+        chance, n_shifted = _chance_matches(own, infrared, tile, s, own_pos=(ra_own, dec_own), cov_own=cov_own,
+                                            ir_side=ir_side, density=density)
+    return TileMatch(feats, pairs, n_own, _infrared_blend(infrared, tile, s.order, blend), chance, n_shifted)
+
+
+def _match_columns(tile, rows, asg, *, pos, sigma, blend) -> dict:
+    ra_a, dec_a = pos
+    chosen = asg.pair_index[rows]
+    return {
+        "tile": pa.array(np.full(len(rows), tile, np.int64)),
+        "ra_match_deg": pa.array(ra_a[rows]),
+        "dec_match_deg": pa.array(dec_a[rows]),
+        "sep_arcsec": pa.array(asg.separation_arcsec[rows]),
+        "n_ir_within": pa.array(asg.n_candidates[rows].astype(np.int64)),
+        "ir_blend_count": pa.array(blend[asg.ib[rows]]),
+        "match_probability": pa.array(asg.probability[rows]),
+        "match_ln_bayes_factor": pa.array(asg.ln_b[rows]),
+        "n_competitors": pa.array(asg.n_competitors[rows].astype(np.int64)),
+        "match_ambiguous": pa.array(np.asarray(asg.ambiguous[rows], bool)),
+        "pair_sigma_arcsec": pa.array(sigma[chosen]),
+    }
+
+
+def _infrared_blend(infrared: pa.Table, tile: int, order: int | None, blend: np.ndarray) -> pa.Table | None:
+    if order is None:
+        return None
+    ir_ra = infrared.column("ra_deg").to_numpy()
+    ir_dec = infrared.column("dec_deg").to_numpy()
+    own_ir = np.flatnonzero(tiles.tile_of(ir_ra, ir_dec, order) == tile)
+    return pa.table({"ir_id": infrared.column("ir_id").take(pa.array(own_ir, pa.int64())),
+                     "n_astro_within": pa.array(blend[own_ir].astype(np.int64))})
+
+
+def _shift_angles_deg(n: int) -> np.ndarray:
+    # 45° off the axes, so that no shift runs along a tile edge of the equatorial HEALPix rows
+    return 45.0 + 360.0 * np.arange(n) / n
+
+
+def _chance_matches(own, infrared, tile, s: MatchSettings, *, own_pos, cov_own, ir_side, density):
+    """Match the owned sources again after shifting them: every pair found is a chance pair.
+
+    Only shifted positions that stay inside the tile take part, so their search discs lie inside the
+    loaded infrared area (the infrared margin is at least the radius). Each shifted copy is assigned
+    one-to-one on its own (common practice for the false-match rate of shifted catalogues).
+    """
+    parts, n_shifted = [], 0
+    for k, angle in enumerate(_shift_angles_deg(s.chance_shifts)):
+        moved = shift_positions(own_pos[0], own_pos[1], s.chance_shift_arcsec, angle)
+        inside = np.flatnonzero(tiles.tile_of(moved.ra_deg, moved.dec_deg, s.order) == tile)
+        n_shifted += inside.size
+        if inside.size == 0:
+            continue
+        ra, dec = moved.ra_deg[inside], moved.dec_deg[inside]
+        c = candidate_pairs(MatchSide(ra, dec, _take_cov(cov_own, inside)), ir_side, density, s)
+        asg = assign_one_to_one(c.ia, c.ib, c.ln_b, c.prior, c.separation_arcsec, n_astrometric=inside.size,
+                                ambiguity_ratio=s.ambiguity_ratio)
+        blend = np.bincount(c.ib, minlength=len(ir_side.ra_deg)).astype(np.int64)
+        local = np.flatnonzero(asg.pair_index >= 0)
+        columns = _match_columns(tile, local, asg, pos=(ra, dec), sigma=c.sigma_arcsec, blend=blend)
+        part = _features(own, infrared, inside[local], asg.ib[local], columns)
+        parts.append(part.append_column(CHANCE_SHIFT_COLUMN, pa.array(np.full(local.size, k, np.int64))))
+    if not parts:
+        none = np.zeros(0, np.int64)
+        asg = assign_one_to_one(none, none, np.zeros(0), np.zeros(0), np.zeros(0), n_astrometric=0)
+        columns = _match_columns(tile, none, asg, pos=(np.zeros(0), np.zeros(0)), sigma=np.zeros(0), blend=none)
+        empty = _features(own, infrared, none, none, columns)
+        return empty.append_column(CHANCE_SHIFT_COLUMN, pa.array(none)), n_shifted
+    return pa.concat_tables(parts), n_shifted
+
+
+def _match_nearest(own, neighbours, infrared, tile, s: MatchSettings) -> TileMatch:
+    """The nearest infrared source within the radius (the method before match probabilities)."""
+    ra_own, dec_own = _propagated(own, s.dt_yr)
+    ra_nb, dec_nb = _propagated(neighbours, s.dt_yr)
     ra_m, dec_m = np.concatenate([ra_own, ra_nb]), np.concatenate([dec_own, dec_nb])
     ir_ra = infrared.column("ra_deg").to_numpy()
     ir_dec = infrared.column("dec_deg").to_numpy()
-    own_pairs = pairs_within(ra_own, dec_own, ir_ra, ir_dec, radius_arcsec, workers=1)
+    own_pairs = pairs_within(ra_own, dec_own, ir_ra, ir_dec, s.radius_arcsec, workers=1)
     nearest = nearest_within(own_pairs, own.num_rows)
-    matched = np.flatnonzero(nearest.index_b >= 0)
-    ir_for = nearest.index_b[matched]
-    # blend count: every astrometric source (own or neighbour) within the radius of an infrared
-    # source, for the counterparts of owned sources and for the tile's own infrared sources
-    ir_own = (tiles.tile_of(ir_ra, ir_dec, order) == tile) if order is not None else np.zeros(len(ir_ra), bool)
+    rows = np.flatnonzero(nearest.index_b >= 0)
+    ir_for = nearest.index_b[rows]
+    # blend count: every astrometric source (own or neighbour) within the radius of an infrared source, for
+    # the counterparts of owned sources and for the tile's own infrared sources
+    ir_own = (tiles.tile_of(ir_ra, ir_dec, s.order) == tile) if s.order is not None else np.zeros(len(ir_ra), bool)
     counted = np.union1d(np.unique(ir_for), np.flatnonzero(ir_own))
-    blend_pairs = pairs_within(ir_ra[counted], ir_dec[counted], ra_m, dec_m, radius_arcsec, workers=1)
-    blend = np.bincount(blend_pairs.index_a, minlength=len(counted))
-    blend_for = blend[np.searchsorted(counted, ir_for)]
-    ir_table = None
-    if order is not None:
-        own_ir = np.flatnonzero(ir_own)
-        ir_table = pa.table({"ir_id": infrared.column("ir_id").take(pa.array(own_ir, pa.int64())),
-                             "n_astro_within": pa.array(blend[np.searchsorted(counted, own_ir)].astype(np.int64))})
-
-    rows = matched
-    feats = own.take(pa.array(rows, pa.int64()))
-    ir_sel = infrared.take(pa.array(ir_for, pa.int64()))
-    l_deg, b_deg = galactic(feats.column("ra_deg").to_numpy(), feats.column("dec_deg").to_numpy())
-    add = {
+    blend_pairs = pairs_within(ir_ra[counted], ir_dec[counted], ra_m, dec_m, s.radius_arcsec, workers=1)
+    blend_counted = np.bincount(blend_pairs.index_a, minlength=len(counted))
+    blend = np.zeros(len(ir_ra), np.int64)
+    blend[counted] = blend_counted
+    n_within = nearest.n_within[rows].astype(np.int64)
+    columns = {
         "tile": pa.array(np.full(len(rows), tile, np.int64)),
         "ra_match_deg": pa.array(ra_m[rows]),
         "dec_match_deg": pa.array(dec_m[rows]),
-        "ir_id": ir_sel.column("ir_id"),
-        "ir_ra_deg": ir_sel.column("ra_deg"),
-        "ir_dec_deg": ir_sel.column("dec_deg"),
-        "sep_arcsec": pa.array(nearest.separation_arcsec[matched]),
-        "n_ir_within": pa.array(nearest.n_within[matched].astype(np.int64)),
-        "ir_blend_count": pa.array(blend_for.astype(np.int64)),
-        "gal_l_deg": pa.array(l_deg),
-        "gal_b_deg": pa.array(b_deg),
+        "sep_arcsec": pa.array(nearest.separation_arcsec[rows]),
+        "n_ir_within": pa.array(n_within),
+        "ir_blend_count": pa.array(blend[ir_for]),
+        # no probabilities without errors; competitors are the other sources within the radius on both sides
+        "match_probability": pa.array(np.full(len(rows), np.nan)),
+        "match_ln_bayes_factor": pa.array(np.full(len(rows), np.nan)),
+        "n_competitors": pa.array(n_within - 1 + blend[ir_for] - 1),
+        "match_ambiguous": pa.array(np.zeros(len(rows), bool)),
+        "pair_sigma_arcsec": pa.array(np.full(len(rows), np.nan)),
     }
-    for name in ir_sel.column_names:
-        if name not in ("ir_id", "ra_deg", "dec_deg"):
-            add[name] = ir_sel.column(name)
-    for name, col in add.items():
-        feats = feats.append_column(name, col)
+    feats = _features(own, infrared, rows, ir_for, columns)
     pairs = pa.table({
         "astro_id": own.column("astro_id").take(pa.array(own_pairs.index_a, pa.int64())),
         "ir_id": infrared.column("ir_id").take(pa.array(own_pairs.index_b, pa.int64())),
         "sep_arcsec": pa.array(own_pairs.separation_arcsec),
     })
-    return TileMatch(feats, pairs, own.num_rows, ir_table)
+    return TileMatch(feats, pairs, own.num_rows, _infrared_blend(infrared, tile, s.order, blend))
+
+
+# ---------------------------------------------------------------------------------------------------
+# Chance counterparts of a tile
+# ---------------------------------------------------------------------------------------------------
+
+@dataclass(frozen=True)
+class ChanceEstimate:
+    """Expected chance counterparts of one tile (or a sum of tiles), from the shifted-position matches.
+
+    Attributes
+    ----------
+    shifted_sources : int
+        Shifted sources that took part.
+    shifted_matches : int
+        Of those, how many were given a (chance) counterpart.
+    shifted_candidates : int
+        Of those chance pairs, how many pass the whole selection.
+    expected_matches, expected_matches_error : float
+        Expected chance counterparts among the matched sources, and its binomial standard error.
+    expected_candidates, expected_candidates_error : float
+        Expected chance counterparts among the candidates, and its binomial standard error.
+    """
+
+    shifted_sources: int
+    shifted_matches: int
+    shifted_candidates: int
+    expected_matches: float
+    expected_matches_error: float
+    expected_candidates: float
+    expected_candidates_error: float
+
+    def as_dict(self) -> dict:
+        return {k: getattr(self, k) for k in self.__dataclass_fields__}
+
+    @classmethod
+    def total(cls, parts) -> "ChanceEstimate":
+        """The sum over tiles; errors add in quadrature (tiles are independent)."""
+        parts = list(parts)
+        return cls(sum(p.shifted_sources for p in parts), sum(p.shifted_matches for p in parts),
+                   sum(p.shifted_candidates for p in parts), float(sum(p.expected_matches for p in parts)),
+                   float(np.sqrt(sum(p.expected_matches_error ** 2 for p in parts))),
+                   float(sum(p.expected_candidates for p in parts)),
+                   float(np.sqrt(sum(p.expected_candidates_error ** 2 for p in parts))))
+
+
+def chance_estimate(n_sources: int, n_matched: int, n_shifted: int, shifted_matches: int,
+                    shifted_candidates: int) -> ChanceEstimate:
+    """Expected chance counterparts among a tile's matched sources and among its candidates.
+
+    Parameters
+    ----------
+    n_sources : int
+        Owned astrometric sources N.
+    n_matched : int
+        Of those, how many were given a counterpart (A).
+    n_shifted : int
+        Shifted sources n that took part in the chance matches.
+    shifted_matches, shifted_candidates : int
+        Shifted sources given a chance counterpart (k), and how many of those pairs pass the selection (k_c).
+
+    Returns
+    -------
+    ChanceEstimate
+        With f = k/n, the expected chance matches ``F = f (N − A)/(1 − f)``
+        (:func:`selector.core.counterparts.chance_counterparts`); the sources open to a chance match are those
+        without a true counterpart, ``N − A + F``, and a fraction ``f_c = k_c/n`` of them gets a chance
+        counterpart that passes the selection: ``F_c = f_c (N − A + F)``, with the binomial error of f_c
+        (at least that of one count). All zero when nothing was shifted.
+    """
+    if n_shifted <= 0:
+        return ChanceEstimate(0, 0, 0, 0.0, 0.0, 0.0, 0.0)
+    m = chance_counterparts(np.ones(shifted_matches), n_shifted, n_sources, n_matched, threshold=0.5)
+    open_sources = max(n_sources - n_matched, 0) + m.expected
+    f_c = shifted_candidates / n_shifted
+    f_c_error = np.sqrt(max(shifted_candidates, 1) * (1.0 - f_c)) / n_shifted
+    return ChanceEstimate(int(n_shifted), int(shifted_matches), int(shifted_candidates), float(m.expected),
+                          float(m.error), float(f_c * open_sources), float(f_c_error * open_sources))

@@ -47,6 +47,7 @@ REASONS = (
     "non_finite_position",
     "dec_out_of_range",
     "negative_error",
+    "missing_position_error",
     "correlation_out_of_range",
     "non_finite_value",
     "beyond_physical_limit",
@@ -248,8 +249,11 @@ def map_chunk(chunk, fields: list[_Field], id_kind: IdKind):
             else:
                 values = np.mod(values, 360.0)
                 values[values >= 360.0] = 0.0  # mod of a tiny negative number rounds up to 360
-        elif f.kind in ("error",):
+        elif f.kind in ("error", "position_error"):
             checks.append(("negative_error", values < 0, f.source))
+            if f.kind == "position_error":
+                # a pair's match probability needs both positions' errors: a row without one cannot be matched
+                checks.append(("missing_position_error", np.isnan(values), f.source))
             checks.append(("non_finite_value", np.isinf(values), f.source))
         elif f.kind == "corr":
             checks.append(("correlation_out_of_range", np.abs(values) > 1.0, f.source))

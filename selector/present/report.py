@@ -23,6 +23,7 @@ from selector.core.selection import rank_candidates
 from selector.errors import InputError
 from selector.jobs import tune
 from selector.jobs.train import read_card
+from selector.jobs.run.merge import format_chance
 from selector.present import plots
 from selector.settings.config import SELECTION_SECTIONS, plain
 from selector.store.cache import find_rows, load_cache
@@ -263,6 +264,7 @@ def build_report(run_dir: Path | str, top: int = 50) -> str:
         ("candidates", f"{cands.num_rows:,d}"),
         ("complete", "yes" if prov.get("complete", True) else
          f"no: {len(prov.get('failed_tiles', []))} tiles failed and are missing from this report"),
+        ("expected chance counterparts", format_chance(prov.get("chance_counterparts")) or "not estimated"),
         ("match radius", f"{cfg.match.radius_arcsec:g} arcsec"),
         ("epochs", f"astrometric {cfg.astrometric.epoch_jyear}, infrared {cfg.infrared.epoch_jyear} (Julian years)"),
     ]

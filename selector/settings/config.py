@@ -90,6 +90,10 @@ class CatalogueConfig:
     epoch_jyear: Optional[float] = setting(None, min=1900.0, max=2200.0, doc="reference epoch of the positions, Julian years")
     magnitudes: list[MagnitudeSpec] = setting(default_factory=tuple, doc="photometric bands")
     chunk_rows: int = setting(1_000_000, min=1_000, max=100_000_000, doc="rows read at a time from chunkable formats")
+    position_floor_arcsec: Optional[float] = setting(None, min=0.0, max=60.0,
+                                                     doc="systematic positional error added in quadrature on each axis")
+    position_error_inflation: float = setting(1.0, min=0.0, min_exclusive=True, max=100.0,
+                                              doc="factor applied to the catalogue's positional errors")
 
     @classmethod
     def _from_config(cls, value, where):
@@ -169,11 +173,31 @@ class TilingConfig:
     order: int = setting(5, min=0, max=12, doc="HEALPix order of the tiles (Nside = 2**order), nested scheme")
 
 
+#: Cross-match methods: the probabilistic match of Budavári & Szalay (2008), or the plain nearest
+#: infrared source within the radius (kept for comparison).
+MATCH_METHODS = ("probabilistic", "nearest")
+
+
 @dataclass(frozen=True)
 class MatchConfig:
-    radius_arcsec: float = setting(2.0, min=0.0, min_exclusive=True, max=600.0, doc="match radius")
+    radius_arcsec: float = setting(4.0, min=0.0, min_exclusive=True, max=600.0,
+                                   doc="largest search radius (the probabilistic match searches n_sigma combined "
+                                       "sigmas, never more than this; the nearest match uses it as its radius)")
     max_proper_motion_mas_yr: float = setting(
         10_000.0, min=0.0, doc="largest proper motion the tile margins must allow for")
+    method: str = setting("probabilistic", choices=MATCH_METHODS, doc="probabilistic (Bayes factor, local prior, "
+                                                                      "one-to-one) or nearest")
+    n_sigma: float = setting(5.0, min=1.0, max=20.0, doc="search radius of a pair in its combined standard deviations")
+    expected_completeness: float = setting(0.5, min=0.0, min_exclusive=True, max=1.0,
+                                           doc="fraction of astrometric sources expected to have an infrared "
+                                               "counterpart (sets the prior)")
+    ambiguity_ratio: float = setting(0.5, min=0.0, max=1.0,
+                                     doc="flag a match ambiguous when its runner-up has more than this fraction of "
+                                         "its probability")
+    chance_shift_arcsec: float = setting(180.0, min=10.0, max=1800.0,
+                                         doc="shift of the astrometric positions for the chance-match estimate")
+    chance_shifts: int = setting(4, min=0, max=16, doc="shifted copies (position angles spread evenly); 0 = no "
+                                                       "chance-match estimate")
 
 
 @dataclass(frozen=True)
@@ -579,6 +603,7 @@ class Config:
             check_catalogue(self.known, "known")
         _check_selection(self)
         _check_margin(self)
+        _check_position_errors(self)
         if self.targets is not None:
             _check_targets(self)
 
@@ -669,6 +694,26 @@ def _check_margin(cfg: Config) -> None:
             f"{need:.1f} arcsec, more than tiling.order = {cfg.tiling.order} allows ({allowed:.1f} arcsec); "
             "lower tiling.order or the radius"
         )
+
+
+def _check_position_errors(cfg: Config) -> None:
+    """The probabilistic match needs every position's error: mapped columns, or a configured floor."""
+    if cfg.match.method != "probabilistic":
+        return
+    for kind in ("astrometric", "infrared"):
+        cat = getattr(cfg, kind)
+        sets = schema.POSITION_ERROR_ROLES[kind]
+        mapped = [s for s in sets if all(r in cat.columns for r in s)]
+        half = [r for s in sets for r in s if r in cat.columns and len(s) > 1 and s not in mapped]
+        if half:
+            other = next(r for s in sets if half[0] in s for r in s if r != half[0])
+            raise ConfigError(f"{kind}.columns maps {half[0]} but not {other}; map both (errors per axis), "
+                              f"as match.method = \"probabilistic\" needs both")
+        if not mapped and cat.position_floor_arcsec is None:
+            roles = " or ".join(" and ".join(f"{kind}.columns.{r}" for r in s) for s in sets)
+            raise ConfigError(f"[{kind}] has no positional error: map {roles}, or set {kind}.position_floor_arcsec "
+                              f"(arcsec) to the error of its positions; match.method = \"probabilistic\" needs one "
+                              f"(or set match.method = \"nearest\")")
 
 
 def from_dict(data: dict, base_dir: str | Path = ".") -> Config:

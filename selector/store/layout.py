@@ -11,7 +11,7 @@
       tiles/<gen>/known/objects.parquet                      the known-objects catalogue (not tiled)
       run/manifest.sqlite, run/logs/run-<n>.log              the run's record
       run/commit.json                                        the record of the committed merged set
-      run/tiles/tile<NNNNNNNN>/{features,infrared,candidates,rejects}.parquet, cutflow.json
+      run/tiles/tile<NNNNNNNN>/{features,infrared,chance,candidates,rejects}.parquet, cutflow.json
       run/candidates.{ecsv,csv,parquet}, run/cutflow.csv, run/provenance.json
       <classifier.output_folder>/quasar_classifier.skops (+ .card.json), evaluation.json, ...
       <targets.output_folder>/targets.{ecsv,csv,vot,fits,txt} (compact), targets_full.*, dropped.ecsv,
@@ -41,7 +41,7 @@ from pathlib import Path
 from selector.errors import InputError
 
 #: Per-tile files that hold the cross-match (they depend only on the match sections of the config).
-FEATURE_FILES = ("features.parquet", "infrared.parquet")
+FEATURE_FILES = ("features.parquet", "infrared.parquet", "chance.parquet")
 #: Per-tile files that hold the selection (they also depend on the selection sections).
 SELECTION_FILES = ("candidates.parquet", "rejects.parquet", "cutflow.json")
 #: The merged outputs of a run, by kind.
@@ -390,3 +390,14 @@ def merge_spool(layout: Layout) -> Path:
 #: quasar completeness and purity at the labelled and at the sky mix, and the reliability diagram
 #: after the prior adjustment.
 SKY_PLOT_FILES = ("sky_mix_curves.png", "reliability_on_the_sky.png")
+
+
+#: A tile's chance pairs of shifted positions (one of :data:`FEATURE_FILES`), and the key of its Parquet
+#: metadata that holds how many shifted sources took part.
+CHANCE_FILE = "chance.parquet"
+CHANCE_SOURCES_KEY = "chance_sources"
+
+
+def chance_file(layout: Layout, tile: int) -> Path:
+    """The chance pairs of a tile's shifted-position match."""
+    return layout.tile_output(tile, CHANCE_FILE)

@@ -7,10 +7,13 @@ and keeps its rows' unit vectors: the margin filter below is then one dot produc
 from __future__ import annotations
 
 from functools import lru_cache
+from typing import NamedTuple
+
 import numpy as np
 import pyarrow as pa
 
 from selector.core import schema, tiles
+from selector.core.tilematch import ASTROMETRIC_ERROR_COLUMNS, DENSITY_COLUMN, LoadedArea, tile_density_per_sr
 from selector.errors import InputError
 from selector.settings.config import Config
 from selector.store.layout import layout_of
@@ -45,7 +48,51 @@ def _disc_filter(decoded: DecodedTile, tile: int, order: int, margin_arcsec: flo
     return table.filter(pa.array(decoded.xyz @ centre >= cos_limit))
 
 
-def load_tile(cfg: Config, tile: int, on_input=None, *, cache: TileCache | None = None):
+class LoadedTile(NamedTuple):
+    """A tile's own astrometric sources and everything within the margins around it.
+
+    Attributes
+    ----------
+    own : pyarrow.Table
+        Astrometric sources owned by the tile (every column).
+    neighbours : pyarrow.Table
+        Astrometric sources of other tiles within the astrometric margin (positions, motions and the
+        columns of their positional errors): the competitors.
+    infrared : pyarrow.Table
+        Infrared sources within the infrared margin, each with the density of its own tile
+        (:data:`~selector.core.tilematch.DENSITY_COLUMN`).
+    area : LoadedArea
+        The caps the rows were loaded from.
+    """
+
+    own: pa.Table
+    neighbours: pa.Table
+    infrared: pa.Table
+    area: LoadedArea
+
+
+def default_ir_margin_arcsec(cfg: Config, own: pa.Table) -> float:
+    """Infrared margin that holds every candidate of the owned sources: radius + largest own epoch shift.
+
+    Exact whatever the proper motions: an owned source moves by at most its own motion times the epoch
+    difference, and its candidates lie within the radius of where it arrives. The probabilistic match
+    loads two radii more, so that a rival of a counterpart (and the rival's own candidates) is usually
+    inside too and the margin rarely has to grow.
+    """
+    pm_own = _pm_total(own)
+    radii = 3.0 if cfg.match.method == "probabilistic" else 1.0
+    return (radii * cfg.match.radius_arcsec
+            + max(np.nanmax(pm_own, initial=0.0), 0.0) * abs(cfg.epoch_difference_yr) / 1000.0)
+
+
+@lru_cache(maxsize=256)
+def _tile_density(path: str, sha256: str, order: int, table: pa.Table) -> float:
+    # keyed by the file's digest: every margin of every neighbour asks for the same tile's density
+    return tile_density_per_sr(table.column("ra_deg").to_numpy(), table.column("dec_deg").to_numpy(), order)
+
+
+def load_tile(cfg: Config, tile: int, on_input=None, *, cache: TileCache | None = None,
+              ir_margin_arcsec: float | None = None) -> LoadedTile:
     """Read a tile's own astrometric sources and everything within the margins around it.
 
     Parameters
@@ -58,15 +105,15 @@ def load_tile(cfg: Config, tile: int, on_input=None, *, cache: TileCache | None 
     cache : TileCache, optional
         Where decoded files are kept between tiles (one per worker); a fresh one by default, so
         each file is still read once for this tile.
+    ir_margin_arcsec : float, optional
+        Infrared margin; default :func:`default_ir_margin_arcsec`. The match asks for a larger one when
+        a chain of competing pairs reaches the edge. The astrometric margin is always the infrared margin
+        plus the radius plus the largest allowed proper motion times the epoch difference, so every
+        astrometric source that can reach a loaded infrared source is loaded too.
 
     Returns
     -------
-    own : pyarrow.Table
-        Astrometric sources owned by ``tile`` (every column).
-    neighbours : pyarrow.Table
-        Astrometric sources of other tiles within the blend margin (positions and motions only).
-    infrared : pyarrow.Table
-        Infrared sources within the match margin.
+    LoadedTile
     """
     order = cfg.tiling.order
     lay = layout_of(cfg)
@@ -80,19 +127,25 @@ def load_tile(cfg: Config, tile: int, on_input=None, *, cache: TileCache | None 
     report("astrometric", tile, own_path, own, own_file)
     dt = abs(cfg.epoch_difference_yr)
     r = cfg.match.radius_arcsec
-    pm_own = _pm_total(own)
-    # counterparts of owned sources lie within r + (own largest shift) of the tile: exact, whatever
-    # the proper motions; competitors are allowed the configured cap on top of that
-    ir_margin = r + max(np.nanmax(pm_own, initial=0.0), 0.0) * dt / 1000.0
+    ir_margin = default_ir_margin_arcsec(cfg, own) if ir_margin_arcsec is None else float(ir_margin_arcsec)
     astro_margin = ir_margin + r + cfg.match.max_proper_motion_mas_yr * dt / 1000.0
+    centre, reach = _disc(int(tile), int(order))
     ir_parts = []
     for t in tiles.tiles_near(tile, order, ir_margin):
         path = lay.tile_file("infrared", order, int(t))
         decoded = cache.get(path)
-        part = _disc_filter(decoded, tile, order, ir_margin) if decoded.exists else None
+        part = None
+        if decoded.exists:
+            # the prior of every pair follows the density of its infrared source's own tile, counted from
+            # that tile's rows alone, so every tile that loads the source gives it the same prior; it is
+            # reported with the rows, so the record of what the tile used changes when the density does
+            density = _tile_density(str(path), decoded.sha256, order, decoded.table)
+            part = _disc_filter(decoded, tile, order, ir_margin)
+            part = part.append_column(DENSITY_COLUMN, pa.array(np.full(part.num_rows, density)))
         report("infrared", int(t), path, part, decoded)
         if part is not None:
             ir_parts.append(part)
+    neighbour_columns = _neighbour_columns(cfg)
     neighbour_parts = []
     for t in tiles.tiles_near(tile, order, astro_margin):
         if t == tile:
@@ -100,14 +153,19 @@ def load_tile(cfg: Config, tile: int, on_input=None, *, cache: TileCache | None 
         path = lay.tile_file("astrometric", order, int(t))
         decoded = cache.get(path)
         if decoded.exists:
-            # neighbours only compete for counterparts: their positions and motions are all we need
-            neighbour_parts.append(_disc_filter(decoded, tile, order, astro_margin, _NEIGHBOUR_COLUMNS))
+            # neighbours only compete for counterparts: positions, motions and their errors are all we need
+            neighbour_parts.append(_disc_filter(decoded, tile, order, astro_margin, neighbour_columns))
             report("astrometric", int(t), path, neighbour_parts[-1], decoded)
         else:
             report("astrometric", int(t), path, None, decoded)
     infrared = _concat(ir_parts) if ir_parts else _empty_infrared(cfg)
-    neighbours = _concat(neighbour_parts) if neighbour_parts else own.select(_NEIGHBOUR_COLUMNS).slice(0, 0)
-    return own, neighbours, infrared
+    neighbours = _concat(neighbour_parts) if neighbour_parts else own.select(neighbour_columns).slice(0, 0)
+    return LoadedTile(own, neighbours, infrared, LoadedArea(centre, reach, ir_margin, astro_margin))
+
+
+def _neighbour_columns(cfg: Config) -> list[str]:
+    mapped = {schema.role("astrometric", name).canonical for name in cfg.astrometric.columns}
+    return _NEIGHBOUR_COLUMNS + [c for c in ASTROMETRIC_ERROR_COLUMNS if c in mapped and c not in _NEIGHBOUR_COLUMNS]
 
 
 _NEIGHBOUR_COLUMNS = ["astro_id", "ra_deg", "dec_deg", "pmra_mas_yr", "pmdec_mas_yr"]
@@ -124,6 +182,7 @@ def _empty_infrared_schema(bands: tuple[str, ...], has_err: tuple[bool, ...]):
         fields.append((schema.infrared_mag_column(b), pa.float64()))
         if e:
             fields.append((schema.infrared_error_column(b), pa.float64()))
+    fields.append((DENSITY_COLUMN, pa.float64()))
     return pa.schema(fields)
 
 

@@ -35,8 +35,8 @@ from selector.jobs.run.commit import commit as commit_outputs, committed_run, re
 from selector.jobs.run.execute import (BLOCKED_BY, KILL_AT_ENV, TileOutcome, check_model, execute, fault, one_line,
                                       run_tile, worker_count)
 from selector.core.selection import skipped_cut_notes
-from selector.jobs.run.merge import (TileSummary, account, file_stats, format_cutflow, merge, merged_from_summaries,
-                                     merged_paths, provenance, total_cutflow)
+from selector.jobs.run.merge import (TileSummary, account, chance_total, file_stats, format_chance, format_cutflow, merge,
+                                     merged_from_summaries, merged_paths, provenance, total_cutflow)
 from selector.jobs.run.plan import (TilePlan, compute_plan, expected_rows, file_digest, file_row, ingest_summaries,
                                     inputs_key, must_compute, output_stats, plan_tiles, scan_inputs, tile_ids, tile_rel)
 from selector.jobs.run.progress import Reporter
@@ -144,6 +144,9 @@ class RunResult:
         The run log.
     timings : RunTimings
         Where the time went and the workers' peak memory (also in the run log and the manifest).
+    chance : dict or None
+        Expected chance counterparts among the candidates and the matched sources, from the shifted-position
+        matches of every tile (also in ``provenance.json`` as ``chance_counterparts``).
     """
 
     ok: bool
@@ -159,6 +162,7 @@ class RunResult:
     accounting: list = field(default_factory=list)
     log_file: Path | None = None
     timings: RunTimings = field(default_factory=RunTimings)
+    chance: dict | None = None
 
 
 @dataclass(kw_only=True)
@@ -322,7 +326,8 @@ def _run(ctx: _Run) -> RunResult:
     finished = [t for t in ids if t not in failed]
     summaries = [TileSummary.from_record(records[t]) for t in finished]
     complete = not failed
-    merge_prov = {**prov, "complete": complete, "failed_tiles": sorted(failed)}
+    chance = chance_total(cfg, finished)
+    merge_prov = {**prov, "complete": complete, "failed_tiles": sorted(failed), "chance_counterparts": chance}
     warnings = settle(run_findings(cfg, {t: records[t] for t in finished}, ingest, _moving_stars(lay, finished)),
                       strict=ctx.strict, log=rep.always,
                       what="nothing was merged and the previous merged outputs stay as they were")
@@ -357,7 +362,7 @@ def _run(ctx: _Run) -> RunResult:
     ctx.timings.wall_s = time.perf_counter() - ctx.started
     result = RunResult(complete, merged_out.tiles, merged_out.candidates, merged_out.cutflow, merged_out.outputs,
                        failed=failed, actions=actions, merged=merged, complete=complete, accounting=lines,
-                       timings=ctx.timings)
+                       timings=ctx.timings, chance=chance)
     # kept with the run's record (not a result file: times never go there)
     man.set(f"run-{ctx.run_id}-timings", {k: v for k, v in vars(ctx.timings).items()})
     status = "ok" if complete else "incomplete"
@@ -523,10 +528,15 @@ def _summarise(ctx: _Run, result: RunResult, work_s: float) -> None:
         rep.info(note)
     for line in result.accounting:
         rep.info(line)
+    chance_line = format_chance(result.chance)
+    if chance_line:
+        rep.info(chance_line)
     rep.always(f"run {ctx.run_id}: {a['computed']} tiles computed, {a['reselected']} re-selected, {a['verified']} "
                f"checked unchanged, {a['reused']} reused, {a['failed']} failed ({work_s:.1f} s of tile work); "
                f"{result.candidates:,} candidates in {result.outputs['ecsv']}"
-               + ("" if result.merged else " (already up to date)"))
+               + ("" if result.merged else " (already up to date)")
+               + (f"; expected chance counterparts among them: {result.chance['expected_candidates']:.1f} ± "
+                  f"{result.chance['expected_candidates_error']:.1f}" if result.chance else ""))
     if result.failed:
         where = f"--config {ctx.config_path}" if ctx.config_path else "--config <your config file>"
         rep.always(f"INCOMPLETE: {len(result.failed)} of {len(result.failed) + result.tiles} tiles failed"

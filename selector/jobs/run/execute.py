@@ -7,6 +7,7 @@ holds the run lock records them in the manifest.
 
 from __future__ import annotations
 
+import json
 import os
 import resource
 import signal
@@ -22,18 +23,16 @@ from selector import __version__
 from selector.core import schema
 from selector.core.frames import galactic_matrix
 from selector.core.selection import check_accounting
-from selector.core.tilematch import match_tile
 from selector.errors import InputError, SelectorError
 from selector.jobs.train import load_scorer
 from selector.jobs.run.plan import TilePlan, compute_plan, tile_rel
-from selector.jobs.run.tile import select_tile
+from selector.jobs.run.tile import estimate_chance, load_and_match, select_tile
 from selector.settings.config import Config
 from selector.store.io import DurableBatch, read_parquet, write_json, write_parquet
 from selector.store.keys import combined_digest, model_sha, table_digest
-from selector.store.layout import layout_of
+from selector.store.layout import CHANCE_SOURCES_KEY, chance_file, layout_of
 from selector.store.lock import close_inherited_lock
 from selector.store.tilecache import TileCache
-from selector.store.tilereader import load_tile
 
 #: Environment variable naming a moment at which the run kills itself with SIGKILL (tests only):
 #: ``planned``, ``tile@N`` (N-th tile result received, not yet recorded), ``recorded@N``,
@@ -232,21 +231,23 @@ def _work(cfg: Config, tile: int, plan: TilePlan, batch: DurableBatch) -> TileOu
     features = None
     clock = time.perf_counter()
     if mode in ("compute", "check"):
-        consulted, digests, files = {}, {}, []
+        consulted, digests, files = {}, {}, {}
 
         def on_input(kind, t, path, part, decoded):
             rel = tile_rel(cfg, kind, t)
             consulted[rel] = part is not None
             if part is None:
                 return
-            files.append((rel, decoded.sha256, decoded.size, decoded.mtime_ns))
+            # a tile whose margin grows reads its files again: the last reading is the one used
+            files[rel] = (rel, decoded.sha256, decoded.size, decoded.mtime_ns)
             if t == tile and kind == "astrometric" or kind == "infrared":
                 _check_columns(cfg, kind, path, part)
             if part.num_rows:
                 digests[rel] = table_digest(part)
 
         try:
-            own, neighbours, infrared = load_tile(cfg, tile, on_input, cache=TILE_CACHE)
+            loaded, m = load_and_match(cfg, tile, on_input, cache=TILE_CACHE)
+            own = loaded.own
         except InputError as exc:
             if not str(exc).startswith(str(lay.tile_file("astrometric", cfg.tiling.order, tile))):
                 # a neighbour's file, read for the margin: say that this tile fails because of it
@@ -255,7 +256,8 @@ def _work(cfg: Config, tile: int, plan: TilePlan, batch: DurableBatch) -> TileOu
         content_key = combined_digest(digests)
         rows = own.num_rows
         out.inputs, out.content_key, out.rows = sorted(consulted.items()), content_key, rows
-        out.files = sorted(files)
+        out.files = sorted(files.values())
+        # reading and matching together: the match decides whether the margins must grow and be read again
         out.read_s, clock = time.perf_counter() - clock, time.perf_counter()
         if mode == "check" and content_key == plan.content_key:
             if not plan.reselect:
@@ -263,8 +265,6 @@ def _work(cfg: Config, tile: int, plan: TilePlan, batch: DurableBatch) -> TileOu
                 return out
             mode = "select"
         else:
-            m = match_tile(own, neighbours, infrared, tile, radius_arcsec=cfg.match.radius_arcsec,
-                           dt_yr=cfg.epoch_difference_yr, order=cfg.tiling.order)
             features = _normalised(m.features)
             out.match_s, clock = time.perf_counter() - clock, time.perf_counter()
             match_prov = {"provenance": {"tile": tile, "match_key": plan.match_key, "content_key": content_key,
@@ -272,28 +272,46 @@ def _work(cfg: Config, tile: int, plan: TilePlan, batch: DurableBatch) -> TileOu
             write_parquet(features, lay.tile_output(tile, "features.parquet"), match_prov, batch=batch)
             # the blend count of every infrared source the tile owns, matched or not
             write_parquet(m.infrared, lay.tile_output(tile, "infrared.parquet"), match_prov, batch=batch)
+            chance, n_shifted = m.chance, m.n_chance_sources
+            # the chance pairs of the shifted sources and how many shifted sources took part (none: no estimate)
+            chance = _normalised(chance) if chance is not None else features.slice(0, 0)
+            write_parquet(chance, chance_file(lay, tile), {**match_prov, CHANCE_SOURCES_KEY: n_shifted}, batch=batch)
             out.action = "computed"
             out.write_s, clock = time.perf_counter() - clock, time.perf_counter()
     else:
         rows = int(plan.rows)
     if features is None:
         features = _normalised(read_parquet(lay.tile_output(tile, "features.parquet")))
+        chance, n_shifted = _read_chance(lay, tile)
         out.action = "reselected"
         out.read_s, clock = out.read_s + time.perf_counter() - clock, time.perf_counter()
     result = select_tile(cfg, tile, rows, features, _scorer(cfg, plan.model))
     check_accounting(result.n_rows, result.rejects.num_rows, result.cutflow)
+    estimate = estimate_chance(cfg, result, chance, n_shifted=n_shifted, scorer=_scorer(cfg, plan.model))
     out.select_s, clock = time.perf_counter() - clock, time.perf_counter()
     tile_prov = {"tile": tile, "match_key": plan.match_key, "selection_key": plan.selection_key,
                  "selector_version": __version__}
     write_parquet(result.candidates, lay.tile_output(tile, "candidates.parquet"), {"provenance": tile_prov},
                   batch=batch)
     write_parquet(result.rejects, lay.tile_output(tile, "rejects.parquet"), batch=batch)
-    write_json({"tile": tile, "rows": result.n_rows, "rejects": result.rejects.num_rows,
-                "cutflow": result.cutflow}, lay.tile_output(tile, "cutflow.json"), batch=batch)
+    record = {"tile": tile, "rows": result.n_rows, "rejects": result.rejects.num_rows, "cutflow": result.cutflow}
+    if estimate is not None:
+        record["chance"] = estimate.as_dict()
+    write_json(record, lay.tile_output(tile, "cutflow.json"), batch=batch)
     out.write_s += time.perf_counter() - clock
     out.rows, out.rejects, out.candidates = result.n_rows, result.rejects.num_rows, result.candidates.num_rows
     out.cutflow = [[n, int(c)] for n, c in result.cutflow]
     return out
+
+
+def _read_chance(lay, tile: int):
+    """The chance pairs a tile's match wrote, and the number of shifted sources; (None, 0) without them."""
+    path = chance_file(lay, tile)
+    if not path.exists():
+        return None, 0
+    table = read_parquet(path)
+    n_shifted = int(json.loads((table.schema.metadata or {}).get(CHANCE_SOURCES_KEY.encode(), b"0")))
+    return _normalised(table), n_shifted
 
 
 def worker_count(cfg: Config, workers: int | None) -> int:

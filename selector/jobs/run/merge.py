@@ -24,6 +24,7 @@ from astropy.table import Table
 from selector import __version__
 from selector.core import schema
 from selector.core.selection import check_accounting, rank_keys
+from selector.core.tilematch import ChanceEstimate
 from selector.errors import SelectorError
 from selector.jobs.run.plan import ingest_summaries
 from selector.jobs.train import read_card
@@ -150,6 +151,35 @@ def format_cutflow(flow: list[tuple[str, int]]) -> str:
         lines.append(f"{name:<{width}}  {count:>12,d}  {prev - count:>12,d}  {count / first:>8.2%}")
         prev = count
     return "\n".join(lines)
+
+
+def chance_total(cfg: Config, tiles) -> dict | None:
+    """Expected chance counterparts summed over the tiles' records (``cutflow.json``), or None without any.
+
+    Each tile estimated its own from the shifted-position match (:func:`selector.core.tilematch.chance_estimate`);
+    tiles are independent, so the expectations add and their errors add in quadrature.
+    """
+    lay = layout_of(cfg)
+    parts = []
+    for t in tiles:
+        path = lay.tile_cutflow(t)
+        record = json.loads(path.read_text()) if path.exists() else {}
+        if "chance" in record:
+            parts.append(ChanceEstimate(**record["chance"]))
+    if not parts:
+        return None
+    total = ChanceEstimate.total(parts).as_dict()
+    return {**total, "tiles": len(parts), "method": "shifted positions"}
+
+
+def format_chance(chance: dict | None) -> str | None:
+    """One line for the run summary and the report, or None when there is no estimate."""
+    if not chance:
+        return None
+    return (f"expected chance counterparts: {chance['expected_candidates']:.1f} ± "
+            f"{chance['expected_candidates_error']:.1f} among the candidates, {chance['expected_matches']:.0f} ± "
+            f"{chance['expected_matches_error']:.0f} among all matched sources (from "
+            f"{chance['shifted_sources']:,} shifted positions)")
 
 
 def merged_from_summaries(cfg: Config, summaries: list[TileSummary]) -> Merged:
