@@ -27,9 +27,9 @@ import numpy as np
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
-from selector.core.counterparts import assign_one_to_one, astrometric_covariance, infrared_covariance  # noqa: E402
+from selector.core.counterparts import astrometric_covariance, infrared_covariance  # noqa: E402
 from selector.core.crossmatch import count_within, nearest_within, pairs_within  # noqa: E402
-from selector.core.tilematch import MatchSettings, MatchSide, candidate_pairs  # noqa: E402
+from selector.core.tilematch import MatchSettings, MatchSide, assign_pairs, candidate_pairs  # noqa: E402
 
 
 def _cap(rng, n, centre_ra_deg, centre_dec_deg, radius_deg):
@@ -172,7 +172,7 @@ def main(argv=None):
         t0 = time.perf_counter()
         c = candidate_pairs(side_a, side_b, density, settings, workers=workers)
         t1 = time.perf_counter()
-        asg = assign_one_to_one(c.ia, c.ib, c.ln_b, c.prior, c.separation_arcsec, n_astrometric=n_a)
+        asg = assign_pairs(c, n_a)
         return time.perf_counter() - t0, t1 - t0, time.perf_counter() - t1, c, asg
 
     t_prob = t_cand = t_assign = t_ref2 = np.inf

@@ -18,7 +18,7 @@ from selector.core.astrometry import propagate
 from selector.core.counterparts import (PositionCovariance, assign_one_to_one, astrometric_covariance, bayes_factor,
                                         combine_covariances, infrared_covariance, major_sigma_arcsec,
                                         prior_from_density, rotate_covariance, tangent_offset)
-from selector.core.tilematch import ChanceEstimate, MATCH_COLUMNS, tile_density_per_sr
+from selector.core.tilematch import ChanceEstimate, MATCH_COLUMNS, PairCandidates, assign_pairs, tile_density_per_sr
 from selector.errors import ConfigError
 from selector.jobs.ingest import ingest
 from selector.jobs.run.tile import load_and_match, process_tile
@@ -335,3 +335,21 @@ def test_missing_error_column_without_floor_is_one_config_error():
     data["infrared"]["columns"]["ra_error"] = "era"
     with pytest.raises(ConfigError, match="maps ra_error but not dec_error"):
         build(data)
+
+
+def test_isolated_pairs_set_aside_give_the_general_assignment():
+    """assign_pairs (isolated pairs decided at once) equals assign_one_to_one on every pair."""
+    rng = np.random.default_rng(5)
+    n_a, n_b = 400, 300
+    # a mix of lone pairs and crowded groups
+    ia = np.concatenate([np.arange(200), rng.integers(200, 400, 500)])
+    ib = np.concatenate([np.arange(200), rng.integers(200, 300, 500)])
+    _, first = np.unique(np.stack([ia, ib], 1), axis=0, return_index=True)
+    ia, ib = ia[np.sort(first)], ib[np.sort(first)]
+    c = PairCandidates(ia, ib, rng.uniform(0, 2, ia.size), rng.normal(20, 3, ia.size), np.full(ia.size, 1e-3),
+                       rng.uniform(0.1, 1, ia.size))
+    got = assign_pairs(c, n_a, ambiguity_ratio=0.5)
+    ref = assign_one_to_one(ia, ib, c.ln_b, c.prior, c.separation_arcsec, n_astrometric=n_a, ambiguity_ratio=0.5)
+    for name in ref._fields:
+        np.testing.assert_array_equal(getattr(got, name), getattr(ref, name), err_msg=name)
+    assert n_b > ib.max()

@@ -28,12 +28,13 @@ import numpy as np
 import pyarrow as pa
 from scipy.sparse import coo_matrix
 from scipy.sparse.csgraph import connected_components
+from scipy.special import expit
 
 from selector.core import tiles
 from selector.core.astrometry import propagate
-from selector.core.counterparts import (PositionCovariance, assign_one_to_one, astrometric_covariance,
+from selector.core.counterparts import (Assignment, PositionCovariance, assign_one_to_one, astrometric_covariance,
                                         bayes_factor, chance_counterparts, combine_covariances, infrared_covariance,
-                                        major_sigma_arcsec, prior_from_density, rotate_covariance,
+                                        major_sigma_arcsec, posterior_log_odds, prior_from_density, rotate_covariance,
                                         search_radius_arcsec, shift_positions, tangent_offset)
 from selector.core.crossmatch import nearest_within, pairs_within
 from selector.core.frames import galactic, radec_to_xyz
@@ -304,6 +305,45 @@ def candidate_pairs(a: MatchSide, b: MatchSide, density_b, s: MatchSettings, *, 
     return PairCandidates(ia[keep], ib[keep], found.separation_arcsec[keep], ln_b[keep], prior, sigma[keep])
 
 
+def assign_pairs(c: PairCandidates, n_astrometric: int, *, ambiguity_ratio: float = 0.5) -> Assignment:
+    """:func:`selector.core.counterparts.assign_one_to_one` of candidate pairs, with isolated pairs set aside.
+
+    A pair whose astrometric and infrared source have no other candidate is a component of its own: the
+    greedy assignment accepts it, with no competitor and no runner-up. Most pairs of a real field are such,
+    so only the pairs that share a source go through the general assignment; the result is identical.
+    """
+    n_a = int(n_astrometric)
+    odds = posterior_log_odds(c.ln_b, c.prior)
+    usable = ~np.isnan(odds)
+    count_a = np.bincount(c.ia[usable], minlength=n_a)
+    count_b = np.bincount(c.ib[usable], minlength=int(c.ib.max(initial=-1)) + 1)
+    alone = usable & (count_a[c.ia] == 1) & (count_b[c.ib] == 1)
+    shared = np.flatnonzero(usable & ~alone)
+    # the general assignment on the shared pairs alone, over the astrometric sources they involve
+    a_ids, a_local = np.unique(c.ia[shared], return_inverse=True)
+    sub = assign_one_to_one(a_local.reshape(-1), c.ib[shared], c.ln_b[shared], c.prior[shared],
+                            c.separation_arcsec[shared], n_astrometric=a_ids.size, ambiguity_ratio=ambiguity_ratio)
+    out = {"pair_index": np.full(n_a, -1, np.int64), "ib": np.full(n_a, -1, np.int64), "probability": np.zeros(n_a),
+           "ln_b": np.full(n_a, np.nan), "ln_odds": np.full(n_a, np.nan), "separation_arcsec": np.full(n_a, np.nan),
+           "n_candidates": np.zeros(n_a, np.int64), "n_rivals": np.zeros(n_a, np.int64),
+           "n_competitors": np.zeros(n_a, np.int64), "runner_up_ratio": np.full(n_a, np.nan),
+           "ambiguous": np.zeros(n_a, bool)}
+    for name, value in sub._asdict().items():
+        out[name][a_ids] = value
+    chosen = a_ids[sub.pair_index >= 0]
+    out["pair_index"][chosen] = shared[sub.pair_index[sub.pair_index >= 0]]
+    k = np.flatnonzero(alone)
+    a = c.ia[k]
+    out["pair_index"][a] = k
+    out["ib"][a] = c.ib[k]
+    out["probability"][a] = expit(odds[k])
+    out["ln_b"][a] = c.ln_b[k]
+    out["ln_odds"][a] = odds[k]
+    out["separation_arcsec"][a] = c.separation_arcsec[k]
+    out["n_candidates"][a] = 1
+    return Assignment(**out)
+
+
 def _propagated(table: pa.Table, dt_yr: float):
     """Positions at the infrared epoch; sources without a proper motion stay where they are."""
     ra = table.column("ra_deg").to_numpy()
@@ -434,8 +474,7 @@ def match_tile(own: pa.Table, neighbours: pa.Table, infrared: pa.Table, tile: in
         need = _margin_needed(c, n_own=n_own, n_a=n_a, a_pos=(ra_a, dec_a), b_pos=(ir_ra, ir_dec), area=area, s=s)
         if need is not None:
             return TileMatch(own.slice(0, 0), pa.table({}), n_own, needs_ir_margin_arcsec=need)
-    asg = assign_one_to_one(c.ia, c.ib, c.ln_b, c.prior, c.separation_arcsec, n_astrometric=n_a,
-                            ambiguity_ratio=s.ambiguity_ratio)
+    asg = assign_pairs(c, n_a, ambiguity_ratio=s.ambiguity_ratio)
     blend = np.bincount(c.ib, minlength=len(ir_ra)).astype(np.int64)
     rows = np.flatnonzero(asg.pair_index[:n_own] >= 0)
     ir_for = asg.ib[rows]
@@ -503,8 +542,7 @@ def _chance_matches(own, infrared, tile, s: MatchSettings, *, own_pos, cov_own, 
             continue
         ra, dec = moved.ra_deg[inside], moved.dec_deg[inside]
         c = candidate_pairs(MatchSide(ra, dec, _take_cov(cov_own, inside)), ir_side, density, s)
-        asg = assign_one_to_one(c.ia, c.ib, c.ln_b, c.prior, c.separation_arcsec, n_astrometric=inside.size,
-                                ambiguity_ratio=s.ambiguity_ratio)
+        asg = assign_pairs(c, inside.size, ambiguity_ratio=s.ambiguity_ratio)
         blend = np.bincount(c.ib, minlength=len(ir_side.ra_deg)).astype(np.int64)
         local = np.flatnonzero(asg.pair_index >= 0)
         columns = _match_columns(tile, local, asg, pos=(ra, dec), sigma=c.sigma_arcsec, blend=blend)
