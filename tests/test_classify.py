@@ -108,7 +108,8 @@ def test_feature_list_follows_the_configuration(tmp_path):
                      "ir_3p4_minus_4p6_mag", "opt_broad_minus_ir_3p4_abmag", "opt_broad_minus_ir_4p6_abmag",
                      "excess_stern2012_mag", "excess_assef2013_r90_mag", "excess_assef2018_r90_mag",
                      "excess_assef2018_r75_mag", "excess_assef2018_c75_mag",
-                     "parallax_snr", "pm_chi2", "sep_arcsec", "ir_blend_count"]
+                     "parallax_snr", "pm_chi2", "sep_arcsec", "ir_blend_count", "match_probability",
+                     "n_competitors"]
     data = base_config()
     data["astrometric"]["columns"]["fit_quality"] = "fitq"
     data["infrared"]["magnitudes"].append({"band": "12", "column": "m12"})

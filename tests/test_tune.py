@@ -172,7 +172,7 @@ def test_stage_list_follows_the_config(demo_run):
     _, path, _ = demo_run
     out = tune.tune(path, CHANGES["stages"])
     names = [n for n, _ in out.after.cutflow]
-    assert names == ["input", "matched", "astrometric_solution", "fit_quality", "negative_parallax", "joint_motion",
+    assert names == ["input", "matched", "match_quality", "astrometric_solution", "fit_quality", "negative_parallax", "joint_motion",
                      "point_source", "infrared_colour", "galactic_latitude"]
     rows = tune.compare_cutflows(out.before.cutflow, out.after.cutflow)
     assert [r[0] for r in rows] == names
