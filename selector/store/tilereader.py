@@ -85,10 +85,19 @@ def default_ir_margin_arcsec(cfg: Config, own: pa.Table) -> float:
             + max(np.nanmax(pm_own, initial=0.0), 0.0) * abs(cfg.epoch_difference_yr) / 1000.0)
 
 
-@lru_cache(maxsize=256)
-def _tile_density(path: str, sha256: str, order: int, table: pa.Table) -> float:
-    # keyed by the file's digest: every margin of every neighbour asks for the same tile's density
-    return tile_density_per_sr(table.column("ra_deg").to_numpy(), table.column("dec_deg").to_numpy(), order)
+_DENSITIES: dict[tuple[str, str, int], float] = {}
+
+
+def _tile_density(decoded: DecodedTile, order: int) -> float:
+    """The density of a decoded infrared tile, remembered by its digest (every neighbour asks for it)."""
+    key = (str(decoded.path), decoded.sha256, int(order))
+    if key not in _DENSITIES:
+        if len(_DENSITIES) >= 4096:
+            _DENSITIES.clear()
+        table = decoded.table
+        _DENSITIES[key] = tile_density_per_sr(table.column("ra_deg").to_numpy(), table.column("dec_deg").to_numpy(),
+                                              order)
+    return _DENSITIES[key]
 
 
 def load_tile(cfg: Config, tile: int, on_input=None, *, cache: TileCache | None = None,
@@ -139,7 +148,7 @@ def load_tile(cfg: Config, tile: int, on_input=None, *, cache: TileCache | None 
             # the prior of every pair follows the density of its infrared source's own tile, counted from
             # that tile's rows alone, so every tile that loads the source gives it the same prior; it is
             # reported with the rows, so the record of what the tile used changes when the density does
-            density = _tile_density(str(path), decoded.sha256, order, decoded.table)
+            density = _tile_density(decoded, order)
             part = _disc_filter(decoded, tile, order, ir_margin)
             part = part.append_column(DENSITY_COLUMN, pa.array(np.full(part.num_rows, density)))
         report("infrared", int(t), path, part, decoded)
