@@ -137,6 +137,7 @@ def _config_text(*, output_dir="out", astro_file="astro.parquet", ir_file="ir.pa
         [astrometric]
         files = ["{astro_file}"]
         epoch_jyear = {ASTRO_EPOCH}
+        position_floor_arcsec = 0.001
 
         [astrometric.columns]
         id = "sid"
@@ -157,6 +158,7 @@ def _config_text(*, output_dir="out", astro_file="astro.parquet", ir_file="ir.pa
         [infrared]
         files = ["{ir_file}"]
         epoch_jyear = {IR_EPOCH}
+        position_floor_arcsec = 0.8
 
         [infrared.columns]
         id = "irid"

@@ -3,7 +3,6 @@
 from __future__ import annotations
 
 import dataclasses
-from types import SimpleNamespace
 
 import numpy as np
 import pyarrow as pa
@@ -92,8 +91,7 @@ def test_quality_stages_appear_in_the_cutflow_in_order():
 
 def _probabilistic(cfg):
     """``cfg`` as the probabilistic match would give it (the key arrives with the match half of the issue)."""
-    match = SimpleNamespace(**dataclasses.asdict(cfg.match), method="probabilistic")
-    return dataclasses.replace(cfg, match=match)
+    return dataclasses.replace(cfg, match=dataclasses.replace(cfg.match, method="probabilistic"))
 
 
 def test_match_quality_cut_with_a_match_probability_column():
@@ -113,7 +111,8 @@ def test_match_quality_cut_with_a_match_probability_column():
 
 def test_match_quality_cut_is_a_stated_no_op_without_probabilities():
     table = _rows([0.0, 0.0])
-    nearest = _config()
+    base = _config()
+    nearest = dataclasses.replace(base, match=dataclasses.replace(base.match, method="nearest"))
     sel = select(table, nearest)
     assert "match_quality" not in dict(sel.stages)
     assert sel.notes and "nearest" in sel.notes[0]

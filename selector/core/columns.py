@@ -111,6 +111,27 @@ COLUMNS: dict[str, ColumnDoc] = {
     "n_ir_within": ColumnDoc("infrared sources within the match radius of the astrometric source", "meta.number"),
     "ir_blend_count": ColumnDoc("astrometric sources within the match radius of the infrared counterpart "
                                 "(more than 1: the infrared flux may be blended)", "meta.number"),
+    "match_probability": ColumnDoc("posterior probability that the infrared counterpart is the same source "
+                                   "(Budavari & Szalay 2008 Bayes factor of both positions' errors, prior from the "
+                                   "infrared source density of its tile); NaN with match.method = nearest",
+                                   "stat.probability", P.probability),
+    "match_ln_bayes_factor": ColumnDoc("natural log of the Bayes factor of the pair (same source against two "
+                                       "unrelated sources)", "stat.likelihood", P.statistic),
+    "n_competitors": ColumnDoc("other sources that competed for this pair: further infrared candidates of the "
+                               "source and other astrometric sources wanting the same counterpart", "meta.number"),
+    "match_ambiguous": ColumnDoc("true when the runner-up pair has more than match.ambiguity_ratio of the chosen "
+                                 "pair's probability", "meta.code"),
+    "pair_sigma_arcsec": ColumnDoc("combined 1-sigma positional error of the pair along the major axis of its error "
+                                   "ellipse (both catalogues, at the infrared epoch)", "stat.error;pos.eq",
+                                   P.angle_arcsec),
+    "ir_density_per_sr": ColumnDoc("surface density of infrared sources in the counterpart's tile (per steradian), "
+                                   "which sets the prior of the match", "phys.density;em.IR", 1),
+    "ir_ra_error_arcsec": ColumnDoc("uncertainty of the infrared counterpart's right ascension, times cos(dec)",
+                                    "stat.error;pos.eq.ra", P.angle_arcsec),
+    "ir_dec_error_arcsec": ColumnDoc("uncertainty of the infrared counterpart's declination", "stat.error;pos.eq.dec",
+                                     P.angle_arcsec),
+    "ir_ra_dec_corr": ColumnDoc("correlation of the infrared counterpart's right ascension and declination errors",
+                                "stat.correlation;pos.eq", P.probability),
     # --- selection statistics ----------------------------------------------------------------------
     "parallax_snr": ColumnDoc("parallax over its error, after the configured zero point and error inflation",
                               "stat.snr;pos.parallax", P.statistic),

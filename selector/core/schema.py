@@ -162,7 +162,7 @@ def role(catalogue: str, name: str) -> Role:
     raise KeyError(name)
 
 
-_UNIT_SUFFIXES = (("_mas_yr", "mas / yr"), ("_mas", "mas"), ("_arcsec", "arcsec"), ("_deg", "deg"),
+_UNIT_SUFFIXES = (("_per_sr", "1 / sr"), ("_mas_yr", "mas / yr"), ("_mas", "mas"), ("_arcsec", "arcsec"), ("_deg", "deg"),
                   ("_vegamag", "mag"), ("_abmag", "mag"), ("_mag_error", "mag"), ("_mag", "mag"), ("_jyear", "yr"))
 
 
