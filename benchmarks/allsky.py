@@ -322,7 +322,7 @@ pmra = {{ column = "pm_ra", unit = "mas / yr" }}
 pmdec = {{ column = "pm_dec", unit = "mas / yr" }}
 pmra_error = {{ column = "pm_ra_err", unit = "mas / yr" }}
 pmdec_error = {{ column = "pm_dec_err", unit = "mas / yr" }}
-pmra_pmdec_corr = "pm_corr"
+pm_corr = "pm_corr"
 
 [[astrometric.magnitudes]]
 band = "broad"

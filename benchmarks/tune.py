@@ -66,7 +66,7 @@ pmra = "pmra"
 pmdec = "pmdec"
 pmra_error = "epmra"
 pmdec_error = "epmdec"
-pmra_pmdec_corr = "corr"
+pm_corr = "corr"
 [[astrometric.magnitudes]]
 band = "broad"
 column = "g"

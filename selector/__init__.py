@@ -11,6 +11,9 @@ from importlib import import_module
 
 #: What ``__version__`` is when the package was not installed (running from a source tree).
 _SOURCE_VERSION = "0.1.0"
+#: The distribution's name on the package index (the import package and the command stay ``selector``;
+#: a distribution named ``selector`` on the index is an unrelated project).
+DISTRIBUTION = "quasar-selector"
 
 #: Public name → the module that defines it.
 _PUBLIC = {
@@ -25,7 +28,7 @@ __all__ = ["__version__", *sorted(_PUBLIC)]
 
 
 def _installed_version() -> str:
-    """The installed distribution's version, from its ``selector-<version>.dist-info`` folder name.
+    """The installed distribution's version, from its ``quasar_selector-<version>.dist-info`` folder name.
 
     The folder name carries the version by the packaging standard (PEP 376), and the first one on
     ``sys.path`` is the one imported, as ``importlib.metadata`` would find it; that module is not
@@ -35,10 +38,12 @@ def _installed_version() -> str:
     import os
     import sys
 
+    # the folder is named after the distribution, normalised (PEP 503 name, "-" written as "_")
+    stem = DISTRIBUTION.replace("-", "_") + "-"
     for entry in sys.path:
-        found = sorted(glob.glob(os.path.join(glob.escape(entry or "."), "selector-*.dist-info")))
+        found = sorted(glob.glob(os.path.join(glob.escape(entry or "."), stem + "*.dist-info")))
         if found:
-            return os.path.basename(found[0])[len("selector-"):-len(".dist-info")]
+            return os.path.basename(found[0])[len(stem):-len(".dist-info")]
     return _SOURCE_VERSION  # running from a source tree that was not installed
 
 

@@ -150,13 +150,22 @@ def weigh(config, file, *, log: Log = print) -> weigh_job.WeighResult:
         return weigh_job.weigh(cfg, file, log=log)
 
 
-def report(run_dir, *, out=None, top: int = 50, allow_incomplete: bool = False, log: Log = print) -> Path:
-    """Write the self-contained HTML report of a run folder (one committed set; an incomplete run only
-    with ``allow_incomplete``, and the page says so)."""
-    layout = layout_of_run(run_dir)
+def report(config=None, *, run_dir=None, out=None, top: int = 50, allow_incomplete: bool = False,
+           log: Log = print) -> Path:
+    """Write the self-contained HTML report of a run: results first, then plots, provenance and settings.
+
+    ``config`` (a :class:`Config` or the path of its TOML file) names the run folder below its
+    ``project.output_dir`` and where the target list, the classifier and truth labels are; a run
+    folder given alone as ``run_dir`` is read with the configuration recorded in it. The run must be
+    one committed set; an incomplete run only with ``allow_incomplete`` (and the page says so).
+    """
+    if (config is None) == (run_dir is None):
+        raise ConfigError("report: give the configuration or a run folder (run_dir=...), one of the two")
+    cfg = None if config is None else _config(config)
+    layout = layout_of(cfg) if cfg is not None else layout_of_run(run_dir)
     with FolderLock(layout.output_dir, "report", exclusive=False):
         record = run_job.committed_run(layout, "report", allow_incomplete=allow_incomplete)
         _incomplete_note(record, log)
-        path = report_page.write_report(run_dir, out, top)
+        path = report_page.write_report(cfg, run_dir=run_dir, out=out, top=top)
     log(f"report: {path}")
     return path

@@ -76,7 +76,8 @@ def _cmd_report(args) -> int:
 
     if args.top < 1:
         raise SelectorError(f"--top {args.top}: give at least 1 row")
-    api.report(args.run, out=args.out, top=args.top, allow_incomplete=args.allow_incomplete, log=print)
+    api.report(args.config, run_dir=args.run, out=args.out, top=args.top, allow_incomplete=args.allow_incomplete,
+               log=print)
     return 0
 
 
@@ -118,6 +119,27 @@ def _allow_incomplete_arg(p: argparse.ArgumentParser) -> None:
                    help="go ahead on a run whose failed tiles are missing from its outputs (stated in the outputs)")
 
 
+#: An example line for each command's help (shown under its options).
+EXAMPLES = {
+    "ingest": "selector ingest --config my.toml",
+    "run": "selector run --config my.toml --workers 2",
+    "demo": "selector demo --out demo-out --scale 0.3",
+    "status": "selector status --config my.toml --runs 3",
+    "train": "selector train --config my.toml",
+    "targets": "selector targets --config my.toml --new-only",
+    "outcome": "selector outcome --config my.toml --file spectra.csv",
+    "weigh": "selector weigh --config my.toml --file spectra.csv",
+    "tune": "selector tune --config my.toml --set motion.parallax_snr_max=4 --set colours.criteria=stern2012",
+    "report": "selector report --config my.toml   (or: selector report --run selector-output/run)",
+}
+
+
+def _command(sub, name: str, help: str, **kwargs) -> argparse.ArgumentParser:
+    """A subcommand whose help ends with its example line."""
+    epilog = kwargs.pop("epilog", None) or f"example: {EXAMPLES[name]}"
+    return sub.add_parser(name, help=help, epilog=epilog, **kwargs)
+
+
 def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
         prog="selector",
@@ -127,12 +149,12 @@ def build_parser() -> argparse.ArgumentParser:
     parser.add_argument("--version", action=_Version)
     sub = parser.add_subparsers(dest="command", metavar="COMMAND")
 
-    p = sub.add_parser("ingest", help="map columns, validate rows and split the catalogues into tiles")
+    p = _command(sub, "ingest", help="map columns, validate rows and split the catalogues into tiles")
     _config_arg(p)
     _strict_arg(p)
     p.set_defaults(func=_cmd_ingest)
 
-    p = sub.add_parser("run", help="cross-match, test and rank every tile; write the candidate list")
+    p = _command(sub, "run", help="cross-match, test and rank every tile; write the candidate list")
     _config_arg(p)
     p.add_argument("--workers", type=int, default=None, help="worker processes (default: the config's run.workers)")
     p.add_argument("--executor", choices=("local", "dask"), default=None, help="where tiles run (default: config)")
@@ -143,26 +165,26 @@ def build_parser() -> argparse.ArgumentParser:
     _strict_arg(p)
     p.set_defaults(func=_cmd_run)
 
-    p = sub.add_parser("demo", help="write an invented mock sky, ingest it, run the whole job and score it")
+    p = _command(sub, "demo", help="write an invented mock sky, ingest it, run the whole job and score it")
     p.add_argument("--out", required=True, metavar="DIR", help="folder for the mock catalogues and all outputs")
     p.add_argument("--seed", type=int, default=1, help="seed of the mock sky")
     p.add_argument("--scale", type=float, default=1.0, help="size of the mock sky (1.0: about 2e5 sources)")
     p.add_argument("--workers", type=int, default=None, help="worker processes (default: one per core)")
     p.set_defaults(func=_cmd_demo)
 
-    p = sub.add_parser("status", help="show the run manifest: runs, tiles done, failed and pending, rows, timings")
+    p = _command(sub, "status", help="show the run manifest: runs, tiles done, failed and pending, rows, timings")
     _config_arg(p)
     p.add_argument("--runs", type=int, default=10, metavar="N", help="show the last N runs (default 10)")
     p.add_argument("--failed", action="store_true", help="list only the failed tiles and their errors")
     p.set_defaults(func=_cmd_status)
 
-    p = sub.add_parser("train", help="train the quasar classifier on labelled sources of the feature cache; write "
+    p = _command(sub, "train", help="train the quasar classifier on labelled sources of the feature cache; write "
                                      "the model, its card and a held-out evaluation")
     _config_arg(p)
     _allow_incomplete_arg(p)
     p.set_defaults(func=_cmd_train)
 
-    p = sub.add_parser("targets", help="follow-up list: known objects out, observability from a site, priorities")
+    p = _command(sub, "targets", help="follow-up list: known objects out, observability from a site, priorities")
     _config_arg(p)
     p.add_argument("--new-only", action="store_true",
                    help="write only the targets that are not in the previous list (each `selector targets` makes "
@@ -171,15 +193,14 @@ def build_parser() -> argparse.ArgumentParser:
     _allow_incomplete_arg(p)
     p.set_defaults(func=_cmd_targets)
 
-    p = sub.add_parser("outcome", help="record follow-up outcomes (spectroscopic class, redshift) of candidates")
+    p = _command(sub, "outcome", help="record follow-up outcomes (spectroscopic class, redshift) of candidates")
     _config_arg(p)
     p.add_argument("--file", required=True, metavar="FILE",
                    help="CSV, ECSV, VOTable, FITS or Parquet with columns astro_id (or candidate_id, id), "
                         "spec_class (or spectroscopic_class, class: quasar, star, galaxy) and optionally redshift (or z)")
     p.set_defaults(func=_cmd_outcome)
 
-    p = sub.add_parser(
-        "weigh", help="black-hole masses, bolometric luminosities, Eddington ratios and accretion rates from "
+    p = _command(sub, "weigh", help="black-hole masses, bolometric luminosities, Eddington ratios and accretion rates from "
                       "broad-line widths",
         description="Weigh the black holes of confirmed quasars from a spectroscopy file: single-epoch virial "
                     "masses from C IV, Mg II and Hbeta widths, the adopted mass (Hbeta, then Mg II, then C IV), "
@@ -195,15 +216,14 @@ def build_parser() -> argparse.ArgumentParser:
                         "lamL<W>_err_erg_s or fnu<W>_mjy, fnu<W>_err_mjy for W = 1350, 3000, 5100")
     p.set_defaults(func=_cmd_weigh)
 
-    p = sub.add_parser(
-        "tune", help="re-apply changed cuts to the run's feature cache in seconds; cut-flow before and after",
+    p = _command(sub, "tune", help="re-apply changed cuts to the run's feature cache in seconds; cut-flow before and after",
         description="Compare the run's selection with the config file's (plus --set changes) on the cached "
                     "features, without matching again. Writes nothing unless --plots or --write is given.")
     _config_arg(p)
     p.add_argument("--set", action="append", metavar="KEY=VALUE",
-                   help="change a selection setting, e.g. motion.parallax_snr_max=4, "
-                        "colours.criteria='[\"assef2018_r75\"]', classifier.threshold=0.7 (repeatable; "
-                        "KEY= restores the default)")
+                   help="change a selection setting, e.g. motion.parallax_snr_max=4, colours.criteria=assef2018_r75 "
+                        "(a list: colours.criteria='[\"stern2012\", \"assef2018_r75\"]'), classifier.threshold=0.7 "
+                        "(repeatable; KEY= restores the default)")
     p.add_argument("--truth", metavar="FILE", default=None,
                    help="truth labels (columns id and population or label) for completeness and purity; "
                         "default: catalogues/truth.parquet beside the config, if present")
@@ -213,12 +233,18 @@ def build_parser() -> argparse.ArgumentParser:
     _allow_incomplete_arg(p)
     p.set_defaults(func=_cmd_tune)
 
-    p = sub.add_parser("report", help="one self-contained HTML page of a run: provenance, cut-flow, plots, top targets",
-                       formatter_class=argparse.ArgumentDefaultsHelpFormatter)
-    p.add_argument("--run", required=True, metavar="DIR",
-                   help="the run folder (project.output_dir/run), which holds provenance.json")
-    p.add_argument("--out", default=None, metavar="FILE", help="where to write the page (default: DIR/report.html)")
-    p.add_argument("--top", type=int, default=50, help="rows of the top-targets table")
+    p = _command(sub, "report", help="one self-contained HTML page of a run: results first, then plots, then "
+                                     "provenance and settings",
+                 description="Write the run's report: headline numbers, the ranked candidates (the targets, when "
+                             "`selector targets` has made a list), the diagnostic plots, then provenance and "
+                             "the selection settings that were applied.")
+    where = p.add_mutually_exclusive_group(required=True)
+    where.add_argument("--config", metavar="FILE", help="TOML configuration file (the report of its run folder)")
+    where.add_argument("--run", metavar="DIR",
+                       help="a run folder (project.output_dir/run, which holds provenance.json), read alone")
+    p.add_argument("--out", default=None, metavar="FILE",
+                   help="where to write the page (default: report.html in the run folder)")
+    p.add_argument("--top", type=int, default=50, help="rows of the ranked table (default: 50)")
     _allow_incomplete_arg(p)
     p.set_defaults(func=_cmd_report)
     return parser

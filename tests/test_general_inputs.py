@@ -68,7 +68,7 @@ def two_runs(tmp_path_factory):
               "pmra": {"column": "PMA_AS", "unit": "arcsec/yr"}, "pmdec": {"column": "PMD_AS", "unit": "arcsec/yr"},
               "pmra_error": {"column": "EPMA_AS", "unit": "arcsec/yr"},
               "pmdec_error": {"column": "EPMD_AS", "unit": "arcsec/yr"},
-              "pmra_pmdec_corr": "RHO", "fit_quality": "Q", "parallax_pmra_corr": "RHO_PA",
+              "pm_corr": "RHO", "fit_quality": "Q", "parallax_pmra_corr": "RHO_PA",
               "parallax_pmdec_corr": "RHO_PD", "extent": {"column": "EXT_MMAG", "unit": "mmag"},
               "extent_error": {"column": "EEXT_MMAG", "unit": "mmag"}},
               "magnitudes": [{"band": "broad", "column": "MAGB", "error_column": "EMAGB", "system": "ab"}]},

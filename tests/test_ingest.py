@@ -65,7 +65,7 @@ def test_each_bad_row_has_its_own_reason(tmp_path, rng):
     pq.write_table(pa.table(cols), tmp_path / "astro.parquet")
     write_parquet(random_ir(10, rng), tmp_path / "ir.parquet")
     data = base_config()
-    data["astrometric"]["columns"]["pmra_pmdec_corr"] = "corr"
+    data["astrometric"]["columns"]["pm_corr"] = "corr"
     corr = np.zeros(30)
     corr[10] = 1.5                     # correlation_out_of_range
     t = pq.read_table(tmp_path / "astro.parquet").append_column("corr", pa.array(corr))

@@ -8,6 +8,7 @@ import re
 import shutil
 import subprocess
 from html.parser import HTMLParser
+from pathlib import Path
 
 import numpy as np
 import pytest
@@ -53,13 +54,60 @@ def test_every_plot_is_produced_and_deterministic(demo_run, cache):
     data = _data(cache, demo_run, ['colours.criteria=["stern2012", "assef2013_r90", "mateos2012_wedge"]'])
     assert data.candidate.sum() > 0
     first = plots.render_plots(data)
-    assert list(first) == [name for name, _, _ in plots.PLOTS]
-    assert set(first) == {"cutflow", "colour_colour", "colour_magnitude", "motion", "score", "sky"}
+    # without truth labels the completeness picture has nothing to show and is left out
+    assert list(first) == [p.name for p in plots.PLOTS if p.name != "completeness"]
+    assert set(first) == {"cutflow", "colour_colour", "colour_magnitude", "motion", "score", "sky", "pm_plane",
+                          "parallax_error", "separations", "magnitudes"}
     for name, png in first.items():
         w, h = _png_size(png)
-        assert w >= 400 and h >= 200, name
-    assert plots.render_plots(data) == first  # same data, same bytes
+        assert w == 1000 and h >= 300, name  # sized for a screen and a proposal page
+    for plot in plots.PLOTS[:2]:  # same data, same bytes (two pictures: drawing all again costs seconds)
+        assert plots.draw_png(plot.draw, data) == first[plot.name]
     assert len(set(first.values())) == len(first)
+    # every caption says what to look for, in its own words (not the title again)
+    captions = [p.caption for p in plots.PLOTS]
+    assert len(set(captions)) == len(captions) and all(len(c) > 60 for c in captions)
+
+
+def test_completeness_against_magnitude_counts_truth_quasars(demo_run, cache):
+    data = _data(cache, demo_run)
+    assert plots.completeness_magnitude(data) is None  # no truth, no picture
+    mag = next(iter(data.opt_mags_ab.values()))
+    data.truth_quasar = np.isfinite(mag) & (np.arange(len(mag)) % 2 == 0)
+    fig = plots.completeness_magnitude(data)
+    line = fig.axes[0].lines[0]
+    x, y = np.asarray(line.get_xdata()), np.asarray(line.get_ydata())
+    # each point is selected / labelled within its 0.5 mag bin, recomputed here with numpy's histogram
+    q = data.truth_quasar
+    edges = np.concatenate([x - 0.25, [x[-1] + 0.25]])
+    n, _ = np.histogram(np.clip(mag[q], edges[0], edges[-1] - 1e-9), bins=edges)
+    k, _ = np.histogram(np.clip(mag[q & data.candidate], edges[0], edges[-1] - 1e-9), bins=edges)
+    with np.errstate(invalid="ignore"):
+        assert np.allclose(y, k / n, equal_nan=True)
+
+
+def test_sky_map_draws_the_galactic_plane(demo_run, cache):
+    fig = plots.sky_map(_data(cache, demo_run))
+    ax = fig.axes[0]
+    plane = [ln for ln in ax.lines if ln.get_linestyle() == "-"]
+    assert plane and ax.get_xlabel().startswith("right ascension") and ax.get_ylabel().startswith("declination")
+    # every point of the drawn b = 0 line is on the Galactic equator by astropy's own frame (reference library)
+    from astropy.coordinates import SkyCoord
+    import astropy.units as u
+
+    lon = np.concatenate([ln.get_xdata() for ln in plane])
+    lat = np.concatenate([ln.get_ydata() for ln in plane])
+    ra = np.mod(-np.degrees(lon), 360.0)
+    b = SkyCoord(ra=ra * u.deg, dec=np.degrees(lat) * u.deg, frame="icrs").galactic.b.deg
+    assert np.abs(b).max() < 1e-6
+
+
+def test_separation_plot_marks_the_match_radius(demo_run, cache):
+    data = _data(cache, demo_run)
+    fig = plots.match_separations(data)
+    xs = {round(float(ln.get_xdata()[0]), 6) for ln in fig.axes[0].lines if len(set(ln.get_xdata())) == 1}
+    assert xs == {demo_run.match.radius_arcsec}
+    assert np.nanmax(data.sep_arcsec) <= demo_run.match.radius_arcsec
 
 
 def test_score_plot_shows_the_classifier_when_there_is_one(demo_run, cache):
@@ -209,14 +257,20 @@ def moved_run(demo_run, tmp_path_factory):
     return dest
 
 
-def test_report_is_self_contained_and_complete(demo_run, moved_run):
-    out = report.write_report(moved_run, top=20)
-    text = out.read_text(encoding="utf-8")
+@pytest.fixture(scope="module")
+def moved_page(moved_run) -> str:
+    """The report of the moved run folder (read alone), top 20 rows."""
+    return report.write_report(run_dir=moved_run, top=20).read_text(encoding="utf-8")
+
+
+def test_report_is_self_contained_and_complete(demo_run, moved_run, moved_page):
+    text = moved_page
     _check_self_contained(text)
     page = _parse(text)
     n_cands = load_config_candidates(demo_run)
     assert page.targets == min(20, n_cands) > 0
-    assert len(page.images) == len(plots.PLOTS)
+    # the moved folder has no target list, no truth and no classifier: the selection's pictures only
+    assert len(page.images) == len(plots.PLOTS) - 1
     for src in page.images:
         _png_size(base64.b64decode(src.split(",", 1)[1]))
     import json
@@ -224,7 +278,75 @@ def test_report_is_self_contained_and_complete(demo_run, moved_run):
     prov = json.loads((layout_of(demo_run).run_dir / "provenance.json").read_text())
     assert prov["config_hash"] in text and prov["match_config_hash"] in text
     assert "Note:" not in text  # the recorded candidates are what the cache gives
-    assert report.build_report(moved_run, top=20) == text  # no clock in the page
+    assert report.build_report(run_dir=moved_run, top=20) == text  # no clock in the page
+    assert f"Top 20 candidates of {n_cands:,d}" in text
+
+
+def test_report_leads_with_results_and_ends_with_settings(moved_page):
+    text = moved_page
+    order = [text.index(f"<section id='{s}'") for s in ("results", "ranked", "plots", "provenance", "settings")]
+    assert order == sorted(order)
+    assert [s.id for s in report.SECTIONS][:2] == ["results", "ranked"]
+
+
+def test_settings_table_lists_every_selection_key(demo_run, moved_page):
+    from selector.settings.config import SELECTION_SECTIONS, plain
+
+    text = moved_page
+    shown = dict(report.selection_settings(demo_run))
+
+    def leaves(prefix, value):
+        if isinstance(value, dict) and value:
+            for k, v in value.items():
+                yield from leaves(f"{prefix}.{k}", v)
+        else:
+            yield prefix
+
+    data = plain(demo_run)
+    expected = {key for s in SELECTION_SECTIONS for key in leaves(s, data[s])}
+    assert set(shown) == expected
+    assert "classifier.require_colour_criteria" in shown  # once left out of the table
+    table = text[text.index("<table id='selection'>"):]
+    table = table[:table.index("</table>")]
+    assert all(f">{key}<" in table for key in expected)
+
+
+@pytest.fixture(scope="module")
+def with_targets(demo_run):
+    """The demo run with its target list made (its config has a [targets] section; truth lies beside it)."""
+    from selector.jobs.targets import make_targets
+
+    result = make_targets(demo_run, log=lambda *a: None)
+    return demo_run, result
+
+
+@pytest.fixture(scope="module")
+def targets_page(with_targets, tmp_path_factory) -> Path:
+    """The report made from the configuration: target list, truth labels, top 10 rows."""
+    cfg, _ = with_targets
+    return report.write_report(cfg, out=tmp_path_factory.mktemp("targets_page") / "report.html", top=10)
+
+
+def test_report_shows_the_target_list_and_truth(with_targets, targets_page):
+    cfg, result = with_targets
+    text = targets_page.read_text(encoding="utf-8")
+    _check_self_contained(text)
+    listed = len(result.targets)
+    assert listed > 0
+    assert _parse(text).targets == min(10, listed)
+    heading = text[text.index("<h2 id='ranked-heading'>"):]
+    assert "targets" in heading[:heading.index("</h2>")]
+    # known objects and sources the site never sees are counted at the top and are not in the table
+    dropped = result.counts["dropped"]
+    assert f">{dropped['known_object']:,d}</div><div class='label'>known objects removed" in text
+    never = sum(dropped[c] for c in ("below_altitude_limit", "not_in_dark_time", "moon_too_close"))
+    assert f">{never:,d}</div><div class='label'>never observable from" in text
+    shown_ids = set(re.findall(r"<tr class='target'><td[^>]*>\d+</td><td[^>]*>\d+</td><td[^>]*>(\d+)</td>", text))
+    gone = {str(v) for v in result.dropped["astro_id"]}
+    assert shown_ids and not shown_ids & gone
+    for name in ("visibility", "completeness"):
+        assert f"id='plot-{name}'" in text, name
+    assert "completeness against the truth labels" in text
 
 
 def load_config_candidates(cfg) -> int:
@@ -233,13 +355,16 @@ def load_config_candidates(cfg) -> int:
     return read_parquet(layout_of(cfg).run_dir / "candidates.parquet").num_rows
 
 
-def test_report_command(moved_run, tmp_path, capsys):
+def test_report_command(demo_run, tmp_path, capsys):
     out = tmp_path / "page.html"
-    assert main(["report", "--run", str(moved_run), "--out", str(out), "--top", "5"]) == 0
-    assert _parse(out.read_text(encoding="utf-8")).targets == 5
+    # (a run folder read alone, as `--run DIR` does, is the page of the tests above)
     assert main(["report", "--run", str(tmp_path / "nowhere")]) == 2
     err = capsys.readouterr().err.strip()
     assert "\n" not in err and "provenance.json" in err
+    # like every other command, --config names the run
+    config_path = Path(demo_run.base_dir) / "demo.toml"
+    assert main(["report", "--config", str(config_path), "--out", str(out), "--top", "3"]) == 0
+    assert _parse(out.read_text(encoding="utf-8")).targets == 3
 
 
 # --- a real browser -------------------------------------------------------------------------------
@@ -252,37 +377,52 @@ window.addEventListener('load', function () {
     found.push(im.complete && im.naturalWidth > 0 ? im.naturalWidth + 'x' + im.naturalHeight : 'broken');
   }
   document.body.setAttribute('data-probe', found.join(','));
+  var box = function (id) { var r = document.getElementById(id).getBoundingClientRect(); return Math.ceil(r.bottom); };
+  document.body.setAttribute('data-fold', box('results') + ',' + box('ranked-heading') + ',' + window.innerHeight);
 });
 </script>"""
+
+#: The first screen of a laptop: what must show the results without scrolling.
+FIRST_SCREEN = (1280, 800)
 
 
 def _browser() -> str | None:
     return shutil.which("chromium") or shutil.which("chromium-browser")
 
 
-def test_report_renders_in_a_headless_browser(moved_run, tmp_path):
+def _flags(tmp_path, size) -> list[str]:
+    return ["--headless", "--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run", "--hide-scrollbars",
+            "--disable-background-networking", "--disable-component-update", "--disable-sync",
+            "--disable-extensions", "--virtual-time-budget=10000", f"--user-data-dir={tmp_path / 'profile'}",
+            f"--window-size={size[0]},{size[1]}"]
+
+
+def test_report_renders_in_a_headless_browser(targets_page, tmp_path):
     exe = _browser()
     if exe is None:
         pytest.skip("no headless browser: install Debian's chromium package (.ci/run does this when run as root)")
-    page_path = report.write_report(moved_run, tmp_path / "report.html", top=10)
+    page_path = targets_page
     text = page_path.read_text(encoding="utf-8")
     sizes = [_png_size(base64.b64decode(s.split(",", 1)[1])) for s in _parse(text).images]
-    # a copy with a probe that records, after loading, what the browser decoded for each image
+    # a copy with a probe that records, after loading, what the browser decoded for each image and where
+    # the headline section and the ranked table's heading end on the first screen
     probed = tmp_path / "probed.html"
     probed.write_text(text.replace("</body>", _PROBE + "</body>"), encoding="utf-8")
-    flags = ["--headless", "--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run",
-             "--disable-background-networking", "--disable-component-update", "--disable-sync",
-             "--disable-extensions", "--virtual-time-budget=10000", f"--user-data-dir={tmp_path / 'profile'}"]
-    dom = subprocess.run([exe, *flags, "--dump-dom", probed.as_uri()], capture_output=True, text=True,
-                         timeout=120, check=True).stdout
+    dom = subprocess.run([exe, *_flags(tmp_path, FIRST_SCREEN), "--dump-dom", probed.as_uri()], capture_output=True,
+                         text=True, timeout=120, check=True).stdout
     assert _parse(dom).targets == 10
     probe = re.search(r'data-probe="([^"]*)"', dom)
     assert probe, "the browser did not finish loading the page"
     assert probe.group(1).split(",") == [f"{w}x{h}" for w, h in sizes]
+    fold = re.search(r'data-fold="(\d+),(\d+),(\d+)"', dom)
+    results_bottom, ranked_bottom, height = map(int, fold.groups())
+    # the window's inner height (a headless window keeps some of its 800 px for itself): a stricter fold
+    assert 0 < height <= FIRST_SCREEN[1]
+    assert results_bottom < ranked_bottom <= height, "the first screen must hold the results and the ranked table's heading"
     shot = tmp_path / "shot.png"
-    subprocess.run([exe, *flags, "--window-size=1200,2400", f"--screenshot={shot}", page_path.as_uri()],
+    subprocess.run([exe, *_flags(tmp_path, FIRST_SCREEN), f"--screenshot={shot}", page_path.as_uri()],
                    capture_output=True, timeout=120, check=True)
     with Image.open(shot) as im:
         pixels = np.asarray(im.convert("L"))
-    assert pixels.shape == (2400, 1200)
-    assert pixels.std() > 10  # text, tables and pictures, not a blank page
+    assert pixels.shape == (FIRST_SCREEN[1], FIRST_SCREEN[0])
+    assert pixels.std() > 10  # text, numbers and a table, not a blank page

@@ -134,7 +134,7 @@ def _motion_rows(n, rng, corr=(0.3, -0.2, 0.25)):
         "parallax_mas": zp + noise[:, 0], "parallax_error_mas": sig[:, 0],
         "pmra_mas_yr": noise[:, 1], "pmra_error_mas_yr": sig[:, 1],
         "pmdec_mas_yr": noise[:, 2], "pmdec_error_mas_yr": sig[:, 2],
-        "parallax_pmra_corr": np.full(n, a), "parallax_pmdec_corr": np.full(n, b), "pmra_pmdec_corr": np.full(n, c),
+        "parallax_pmra_corr": np.full(n, a), "parallax_pmdec_corr": np.full(n, b), "pm_corr": np.full(n, c),
         "ir_3p4_vegamag": np.full(n, 14.0), "ir_4p6_vegamag": np.full(n, 13.0),
     }), r, sig
 

@@ -104,7 +104,7 @@ def test_empty_value_restores_the_default(demo_run):
     ("motion.parallax_snr_max=-1", r"motion\.parallax_snr_max = -1.* out of range"),
     ("motion.parallax_snr=4", r"unknown key 'motion\.parallax_snr' \(did you mean 'parallax_snr_max'"),
     ('colours.criteria=["stern2021"]', r"colours\.criteria\[0\] = 'stern2021' is not a known criterion"),
-    ("colours.criteria=stern2012", r"colours\.criteria = 'stern2012' has the wrong type"),
+    ("colours.criteria=stern2021", r"colours\.criteria\[0\] = 'stern2021' is not a known criterion"),
     ("motion.parallax_snr_max.x=1", r"'motion\.parallax_snr_max' is a value, not a table"),
 ])
 def test_bad_settings_are_one_line_errors_naming_the_key(demo_run, setting, message):
@@ -112,6 +112,13 @@ def test_bad_settings_are_one_line_errors_naming_the_key(demo_run, setting, mess
     with pytest.raises(ConfigError, match=message) as info:
         tune.with_settings(cfg, [setting])
     assert "\n" not in str(info.value)
+
+
+def test_a_single_name_stands_for_a_list_of_one(demo_run):
+    cfg, _, _ = demo_run
+    one = tune.with_settings(cfg, ["colours.criteria=stern2012"])
+    assert one.colours.criteria == ("stern2012",)
+    assert one == tune.with_settings(cfg, ['colours.criteria=["stern2012"]'])
 
 
 # --- equality with a full re-run ------------------------------------------------------------------

@@ -83,6 +83,8 @@ COLUMNS: dict[str, ColumnDoc] = {
     "pmdec_mas_yr": ColumnDoc("proper motion in declination", "pos.pm;pos.eq.dec", P.milliarcsec),
     "pmra_error_mas_yr": ColumnDoc("uncertainty of pmra_mas_yr", "stat.error;pos.pm;pos.eq.ra", P.milliarcsec),
     "pmdec_error_mas_yr": ColumnDoc("uncertainty of pmdec_mas_yr", "stat.error;pos.pm;pos.eq.dec", P.milliarcsec),
+    "pm_corr": ColumnDoc("correlation coefficient of pmra_mas_yr and pmdec_mas_yr in the astrometric solution",
+                         "stat.correlation", P.probability),
     "fit_quality": ColumnDoc("astrometric fit-quality indicator of the catalogue (larger = worse fit)",
                              "stat.fit.goodness", P.statistic),
     "extent_mag": ColumnDoc("how extended the source looks in the astrometric catalogue (0 for a point source)",

@@ -80,7 +80,7 @@ ASTROMETRIC_ROLES = (
     Role("pmdec", "pmdec_mas_yr", "value", "mas / yr", True, "proper motion in declination"),
     Role("pmra_error", "pmra_error_mas_yr", "error", "mas / yr", True, "uncertainty of pmra"),
     Role("pmdec_error", "pmdec_error_mas_yr", "error", "mas / yr", True, "uncertainty of pmdec"),
-    Role("pmra_pmdec_corr", "pmra_pmdec_corr", "corr", None, False, "correlation of pmra and pmdec"),
+    Role("pm_corr", "pm_corr", "corr", None, False, "correlation of the two proper-motion components (pmra, pmdec)"),
     *(
         Role(f"{a}_{b}_corr", f"{a}_{b}_corr", "corr", None, False, f"correlation of {a} and {b}")
         for a, b in _CORRELATION_PAIRS

@@ -245,7 +245,7 @@ def select(features: pa.Table, cfg, p_quasar: np.ndarray | ModelScores | None = 
         pmra_error_mas_yr=_col(features, "pmra_error_mas_yr"), pmdec_error_mas_yr=_col(features, "pmdec_error_mas_yr"),
         parallax_pmra_corr=_col(features, "parallax_pmra_corr"),
         parallax_pmdec_corr=_col(features, "parallax_pmdec_corr"),
-        pmra_pmdec_corr=_col(features, "pmra_pmdec_corr"), parallax_zero_point_mas=m.parallax_zero_point_mas,
+        pmra_pmdec_corr=_col(features, "pm_corr"), parallax_zero_point_mas=m.parallax_zero_point_mas,
         error_inflation=m.error_inflation,
     )
     joint_p = one_sided_joint_pvalue(jm.chi2, jm.parallax_snr)
@@ -253,7 +253,7 @@ def select(features: pa.Table, cfg, p_quasar: np.ndarray | ModelScores | None = 
         _col(features, "parallax_mas"), _col(features, "parallax_error_mas"),
         _col(features, "pmra_mas_yr"), _col(features, "pmdec_mas_yr"),
         pmra_error_mas_yr=_col(features, "pmra_error_mas_yr"), pmdec_error_mas_yr=_col(features, "pmdec_error_mas_yr"),
-        pmra_pmdec_corr=_col(features, "pmra_pmdec_corr"), parallax_zero_point_mas=m.parallax_zero_point_mas,
+        pmra_pmdec_corr=_col(features, "pm_corr"), parallax_zero_point_mas=m.parallax_zero_point_mas,
         error_inflation=m.error_inflation,
     )
     has_solution = np.isfinite(zm.parallax_snr) & np.isfinite(zm.pm_chi2)

@@ -1655,7 +1655,7 @@ def run_demo(out_dir, seed: int = 1, scale: float = 1.0, workers=None, log=print
     log(report.as_text("optical broad-band AB magnitude"))
     log("")
     targets = make_targets(cfg, log=log)
-    page = write_report(layout_of(cfg).run_dir)
+    page = write_report(cfg)
     log("")
     log(f"ranked candidates: {result.outputs['ecsv']} (also .csv and .parquet)")
     log(f"per-tile feature cache and cut-flow: {layout_of(cfg).run_tiles_dir}")

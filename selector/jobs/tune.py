@@ -82,10 +82,11 @@ __all__ = [
 #: reads, which are among them). A row's tile is known from the file it is read from, so the tile
 #: column is not loaded.
 _BASE_COLUMNS = ("parallax_mas", "parallax_error_mas", "pmra_mas_yr", "pmdec_mas_yr",
-                 "pmra_error_mas_yr", "pmdec_error_mas_yr", "pmra_pmdec_corr", "parallax_pmra_corr",
+                 "pmra_error_mas_yr", "pmdec_error_mas_yr", "pm_corr", "parallax_pmra_corr",
                  "parallax_pmdec_corr")
 #: Extra columns the plots read.
-PLOT_COLUMNS = ("astro_id", "ra_deg", "dec_deg", *(schema.infrared_mag_column(b) for b in ("3.4", "4.6", "12")))
+PLOT_COLUMNS = ("astro_id", "ra_deg", "dec_deg", "sep_arcsec",
+                *(schema.infrared_mag_column(b) for b in ("3.4", "4.6", "12")))
 
 #: Rows evaluated at a time (see :func:`evaluate`).
 _BLOCK_ROWS = 1 << 17
@@ -254,7 +255,7 @@ def needed_columns(cfg: Config, plots: bool = False, classifier: bool = True,
     if c.galactic_latitude_min_deg is not None:
         cols.append("gal_b_deg")
     if plots:
-        cols += PLOT_COLUMNS
+        cols += [*PLOT_COLUMNS, *(schema.optical_mag_column(b) for b in cfg.optical_bands())]
     return tuple(dict.fromkeys(cols))
 
 

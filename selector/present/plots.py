@@ -18,19 +18,30 @@ import io
 import math
 from dataclasses import dataclass, field
 from pathlib import Path
+from typing import Callable, NamedTuple
 
 import numpy as np
 
 from selector.core import photometry as ph
-from selector.core.schema import infrared_mag_column
+from selector.core.frames import galactic_matrix, xyz_to_radec
+from selector.core.schema import infrared_mag_column, optical_mag_column
 from selector.store.io import atomic_path
 
-__all__ = ["COLOUR_COLOUR", "COLOUR_MAGNITUDE", "PLOTS", "PlotData", "colour_colour", "colour_magnitude", "cutflow_funnel", "figure_png",
-           "motion_statistics", "render_plots", "score_distribution", "sky_map", "write_plots"]
+__all__ = ["COLOUR_COLOUR", "COLOUR_MAGNITUDE", "PLOTS", "Plot", "PlotData", "colour_colour", "colour_magnitude",
+           "completeness_magnitude", "cutflow_funnel", "draw_png", "figure_png", "magnitude_distributions",
+           "match_separations", "motion_statistics", "new_figure", "parallax_error", "proper_motion_plane", "render_plots",
+           "score_distribution", "sky_map", "write_plots"]
 
 #: Largest number of candidates drawn as points (an even stride of the rest is drawn beyond that).
 MAX_POINTS = 50_000
 _DPI = 100
+#: Width of a full-width figure (inches at :data:`_DPI`): 1000 px, legible on a screen and in a
+#: proposal's page without scaling down.
+_WIDTH_IN = 10.0
+#: Font sizes of every picture (points): legends and ticks readable at the figure's own size.
+_RC = {"font.size": 12, "axes.titlesize": 13, "axes.labelsize": 12, "legend.fontsize": 10,
+       "xtick.labelsize": 10, "ytick.labelsize": 10, "figure.titlesize": 14}
+_LEGEND = 10
 _CANDIDATE = "#c0392b"
 _MOTION = "#2471a3"
 #: Infrared bands the pictures read.
@@ -62,6 +73,14 @@ class PlotData:
         ICRS positions.
     cutflow : list of (stage, count)
         Rows left after each stage.
+    sep_arcsec : numpy.ndarray or None
+        Distance to the matched infrared counterpart.
+    parallax_mas, parallax_error_mas, pmra_mas_yr, pmdec_mas_yr : numpy.ndarray or None
+        The astrometric solution (NaN where the source has none).
+    opt_mags_ab : dict
+        Optical AB magnitudes keyed by band label.
+    truth_quasar : numpy.ndarray of bool or None
+        Rows that truth labels call quasars (None when no truth is given).
     """
 
     cfg: object
@@ -76,13 +95,22 @@ class PlotData:
     cutflow: list
     p_quasar: np.ndarray | None = None
     notes: list = field(default_factory=list)
+    sep_arcsec: np.ndarray | None = None
+    parallax_mas: np.ndarray | None = None
+    parallax_error_mas: np.ndarray | None = None
+    pmra_mas_yr: np.ndarray | None = None
+    pmdec_mas_yr: np.ndarray | None = None
+    opt_mags_ab: dict = field(default_factory=dict)
+    truth_quasar: np.ndarray | None = None
 
     @classmethod
-    def from_evaluation(cls, cache, ev, candidate=None, p_quasar=None, cutflow=None) -> "PlotData":
+    def from_evaluation(cls, cache, ev, candidate=None, p_quasar=None, cutflow=None, *,
+                        truth_quasar=None) -> "PlotData":
         """Build from a :class:`~selector.store.cache.FeatureCache` and a :class:`~selector.jobs.tune.Evaluation`.
 
         ``candidate``, ``p_quasar`` and ``cutflow`` override what the evaluation says (the report
-        takes them from the run's recorded outputs).
+        takes them from the run's recorded outputs); ``truth_quasar`` marks the cache rows that
+        truth labels call quasars.
         """
         t = cache.table
 
@@ -104,18 +132,28 @@ class PlotData:
         return cls(ev.cfg, {b: col(infrared_mag_column(b)) for b in _BANDS},
                    ev.passed if candidate is None else np.asarray(candidate, bool), motion,
                    np.asarray(d["parallax_snr"]), np.asarray(d["pm_chi2"]), np.asarray(d["criteria_score"]),
-                   col("ra_deg"), col("dec_deg"), ev.cutflow if cutflow is None else list(cutflow), p_quasar)
+                   col("ra_deg"), col("dec_deg"), ev.cutflow if cutflow is None else list(cutflow), p_quasar,
+                   sep_arcsec=col("sep_arcsec"), parallax_mas=col("parallax_mas"),
+                   parallax_error_mas=col("parallax_error_mas"), pmra_mas_yr=col("pmra_mas_yr"),
+                   pmdec_mas_yr=col("pmdec_mas_yr"),
+                   opt_mags_ab={b: col(optical_mag_column(b)) for b in ev.cfg.optical_bands()},
+                   truth_quasar=None if truth_quasar is None else np.asarray(truth_quasar, bool))
 
 
 # --- rendering ------------------------------------------------------------------------------------
 
-def _figure(width_in: float = 7.0, height_in: float = 5.0, **subplots):
+def _figure(width_in: float = _WIDTH_IN, height_in: float = 6.0, **subplots):
     from matplotlib.backends.backend_agg import FigureCanvasAgg
     from matplotlib.figure import Figure
 
     fig = Figure(figsize=(width_in, height_in), dpi=_DPI, layout="constrained")
     FigureCanvasAgg(fig)
     return fig
+
+
+def new_figure(width_in: float = _WIDTH_IN, height_in: float = 6.0):
+    """An empty Agg figure of the pictures' size, for pictures drawn outside this module (the report's)."""
+    return _figure(width_in, height_in)
 
 
 def figure_png(fig) -> bytes:
@@ -212,7 +250,7 @@ def colour_colour(data: PlotData):
     ax.set_xlabel("[4.6] − [12] (Vega mag)")
     ax.set_ylabel("[3.4] − [4.6] (Vega mag)")
     ax.set_title("infrared colour–colour diagram")
-    ax.legend(loc="upper left", fontsize=7, framealpha=0.85)
+    ax.legend(loc="upper left", fontsize=_LEGEND, framealpha=0.85)
     return fig
 
 
@@ -235,8 +273,8 @@ def colour_magnitude(data: PlotData):
     title = "infrared colour–magnitude diagram"
     if skipped:
         title += f"\n(not drawn here, see colour–colour: {', '.join(skipped)})"
-    ax.set_title(title, fontsize=10)
-    ax.legend(loc="upper left", fontsize=7, framealpha=0.85)
+    ax.set_title(title)
+    ax.legend(loc="upper left", fontsize=_LEGEND, framealpha=0.85)
     return fig
 
 
@@ -247,7 +285,7 @@ def motion_statistics(data: PlotData):
     χ² ≤ −2 ln p_min, which is the line drawn.
     """
     mo = data.cfg.motion
-    fig = _figure(10.0, 4.2)
+    fig = _figure(_WIDTH_IN, 4.8)
     ax1, ax2 = fig.subplots(1, 2)
     snr = data.parallax_snr
     ok = np.isfinite(snr)
@@ -268,7 +306,7 @@ def motion_statistics(data: PlotData):
     ax1.set_yscale("log")
     ax1.set_xlabel(f"parallax significance (ϖ − ϖ₀)/σ  (clipped to ±{span:g})")
     ax1.set_ylabel("sources per bin")
-    ax1.legend(fontsize=7)
+    ax1.legend(fontsize=_LEGEND)
 
     chi2 = data.pm_chi2
     ok2 = np.isfinite(chi2)
@@ -285,10 +323,10 @@ def motion_statistics(data: PlotData):
     ax2.set_xscale("log")
     ax2.set_yscale("log")
     ax2.set_xlabel("proper-motion χ² (2 d.o.f.)")
-    ax2.legend(fontsize=7)
+    ax2.legend(fontsize=_LEGEND)
     missing = int((~ok).sum())
     fig.suptitle("zero-motion test" + (f" ({missing:,d} sources without a solution not shown)" if missing else ""),
-                 fontsize=11)
+                 )
     return fig
 
 
@@ -321,7 +359,7 @@ def sky_map(data: PlotData, order: int | None = None):
     grid_ra, grid_dec = np.meshgrid(ra_c, np.degrees(lat_c))
     img = values[hp.ang2pix(nside, grid_ra, grid_dec, nest=True, lonlat=True)]
 
-    fig = _figure(9.0, 5.2)
+    fig = _figure(_WIDTH_IN, 6.2)
     ax = fig.add_subplot(projection="mollweide")
     ax.set_facecolor("white")
     finite = img[np.isfinite(img)]
@@ -330,20 +368,45 @@ def sky_map(data: PlotData, order: int | None = None):
                          norm=Normalize(vmin=0.0, vmax=vmax), shading="flat", rasterized=True)
     ticks = np.radians(np.arange(-150, 151, 30))
     ax.set_xticks(ticks)
-    ax.set_xticklabels([f"{round(float(np.mod(-np.degrees(t), 360.0))) % 360:d}°" for t in ticks], fontsize=7)
-    ax.tick_params(axis="y", labelsize=7)
+    ax.set_xticklabels([f"{round(float(np.mod(-np.degrees(t), 360.0))) % 360:d}°" for t in ticks], fontsize=_LEGEND)
+    ax.tick_params(axis="y", labelsize=_LEGEND)
     ax.grid(True, color="0.6", lw=0.5)
+    ax.set_xlabel("right ascension (ICRS)")
+    ax.set_ylabel("declination (ICRS)")
+    labelled = set()
+    for b_deg, style, label in ((0.0, "-", "Galactic plane (b = 0°)"), (-10.0, ":", "b = ±10°"), (10.0, ":", "b = ±10°")):
+        for lon, lat in _galactic_latitude_line(b_deg):
+            ax.plot(lon, lat, color="#d35400", lw=1.6 if b_deg == 0 else 1.1, ls=style,
+                    label=None if label in labelled else label)
+            labelled.add(label)
+    ax.legend(loc="lower right", bbox_to_anchor=(1.0, -0.02), fontsize=_LEGEND, framealpha=0.85)
     fig.colorbar(mesh, ax=ax, orientation="horizontal", shrink=0.6, pad=0.06,
                  label=f"candidates per deg² (HEALPix order {order}, {area_deg2:.3g} deg² pixels)")
     ax.set_title(f"candidate density, ICRS; {int(data.candidate.sum()):,d} candidates, "
-                 f"{int(footprint.sum()):,d} pixels with matched sources", fontsize=10)
+                 f"{int(footprint.sum()):,d} pixels with matched sources", pad=18)
     return fig
+
+
+def _galactic_latitude_line(b_deg: float, n: int = 721) -> list[tuple[np.ndarray, np.ndarray]]:
+    """A line of constant Galactic latitude in the sky map's coordinates (longitude −RA, radians), cut
+    where it wraps around the map's edge so no segment crosses the whole picture.
+
+    The Galactic-to-ICRS rotation is the transpose of :func:`selector.core.frames.galactic_matrix`.
+    """
+    l_rad = np.linspace(0.0, 2.0 * np.pi, n)
+    b_rad = math.radians(b_deg)
+    gal = np.stack([np.cos(b_rad) * np.cos(l_rad), np.cos(b_rad) * np.sin(l_rad), np.full(n, np.sin(b_rad))], axis=1)
+    ra, dec = xyz_to_radec(gal @ galactic_matrix())
+    lon = -np.radians(np.where(ra > 180.0, ra - 360.0, ra))
+    lat = np.radians(dec)
+    cuts = np.flatnonzero(np.abs(np.diff(lon)) > np.pi) + 1
+    return [(a, b) for a, b in zip(np.split(lon, cuts), np.split(lat, cuts)) if len(a) > 1]
 
 
 def score_distribution(data: PlotData):
     """The ranking score of zero-motion sources and candidates; the classifier's, if any."""
     has_p = data.p_quasar is not None and np.isfinite(data.p_quasar).any()
-    fig = _figure(10.0 if has_p else 7.0, 4.2)
+    fig = _figure(_WIDTH_IN, 4.8)
     axes = fig.subplots(1, 2 if has_p else 1)
     ax = axes[0] if has_p else axes
     s = data.score
@@ -363,7 +426,7 @@ def score_distribution(data: PlotData):
     ax.set_xlabel(f"criteria score: colour excess + {r.brightness_weight:g}·({r.brightness_pivot_mag:g} − "
                   f"[{r.brightness_band}]) (mag)")
     ax.set_ylabel("sources per bin")
-    ax.legend(fontsize=7)
+    ax.legend(fontsize=_LEGEND)
     if has_p:
         ax2 = axes[1]
         p = data.p_quasar
@@ -375,8 +438,8 @@ def score_distribution(data: PlotData):
                     label=f"threshold {data.cfg.classifier.threshold:g}")
         ax2.set_yscale("log")
         ax2.set_xlabel("classifier P(quasar)")
-        ax2.legend(fontsize=7)
-    fig.suptitle("score distribution", fontsize=11)
+        ax2.legend(fontsize=_LEGEND)
+    fig.suptitle("score distribution")
     return fig
 
 
@@ -386,38 +449,272 @@ def cutflow_funnel(cutflow: list):
     counts = np.array([c for _, c in cutflow], float)
     width = np.log10(1.0 + counts)
     top = width.max() if len(width) and width.max() > 0 else 1.0
-    fig = _figure(7.0, 0.45 * len(names) + 1.2)
+    fig = _figure(_WIDTH_IN, 0.5 * len(names) + 1.4)
     ax = fig.add_subplot()
     y = np.arange(len(names))[::-1]
     colours = [_CANDIDATE if i == len(names) - 1 else _MOTION for i in range(len(names))]
     ax.barh(y, width, left=-width / 2, color=colours, alpha=0.85, height=0.8)
     first = counts[0] if len(counts) and counts[0] > 0 else 1.0
     for yi, n, c in zip(y, names, counts):
-        ax.text(top / 2 + 0.03 * top, yi, f"{int(c):,d}  ({c / first:.2%})", va="center", fontsize=8)
+        ax.text(top / 2 + 0.03 * top, yi, f"{int(c):,d}  ({c / first:.2%})", va="center")
     ax.set_yticks(y)
-    ax.set_yticklabels(names, fontsize=8)
+    ax.set_yticklabels(names)
     ax.set_xlim(-top / 2 - 0.02 * top, top * 1.05)
     ax.set_xticks([])
     for side in ("top", "right", "bottom"):
         ax.spines[side].set_visible(False)
-    ax.set_title("cut-flow (bar width ∝ log₁₀ of rows left)", fontsize=10)
+    ax.set_title("cut-flow (bar width ∝ log₁₀ of rows left)")
     return fig
 
 
-#: Name, title and function of every picture, in report order.
+def _no_data(ax, text: str) -> None:
+    ax.text(0.5, 0.5, text, ha="center", va="center", transform=ax.transAxes)
+
+
+def match_separations(data: PlotData):
+    """Distance to the matched infrared counterpart, with the match radius and the chance-match level.
+
+    Chance coincidences with an unrelated source of uniform surface density grow in number in
+    proportion to the separation r (the area of an annulus is 2πr dr), while true counterparts
+    pile up near zero with a width set by the positional errors; the line ∝ r is scaled to the
+    outer quarter of the radius, where chance matches dominate (common practice).
+    """
+    if data.sep_arcsec is None or not np.isfinite(data.sep_arcsec).any():
+        return None
+    radius = float(data.cfg.match.radius_arcsec)
+    sep = data.sep_arcsec
+    ok = np.isfinite(sep)
+    bins = np.linspace(0.0, radius, 41)
+    centres = 0.5 * (bins[1:] + bins[:-1])
+    fig = _figure(_WIDTH_IN, 5.0)
+    ax = fig.add_subplot()
+    counts, _, _ = ax.hist(sep[ok], bins=bins, color="0.6", label=f"matched sources ({int(ok.sum()):,d})")
+    ax.hist(sep[ok & data.candidate], bins=bins, histtype="step", color=_CANDIDATE, lw=1.8,
+            label=f"candidates ({int((ok & data.candidate).sum()):,d})")
+    outer = centres >= 0.75 * radius
+    if counts[outer].sum() > 0:
+        scale = counts[outer].sum() / centres[outer].sum()
+        ax.plot(centres, scale * centres, color="#884ea0", lw=1.6, ls="--",
+                label="chance-match level (∝ r, scaled to the outer quarter)")
+    ax.axvline(radius, color="k", ls="--", lw=1.2, label=f"match radius {radius:g}″")
+    ax.set_xlabel("separation from the infrared counterpart (arcsec, at the infrared epoch)")
+    ax.set_ylabel("sources per bin")
+    ax.set_xlim(0.0, radius * 1.03)
+    ax.legend(fontsize=_LEGEND)
+    return fig
+
+
+def magnitude_distributions(data: PlotData):
+    """Magnitude histograms of matched sources and candidates: each optical band (AB) and [3.4], [4.6] (Vega)."""
+    panels = [(f"{b} (AB mag)", v) for b, v in data.opt_mags_ab.items()]
+    panels += [(f"[{b}] (Vega mag)", data.mags_vega[b]) for b in ("3.4", "4.6")]
+    panels = [(label, v) for label, v in panels if np.isfinite(v).any()]
+    if not panels:
+        return None
+    ncols = min(3, len(panels))
+    nrows = math.ceil(len(panels) / ncols)
+    fig = _figure(_WIDTH_IN, 3.8 * nrows + 0.4)
+    axes = np.atleast_1d(fig.subplots(nrows, ncols)).ravel()
+    for ax in axes[len(panels):]:
+        ax.set_visible(False)
+    for ax, (label, v) in zip(axes, panels):
+        ok = np.isfinite(v)
+        lo, hi = np.percentile(v[ok], [0.2, 99.8])
+        bins = np.linspace(lo, hi if hi > lo else lo + 1.0, 41)
+        ax.hist(np.clip(v[ok], lo, hi), bins=bins, color="0.6", label=f"matched ({int(ok.sum()):,d})")
+        ax.hist(np.clip(v[ok & data.candidate], lo, hi), bins=bins, histtype="step", color=_CANDIDATE, lw=1.8,
+                label=f"candidates ({int((ok & data.candidate).sum()):,d})")
+        ax.set_yscale("log")
+        ax.set_xlabel(label)
+    for ax in axes[::ncols]:
+        ax.set_ylabel("sources per bin")
+    axes[0].legend(fontsize=_LEGEND)
+    return fig
+
+
+def completeness_magnitude(data: PlotData):
+    """Fraction of truth-labelled quasars selected, per optical magnitude bin, with binomial errors.
+
+    Completeness is :func:`selector.core.metrics.completeness_purity`'s ratio computed per bin over
+    the quasars that have an infrared counterpart (the rows of the feature cache); the error bar is
+    the binomial standard error √(c(1 − c)/n) (common practice).
+    """
+    if data.truth_quasar is None or not data.truth_quasar.any() or not data.opt_mags_ab:
+        return None
+    band, mag = next(iter(data.opt_mags_ab.items()))
+    q = data.truth_quasar & np.isfinite(mag)
+    if not q.any():
+        return None
+    lo, hi = np.floor(np.percentile(mag[q], 1)), np.ceil(np.percentile(mag[q], 99))
+    edges = np.arange(lo, hi + 0.5, 0.5)
+    if len(edges) < 3:
+        edges = np.array([lo, lo + 0.5, lo + 1.0])
+    which = np.clip(np.digitize(mag[q], edges) - 1, 0, len(edges) - 2)
+    n = np.bincount(which, minlength=len(edges) - 1)
+    k = np.bincount(which, weights=data.candidate[q].astype(float), minlength=len(edges) - 1)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        c = k / n
+        err = np.sqrt(c * (1.0 - c) / n)
+    centres = 0.5 * (edges[1:] + edges[:-1])
+    fig = _figure(_WIDTH_IN, 4.8)
+    ax = fig.add_subplot()
+    ax.errorbar(centres, c, yerr=err, fmt="o-", color=_CANDIDATE, capsize=3,
+                label=f"selected / true quasars with a counterpart ({int(data.candidate[q].sum()):,d} / {int(q.sum()):,d})")
+    ax2 = ax.twinx()
+    ax2.bar(centres, n, width=0.45, color="0.85", zorder=0)
+    ax2.set_ylabel("true quasars per bin", color="0.45")
+    ax.set_zorder(ax2.get_zorder() + 1)
+    ax.patch.set_visible(False)
+    ax.set_ylim(0.0, 1.05)
+    ax.set_xlabel(f"optical {band} magnitude (AB)")
+    ax.set_ylabel("completeness")
+    ax.legend(loc="lower left", fontsize=_LEGEND)
+    return fig
+
+
+def proper_motion_plane(data: PlotData):
+    """Proper motions of matched sources (density) and candidates (points), on a symmetric log scale.
+
+    Quasars sit at zero within their errors; stars spread out along the Galactic rotation and
+    the solar reflex motion. The axes are linear within ±1 mas/yr and logarithmic beyond.
+    """
+    a, d = data.pmra_mas_yr, data.pmdec_mas_yr
+    if a is None or d is None or not (np.isfinite(a) & np.isfinite(d)).any():
+        return None
+    fig = _figure(_WIDTH_IN, 6.0)
+    ax1, ax2 = fig.subplots(1, 2)
+    ok = np.isfinite(a) & np.isfinite(d)
+    # left: the full range on a symmetric log scale; right: the inner ±5 mas/yr, linear
+    lim = float(np.percentile(np.abs(np.concatenate([a[ok], d[ok]])), 99.5)) if ok.any() else 10.0
+    lim = max(lim, 10.0)
+    tr = np.arcsinh
+    _density(ax1, tr(a), tr(d), (-tr(lim), tr(lim)), (-tr(lim), tr(lim)), bins=100)
+    _candidates(ax1, tr(a), tr(d), data.candidate)
+    ticks = np.array([-100, -10, -1, 0, 1, 10, 100], float)
+    ticks = ticks[np.abs(ticks) <= lim]
+    for ax in (ax1,):
+        ax.set_xticks(tr(ticks))
+        ax.set_xticklabels([f"{v:g}" for v in ticks])
+        ax.set_yticks(tr(ticks))
+        ax.set_yticklabels([f"{v:g}" for v in ticks])
+        ax.set_xlim(-tr(lim), tr(lim))
+        ax.set_ylim(-tr(lim), tr(lim))
+    ax1.set_xlabel("μ_α* (mas/yr, arcsinh scale)")
+    ax1.set_ylabel("μ_δ (mas/yr, arcsinh scale)")
+    ax1.legend(loc="upper left", fontsize=_LEGEND, framealpha=0.85)
+    inner = (-5.0, 5.0)
+    _density(ax2, a, d, inner, inner, bins=100)
+    _candidates(ax2, a, d, data.candidate)
+    ax2.axhline(0.0, color="k", lw=0.6)
+    ax2.axvline(0.0, color="k", lw=0.6)
+    ax2.set_xlim(inner)
+    ax2.set_ylim(inner)
+    ax2.set_aspect("equal")
+    ax2.set_xlabel("μ_α* (mas/yr)")
+    ax2.set_ylabel("μ_δ (mas/yr)")
+    return fig
+
+
+def parallax_error(data: PlotData):
+    """Parallax against its uncertainty, with the zero-parallax band of the selection.
+
+    The parallax test keeps |ϖ − ϖ₀| ≤ s·k·σ (s = ``motion.parallax_snr_max``, k =
+    ``motion.error_inflation``; :func:`selector.core.astrometry.zero_motion`), which is the band drawn.
+    """
+    p, s = data.parallax_mas, data.parallax_error_mas
+    if p is None or s is None or not (np.isfinite(p) & np.isfinite(s)).any():
+        return None
+    mo = data.cfg.motion
+    fig = _figure(_WIDTH_IN, 5.6)
+    ax = fig.add_subplot()
+    ok = np.isfinite(p) & np.isfinite(s) & (s > 0)
+    ls = np.log10(np.where(ok, s, np.nan))
+    xlim = _limits(ls, (-2.0, 0.5))
+    ylim = _limits(p, (-2.0, 2.0), pad=0.02)
+    ylim = (max(ylim[0], -10.0), min(ylim[1], 10.0))
+    _density(ax, ls, p, xlim, ylim)
+    _candidates(ax, ls, p, data.candidate)
+    xs = np.linspace(*xlim, 100)
+    k = mo.parallax_snr_max * mo.error_inflation
+    zp = mo.parallax_zero_point_mas
+    for sign in (-1.0, 1.0):
+        ax.plot(xs, zp + sign * k * 10.0 ** xs, color="k", ls="--", lw=1.2,
+                label=f"ϖ₀ ± {k:g}·σ (kept inside)" if sign > 0 else None)
+    ax.axhline(zp, color="k", lw=0.6)
+    ax.set_xlim(xlim)
+    ax.set_ylim(ylim)
+    ax.set_xlabel("log₁₀ parallax uncertainty σ (mas)")
+    ax.set_ylabel("parallax ϖ (mas)")
+    ax.legend(loc="upper left", fontsize=_LEGEND, framealpha=0.85)
+    return fig
+
+
+class Plot(NamedTuple):
+    """One picture of :data:`PLOTS`: its name (the PNG's stem and the page's anchor), the function
+    that draws it from a :class:`PlotData` (returning None when the data it needs are absent), and
+    the caption under it, which says what to look for."""
+
+    name: str
+    draw: Callable
+    caption: str
+
+
+#: Every picture drawn from a selection, in report order. Adding one is one entry here (it then
+#: appears in ``selector tune --plots`` and in the report).
 PLOTS = (
-    ("cutflow", "Cut-flow", lambda d: cutflow_funnel(d.cutflow)),
-    ("colour_colour", "Colour–colour diagram", colour_colour),
-    ("colour_magnitude", "Colour–magnitude diagram", colour_magnitude),
-    ("motion", "Parallax significance and proper-motion χ²", motion_statistics),
-    ("score", "Score distribution", score_distribution),
-    ("sky", "Sky map of candidate density", sky_map),
+    Plot("sky", sky_map,
+         "Where the candidates are. Look for a smooth spread at high Galactic latitude; clumps along the orange "
+         "Galactic plane, or single hot pixels, point to crowded or artefact-ridden fields rather than quasars."),
+    Plot("colour_colour", colour_colour,
+         "Candidates (red) should sit inside the drawn criteria, well away from the dense stellar locus near zero "
+         "colour; a crowd of candidates hugging a boundary means the cut, not the colours, decides their fate."),
+    Plot("colour_magnitude", colour_magnitude,
+         "Faint candidates have larger colour errors: a fan of red points opening towards faint magnitudes near a "
+         "boundary is where contaminants come in."),
+    Plot("cutflow", lambda d: cutflow_funnel(d.cutflow),
+         "Which stage removes most sources. A stage that removes almost nothing, or almost everything, deserves a "
+         "second look at its setting."),
+    Plot("motion", motion_statistics,
+         "Sources inside the shaded bands are consistent with no parallax and no proper motion. A candidate "
+         "histogram piled against a threshold line means that threshold is cutting into the quasars."),
+    Plot("pm_plane", proper_motion_plane,
+         "Quasars gather at the origin; stars stream away from it. Candidates far from the origin in the right "
+         "panel are sources whose large errors let them pass."),
+    Plot("parallax_error", parallax_error,
+         "Candidates must lie between the dashed lines. Points at large σ pass easily: a list dominated by them "
+         "is a list of poorly measured sources."),
+    Plot("separations", match_separations,
+         "True counterparts pile up at small separations; the dashed purple line is what chance coincidences give. "
+         "Where the grey histogram meets that line, a larger radius only adds chance matches."),
+    Plot("magnitudes", magnitude_distributions,
+         "How bright the candidates are compared with everything matched: the faint end shows where the "
+         "catalogues run out, and what a telescope will have to reach."),
+    Plot("completeness", completeness_magnitude,
+         "Against truth labels: the fraction of real quasars kept, per magnitude. A fall at the faint end is "
+         "expected; a dip at the bright end points to a cut (saturation, colours) that removes real quasars."),
+    Plot("score", score_distribution,
+         "How candidates separate from the other zero-motion sources by score; with a classifier, how many sit "
+         "close to the threshold, where a small change of threshold changes the list."),
 )
 
 
+def draw_png(draw: Callable, data) -> bytes | None:
+    """PNG bytes of one picture, drawn with the pictures' font sizes (None when it has nothing to show)."""
+    import matplotlib
+
+    with matplotlib.rc_context(_RC):
+        fig = draw(data)
+        return None if fig is None else figure_png(fig)
+
+
 def render_plots(data: PlotData) -> dict[str, bytes]:
-    """PNG bytes of every picture, keyed by name (in :data:`PLOTS` order)."""
-    return {name: figure_png(fn(data)) for name, _, fn in PLOTS}
+    """PNG bytes of every picture that has data, keyed by name (in :data:`PLOTS` order)."""
+    out = {}
+    for plot in PLOTS:
+        png = draw_png(plot.draw, data)
+        if png is not None:
+            out[plot.name] = png
+    return out
 
 
 def write_plots(data: PlotData, folder: Path) -> dict[str, Path]:

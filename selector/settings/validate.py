@@ -80,6 +80,10 @@ def convert(value, tp, where: str, meta=None):
         raise errors[0]
     if origin is list:
         (item_tp,) = get_args(tp)
+        if isinstance(value, (str, int, float, bool)):
+            # a single name where a list is expected is a list of one (`--set colours.criteria=stern2012`,
+            # `criteria = "stern2012"`): nothing else could be meant
+            value = [value]
         if not isinstance(value, list):
             raise ConfigError(f"{where} = {value!r} has the wrong type; expected {_type_name(tp)}")
         return tuple(convert(v, item_tp, f"{where}[{i}]", meta) for i, v in enumerate(value))

@@ -379,7 +379,7 @@ def _dask(cfg: Config, items: list, *, workers: int, scheduler: str | None, note
         from distributed import as_completed as dask_as_completed
     except ImportError:
         raise SelectorError("run.executor = 'dask' needs the dask[distributed] package; install it with "
-                            "`pip install 'selector[cluster]'`") from None
+                            "`pip install 'quasar-selector[cluster]'`") from None
     import logging
     import uuid
     import warnings
