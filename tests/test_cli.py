@@ -83,8 +83,46 @@ def test_version_is_the_installed_distributions():
     # library's answer (PEP 376: <name>-<version>.dist-info)
     from importlib.metadata import PackageNotFoundError, version
 
+    from selector import DISTRIBUTION
+
     try:
-        expected = version("selector")
+        expected = version(DISTRIBUTION)
     except PackageNotFoundError:
-        pytest.skip("selector is not installed")
+        pytest.skip(f"{DISTRIBUTION} is not installed")
     assert __version__ == expected
+
+
+def test_every_command_help_ends_with_an_example_and_no_doubled_default(capsys):
+    sub = next(a for a in build_parser()._actions if a.dest == "command")
+    for name in sorted(sub.choices):
+        with pytest.raises(SystemExit):
+            main([name, "--help"])
+        out = capsys.readouterr().out
+        assert f"example: selector {name} " in out, name
+        assert "(default: None)" not in out, name
+        assert all(line.count("default") <= 1 for line in out.splitlines()), name
+
+
+def test_report_takes_the_config_like_every_other_command(capsys):
+    parser = build_parser()
+    args = parser.parse_args(["report", "--config", "my.toml"])
+    assert args.config == "my.toml" and args.run is None
+    assert parser.parse_args(["report", "--run", "out/run"]).run == "out/run"
+    for argv in (["report"], ["report", "--config", "a.toml", "--run", "b"]):
+        with pytest.raises(SystemExit) as exc:
+            parser.parse_args(argv)
+        assert exc.value.code == 2
+    capsys.readouterr()
+
+
+def test_distribution_name_is_our_own():
+    """The distribution has its own name on the package index (`selector` there is another project);
+    the import package and the command keep the design's name."""
+    import tomllib
+    from pathlib import Path
+
+    import selector
+
+    project = tomllib.loads((Path(__file__).resolve().parents[1] / "pyproject.toml").read_text())["project"]
+    assert project["name"] == selector.DISTRIBUTION == "quasar-selector"
+    assert project["scripts"] == {"selector": "selector.cli:main"}
