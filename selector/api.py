@@ -101,7 +101,8 @@ def tune(config: str | os.PathLike, *, settings: Sequence[str] = (), truth=None,
         out = tune_job.tune(config, settings, truth=truth, plots=plots_dir is not None)
         log(tune_job.format_outcome(out))
         if plots_dir is not None:
-            data = plots.PlotData.from_evaluation(out.cache, out.after)
+            data = plots.PlotData.from_evaluation(out.cache, out.after,
+                                              truth_quasar=None if out.truth is None else out.truth.quasar)
             paths = plots.write_plots(data, Path(plots_dir))
             log(f"plots of the new selection: {len(paths)} PNG files in {plots_dir}")
     # the shared lock is let go first: writing runs the selection, which holds the folder alone

@@ -312,12 +312,18 @@ def test_settings_table_lists_every_selection_key(demo_run, moved_page):
 
 
 @pytest.fixture(scope="module")
-def with_targets(demo_run):
-    """The demo run with its target list made (its config has a [targets] section; truth lies beside it)."""
+def with_targets(small_demo, tmp_path_factory):
+    """A copy of the demo run with its target list made (its config has a [targets] section; truth lies
+    beside it). The shared run is read-only, so the whole folder is copied first."""
     from selector.jobs.targets import make_targets
+    from selector.settings.config import load_config
 
-    result = make_targets(demo_run, log=lambda *a: None)
-    return demo_run, result
+    _, path, _ = small_demo
+    dest = tmp_path_factory.mktemp("with_targets") / "demo"
+    shutil.copytree(path.parent, dest)
+    cfg = load_config(dest / path.name)
+    result = make_targets(cfg, log=lambda *a: None)
+    return cfg, result
 
 
 @pytest.fixture(scope="module")
