@@ -311,7 +311,7 @@ def test_progress_is_one_updating_line_on_a_terminal_and_plain_lines_otherwise(t
                           stream=term)
     for done in range(1, 4):
         rep.progress(done, 10, 100 * done, 0)
-        rep.last_draw = 0.0  # draw every update
+        rep.bar.last_draw = float("-inf")  # draw every update
     rep.info("a message")
     rep.progress(10, 10, 1000, 1, final=True)
     rep.close()

@@ -26,11 +26,13 @@ import numpy as np
 import pandas as pd
 import pyarrow as pa
 import pyarrow.compute as pc
+import pyarrow.parquet as pq
 
 from selector import __version__
 from selector.core import schema, tiles
 from selector.settings.config import CatalogueConfig, Config, config_hash
 from selector.errors import InputError, SelectorError
+from selector.jobs.progress import Progress
 from selector.store.io import (DurableBatch, expand_files, file_columns, fingerprint, float_text, iter_chunks,
                                missing_column_message, no_space, no_space_error, write_json, write_parquet)
 from selector.jobs.checks import ingest_findings, sample_rows, settle
@@ -395,6 +397,19 @@ def ingest_catalogue(cfg: Config, kind: str, log=print) -> IngestSummary:
     return ingest(cfg, log=log, kinds=(kind,))[kind]
 
 
+def _known_rows(paths) -> int | None:
+    """Rows of the input when every file says so in its metadata (Parquet), for the time left; else None."""
+    total = 0
+    for path in paths:
+        if Path(path).suffix.lower() not in (".parquet", ".pq"):
+            return None
+        try:
+            total += pq.read_metadata(path).num_rows
+        except (OSError, pa.ArrowException):
+            return None  # the reader reports it, with the file's name
+    return total
+
+
 def _ingest_into(cfg: Config, kind: str, lay: Layout) -> IngestSummary:
     """Ingest one catalogue into the generation of ``lay`` (pinned to a new, not yet current one)."""
     cat: CatalogueConfig = getattr(cfg, kind)
@@ -467,7 +482,10 @@ def _ingest_into(cfg: Config, kind: str, lay: Layout) -> IngestSummary:
         buffered = 0
 
     last_path = None
+    reading = Progress(f"ingest {kind}: rows read", _known_rows(paths), unit="rows",
+                       interval_s=cfg.run.progress_interval_s)
     for chunk in iter_chunks(paths, cat.format, sources, cat.chunk_rows):
+        reading.update(rows_in)
         if chunk.path != last_path:
             file_starts.append(rows_in)
             last_path = chunk.path
@@ -505,6 +523,8 @@ def _ingest_into(cfg: Config, kind: str, lay: Layout) -> IngestSummary:
         buffered += n
         if buffered >= _SPOOL_ROWS:
             flush()
+    reading.update(rows_in, total=rows_in)
+    reading.finish()
     readers = []
     if spool_files:
         flush()
@@ -617,6 +637,7 @@ def _write_tiles(cfg, kind, parts, *, lay, duplicates, id_col, fields, reject_pa
             "version": __version__}
     rows_per_tile = {}
     written = set()
+    writing = Progress(f"ingest {kind}: tiles written", len(parts), unit="tiles", interval_s=cfg.run.progress_interval_s)
     for tile in sorted(parts):
         t = pa.concat_tables([_load(p) for p in parts[tile]])
         rows = t.column("_row").to_numpy()
@@ -643,6 +664,8 @@ def _write_tiles(cfg, kind, parts, *, lay, duplicates, id_col, fields, reject_pa
         else:
             write_parquet(t, lay.known_objects, meta, batch=batch)
         rows_per_tile[tile] = t.num_rows
+        writing.add(1)
+    writing.finish()
     if tiled:
         folder = lay.order_dir(kind, order)
         # tiles left from an earlier ingest of other data would otherwise be read as current

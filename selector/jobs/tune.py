@@ -42,6 +42,7 @@ from selector.core.photometry import CRITERIA
 from selector.errors import ConfigError, InputError, SelectorError
 from selector.jobs.train import load_scorer
 from selector.jobs import run as run_job
+from selector.jobs.progress import Progress
 from selector.settings.config import (
     MATCH_SECTIONS,
     SELECTION_SECTIONS,
@@ -329,7 +330,7 @@ def _scorer(cfg: Config):
 
 
 def evaluate(cache: FeatureCache, cfg: Config, p_quasar: np.ndarray | None = None,
-             use_classifier: bool = True, threads: int | None = None) -> Evaluation:
+             use_classifier: bool = True, threads: int | None = None, *, progress: Progress | None = None) -> Evaluation:
     """Apply ``cfg``'s selection to every cached row at once.
 
     Parameters
@@ -348,6 +349,8 @@ def evaluate(cache: FeatureCache, cfg: Config, p_quasar: np.ndarray | None = Non
         False leaves the classifier stage out (the report does, for a model it cannot load).
     threads : int, optional
         Blocks of rows evaluated side by side (default: one per core).
+    progress : Progress, optional
+        Counts the rows evaluated (``selector tune`` shows it).
     """
     t0 = time.perf_counter()
     if p_quasar is None and use_classifier and cfg.classifier.model:
@@ -370,6 +373,8 @@ def evaluate(cache: FeatureCache, cfg: Config, p_quasar: np.ndarray | None = Non
                                                 else p_quasar[lo:hi])
         part = selection.select(cache.table.slice(lo, hi - lo), cfg, scores)
         idx = cache.tile_index(lo, hi)
+        if progress is not None:
+            progress.add(hi - lo)
         return part, np.stack([np.bincount(idx[mask], minlength=n_tiles) for _, mask in part.stages], axis=1)
 
     with ThreadPoolExecutor(max_workers=max(1, min(threads or os.cpu_count() or 1, len(bounds)))) as pool:
@@ -545,7 +550,10 @@ def tune(config_path: Path | str, settings: Sequence[str] = (), truth: Path | st
     _check_same_match(after_cfg, prov, str(config_path))
     truth_path = Path(truth) if truth is not None else find_truth(after_cfg)
     cache = load_cache(after_cfg, needed_columns(after_cfg, plots, ids=truth_path is not None))
-    after = evaluate(cache, after_cfg)  # scores with the classifier, when one is set
+    with Progress("tune: rows re-selected", cache.n_rows, unit="rows",
+                  interval_s=after_cfg.run.progress_interval_s) as shown:
+        shown.update(0)
+        after = evaluate(cache, after_cfg, progress=shown)  # scores with the classifier, when one is set
     labels = load_truth(truth_path, cache) if truth_path is not None else None
     # the run's own record is the "before": nothing to re-evaluate, and exactly what the run gave
     before = recorded(layout_of(base).run_dir, before_cfg, prov, cache if labels is not None else None)

@@ -1,19 +1,18 @@
-"""Telling the user how a run goes: messages, a progress display, the run log, clock times."""
+"""Telling the user how a run goes: messages, a progress display, the run log, clock times.
+
+The tile line is drawn by the one progress helper of every long step (:mod:`selector.jobs.progress`).
+"""
 
 from __future__ import annotations
 
 import datetime
 import sys
-import time
 from pathlib import Path
 
+from selector.jobs.progress import Progress, clock
 from selector.store.manifest import utc_now
 
-
-def clock(seconds: float) -> str:
-    """A duration as ``m:ss``, or ``h:mm:ss`` from an hour on."""
-    s = int(round(seconds))
-    return f"{s // 3600}:{s % 3600 // 60:02d}:{s % 60:02d}" if s >= 3600 else f"{s // 60}:{s % 60:02d}"
+__all__ = ["Reporter", "clock", "duration_s"]
 
 
 def duration_s(start: str, end: str) -> float:
@@ -45,10 +44,9 @@ class Reporter:
         self.interval_s = interval_s
         log_path.parent.mkdir(parents=True, exist_ok=True)
         self.file = open(log_path, "a", encoding="utf-8", buffering=1)
-        self.shown = False
-        self.t0 = time.monotonic()
-        self.last_line = float("-inf")
-        self.last_draw = float("-inf")
+        # every periodic and final tile line also goes to the run log
+        self.bar = Progress("tiles", None, unit="tiles", interval_s=interval_s, stream=self.stream,
+                            enabled=not quiet, on_line=self._to_file)
 
     def _to_file(self, msg: str) -> None:
         stamp = utc_now()
@@ -56,10 +54,7 @@ class Reporter:
             self.file.write(f"{stamp} {line}\n")
 
     def _clear(self) -> None:
-        if self.shown:
-            self.stream.write("\r\033[K")
-            self.stream.flush()
-            self.shown = False
+        self.bar.clear()
 
     def info(self, msg: str) -> None:
         """A message shown unless quiet."""
@@ -87,32 +82,8 @@ class Reporter:
 
     def progress(self, done: int, total: int, rows: int, failed: int, final: bool = False) -> None:
         """Tiles done of the total, rows, failures, rate and time left."""
-        now = time.monotonic()
-        elapsed = max(now - self.t0, 1e-9)
-        rate = done / elapsed
-        left = (total - done) / rate if rate > 0 else float("nan")
-        line = f"tiles {done:,}/{total:,}" + (f" ({failed} failed)" if failed else "") + f" · {rows:,} rows"
-        if done == 0:
-            line += " · starting"
-        elif done < total:
-            line += f" · {rate:.1f} tiles/s · about {clock(left)} left"
-        else:
-            line += f" · {rate:.1f} tiles/s · {clock(elapsed)} elapsed"
-        due = final or now - self.last_line >= self.interval_s
-        if due:
-            self._to_file(line)
-            self.last_line = now
-        if self.quiet:
-            return
-        if self.tty:
-            if final or now - self.last_draw >= 0.1:
-                self.stream.write("\r" + line + "\033[K" + ("\n" if final else ""))
-                self.stream.flush()
-                self.shown = not final
-                self.last_draw = now
-        elif due:
-            self.stream.write(line + "\n")
-            self.stream.flush()
+        detail = (f" ({failed} failed)" if failed else "") + f" · {rows:,} rows"
+        self.bar.update(done, total=total, detail=detail, final=final)
 
     def close(self) -> None:
         self._clear()

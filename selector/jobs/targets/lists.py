@@ -50,6 +50,7 @@ from selector.core.observability import (NightGrid, Observability, earth_rotatio
 from selector.core.photometry import vega_to_ab
 from selector.core.selection import rank_candidates
 from selector.errors import ConfigError, InputError, SelectorError, describe_rows
+from selector.jobs.progress import Progress
 from selector.jobs.targets.known import KnownMatch, KnownObjects, match_known, read_known
 from selector.settings.config import Config, config_hash
 from selector.store.history import (STATUSES, CandidateSet, History, ListRecord, id_kind_of, ids_as_text,
@@ -292,7 +293,7 @@ def _plan(cfg: Config) -> _Plan:
     todo = np.flatnonzero(todo)
     grid = night_grid(tcfg.site, tcfg.start_date, tcfg.end_date, tcfg.sun_altitude_max_deg, tcfg.time_step_min,
                       moon=tcfg.moon_separation_min_deg is not None)
-    obs = observability(ra[todo], dec[todo], grid, tcfg.altitude_limit_deg, tcfg.moon_separation_min_deg)
+    obs = _observability_shown(cfg, ra[todo], dec[todo], grid)
     entry = CandidateSet(ids_text, id_kind_of(ids), score, rank, ra, dec, cand.provenance.get("config_hash"),
                          file_sha256(cand.path), targets_hash=config_hash(cfg, ("targets",)),
                          from_run=source_run(cfg))
@@ -649,3 +650,27 @@ def _log_result(result: TargetsResult, log) -> None:
         log(f"list {result.list_number} recorded in the candidate history ({origin})")
     folder = Path(next(iter(result.outputs.values()))).parent
     log(f"written to {folder}: " + ", ".join(Path(p).name for p in result.outputs.values()))
+
+
+#: Targets whose observability is computed at a time (each is independent of the others), so the
+#: progress line moves and the (targets × dark steps) altitude array stays small.
+_OBSERVABILITY_BLOCK = 2000
+
+
+def _observability_shown(cfg: Config, ra: np.ndarray, dec: np.ndarray, grid: NightGrid) -> Observability:
+    """:func:`~selector.core.observability.observability` of every target, in blocks, with a progress line."""
+    tcfg = cfg.targets
+    parts = []
+    with Progress("targets: observability computed", len(ra), unit="targets",
+                  interval_s=cfg.run.progress_interval_s) as shown:
+        shown.update(0)
+        for lo in range(0, len(ra), _OBSERVABILITY_BLOCK):
+            hi = min(lo + _OBSERVABILITY_BLOCK, len(ra))
+            parts.append(observability(ra[lo:hi], dec[lo:hi], grid, tcfg.altitude_limit_deg,
+                                       tcfg.moon_separation_min_deg))
+            shown.update(hi)
+    if len(parts) == 1:
+        return parts[0]
+    if not parts:
+        return observability(ra, dec, grid, tcfg.altitude_limit_deg, tcfg.moon_separation_min_deg)
+    return Observability(*(np.concatenate(values) for values in zip(*parts)))

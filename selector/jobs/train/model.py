@@ -33,6 +33,7 @@ from selector.core.selection import ModelScores, select, tile_rejects
 from selector.errors import SelectorError
 from selector.jobs.train.evaluation import TrainingEvaluation, evaluate
 from selector.jobs.train.features import feature_matrix, zero_motion
+from selector.jobs.progress import Progress
 from selector.jobs.train.labels import CLASSES, QUASAR, LabelledSet, feature_cache
 from selector.jobs.train.sky import (PriorAdjustment, ScoredPopulation, band_column, identity, log_posteriors)
 from selector.settings.config import Config
@@ -496,13 +497,17 @@ def _train_labelled(cfg: Config, data: LabelledSet, log) -> TrainResult:
     fold = grouped_folds(groups, y, c.folds, seed, classes=classes)
     raw = np.zeros((len(y), k))
     importances = []
+    # one step per fold model and one for the final model: the fits are what takes the time
+    fits = Progress("train: models fitted", c.folds + 1, unit="fits", interval_s=cfg.run.progress_interval_s)
+    fits.update(0)
     for f in range(c.folds):
         train_rows, test_rows = fold != f, fold == f
         est = make_estimator(cfg, seed).fit(X[train_rows], y[train_rows])
         raw[test_rows] = raw_proba(est, X[test_rows], k)
         importances.append(_importances(est, X[test_rows], y[test_rows], seed=seed + f, repeats=c.permutation_repeats,
                                         max_rows=math.ceil(_IMPORTANCE_ROWS / c.folds)))
-        log(f"  fold {f + 1} of {c.folds}: trained on {int(train_rows.sum()):,d}, held out {int(test_rows.sum()):,d}")
+        fits.update(f + 1, detail=f" (fold {f + 1} of {c.folds}: trained on {int(train_rows.sum()):,d}, "
+                                  f"held out {int(test_rows.sum()):,d})")
     # cross-fitting: the map applied to a fold is fitted on the other folds' out-of-fold predictions
     crossed = cross_fit_calibration(raw, y, fold, method=c.calibration)
     held_d = np.zeros_like(raw)
@@ -511,6 +516,8 @@ def _train_labelled(cfg: Config, data: LabelledSet, log) -> TrainResult:
         held_d[rows] = decisions(maps, raw[rows])
     cal = np.exp(log_posteriors(held_d))
     final = make_estimator(cfg, seed).fit(X, y)
+    fits.update(c.folds + 1, detail=" (final model on every labelled source)")
+    fits.finish()
     imp = np.concatenate(importances, axis=1)
     train_mix = np.bincount(y, minlength=k) / len(y)
     kept = LabelledSet(data.table.filter(pa.array(keep)), X, y, groups, data.feature_names, data.group_order,
