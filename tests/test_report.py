@@ -347,12 +347,21 @@ def test_report_shows_the_target_list_and_truth(with_targets, targets_page):
     assert f">{dropped['known_object']:,d}</div><div class='label'>known objects removed" in text
     never = sum(dropped[c] for c in ("below_altitude_limit", "not_in_dark_time", "moon_too_close"))
     assert f">{never:,d}</div><div class='label'>never observable from" in text
-    shown_ids = set(re.findall(r"<tr class='target'><td[^>]*>\d+</td><td[^>]*>\d+</td><td[^>]*>(\d+)</td>", text))
+    shown_ids = set(_table_column(text, "targets", "astrometric id"))
     gone = {str(v) for v in result.dropped["astro_id"]}
     assert shown_ids and not shown_ids & gone
     for name in ("visibility", "completeness"):
         assert f"id='plot-{name}'" in text, name
     assert "completeness against the truth labels" in text
+
+
+def _table_column(text: str, table_id: str, heading: str) -> list[str]:
+    """The cells under one heading of the page's table ``table_id``."""
+    table = text[text.index(f"<table id='{table_id}'>"):]
+    table = table[:table.index("</table>")]
+    rows = [re.findall(r"<t[hd][^>]*>(.*?)</t[hd]>", row) for row in re.findall(r"<tr[^>]*>(.*?)</tr>", table)]
+    col = rows[0].index(heading)
+    return [r[col] for r in rows[1:]]
 
 
 def load_config_candidates(cfg) -> int:
