@@ -52,7 +52,7 @@ from selector.settings.config import SELECTION_SECTIONS, Config, plain
 from selector.store.cache import FeatureCache, find_rows, load_cache
 from selector.store.io import file_sha256, read_parquet, read_table, write_text
 from selector.store.layout import (SKY_PLOT_FILES, TRAINING_PLOT_FILES, classifier_dir, layout_of, layout_of_run,
-                                   target_list, targets_file)
+                                   target_full_list, target_list, targets_file)
 from selector.store.truth import TruthLabels, find_truth, load_truth
 
 __all__ = ["CANDIDATE_COLUMNS", "FIGURES", "HEADLINES", "SECTIONS", "TARGET_COLUMNS", "ReportFigure", "ReportInputs",
@@ -85,12 +85,14 @@ TARGET_COLUMNS = (
     ("astro_id", "astrometric id", "{}"),
     ("ra_hms", "RA (h:m:s)", "{}"),
     ("dec_dms", "Dec (d:m:s)", "{}"),
-    ("opt_broad_abmag", "broad (AB)", "{:.2f}"),
-    ("ir_4p6_vegamag", "[4.6] (Vega)", "{:.2f}"),
+    ("opt_brightest_abmag", "optical (AB)", "{:.2f}"),
+    ("opt_brightest_band", "band", "{}"),
+    ("ir_brightest_vegamag", "infrared (Vega)", "{:.2f}"),
+    ("ir_brightest_band", "band (µm)", "{}"),
     ("score", "score", "{:.3f}"),
     ("p_quasar", "P(quasar)", "{:.3f}"),
     ("best_night", "best night", "{}"),
-    ("observable_hours", "hours observable", "{:.1f}"),
+    ("best_night_hours", "hours that night", "{:.1f}"),
     ("history_status", "status", "{}"),
 )
 
@@ -213,7 +215,10 @@ def _read_targets(side_cfg, run_candidates: Path) -> TargetView | None:
     tcfg = getattr(side_cfg, "targets", None)
     if tcfg is None:
         return None
-    path = target_list(side_cfg, "ecsv")
+    # the full table (scores, ranks, history) where written, else the compact list
+    path = target_full_list(side_cfg, "ecsv")
+    if not path.is_file():
+        path = target_list(side_cfg, "ecsv")
     if not path.is_file():
         return None
     table, _ = read_table(path, what="target list")
@@ -232,7 +237,7 @@ def _read_targets(side_cfg, run_candidates: Path) -> TargetView | None:
             made_from = json.loads(prov_path.read_text(encoding="utf-8")).get("candidates", {})
         except ValueError:
             made_from = {}
-        source = run_candidates.with_name(str(made_from.get("file", "")))
+        source = run_candidates.with_name(Path(str(made_from.get("file", "") or "none")).name)
         current = bool(made_from.get("file")) and source.is_file() and file_sha256(source) == made_from.get("sha256")
     return TargetView(table, dropped, nights, current, tcfg.site, float(tcfg.altitude_limit_deg))
 
