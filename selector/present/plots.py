@@ -616,10 +616,13 @@ def proper_motion_plane(data: PlotData):
 
 
 def parallax_error(data: PlotData):
-    """Parallax against its uncertainty, with the zero-parallax band of the selection.
+    """Parallax against its uncertainty, with the parallax limits of the selection.
 
-    The parallax test keeps |ϖ − ϖ₀| ≤ s·k·σ (s = ``motion.parallax_snr_max``, k =
-    ``motion.error_inflation``; :func:`selector.core.astrometry.zero_motion`), which is the band drawn.
+    The separate parallax test keeps (ϖ − ϖ₀)/(k·σ) ≤ s (s = ``motion.parallax_snr_max``, k =
+    ``motion.error_inflation``; :func:`selector.core.astrometry.zero_motion`), the quality cut
+    refuses (ϖ − ϖ₀)/(k·σ) < −``quality.negative_parallax_snr_max``; both lines are drawn. With the
+    joint test (``motion.test = "joint"``) the parallax and the proper motion are judged together,
+    so the upper line is a guide, not the cut.
     """
     p, s = data.parallax_mas, data.parallax_error_mas
     if p is None or s is None or not (np.isfinite(p) & np.isfinite(s)).any():
@@ -635,11 +638,16 @@ def parallax_error(data: PlotData):
     _density(ax, ls, p, xlim, ylim)
     _candidates(ax, ls, p, data.candidate)
     xs = np.linspace(*xlim, 100)
-    k = mo.parallax_snr_max * mo.error_inflation
     zp = mo.parallax_zero_point_mas
-    for sign in (-1.0, 1.0):
-        ax.plot(xs, zp + sign * k * 10.0 ** xs, color="k", ls="--", lw=1.2,
-                label=f"ϖ₀ ± {k:g}·σ (kept inside)" if sign > 0 else None)
+    # as in the zero-motion picture: the parallax cut above zero, the quality cut below it
+    quality = getattr(data.cfg, "quality", None)
+    low = None if quality is None else quality.negative_parallax_snr_max
+    ax.plot(xs, zp + mo.parallax_snr_max * mo.error_inflation * 10.0 ** xs, color="k", ls="--", lw=1.2,
+            label=f"ϖ₀ + {mo.parallax_snr_max:g}·σ" + (" (separate test; the joint test decides)"
+                                                      if mo.test == "joint" else ""))
+    if low is not None:
+        ax.plot(xs, zp - low * mo.error_inflation * 10.0 ** xs, color="k", ls=":", lw=1.2,
+                label=f"ϖ₀ − {low:g}·σ (negative-parallax quality cut)")
     ax.axhline(zp, color="k", lw=0.6)
     ax.set_xlim(xlim)
     ax.set_ylim(ylim)
@@ -681,8 +689,8 @@ PLOTS = (
          "Quasars gather at the origin; stars stream away from it. Candidates far from the origin in the right "
          "panel are sources whose large errors let them pass."),
     Plot("parallax_error", parallax_error,
-         "Candidates must lie between the dashed lines. Points at large σ pass easily: a list dominated by them "
-         "is a list of poorly measured sources."),
+         "Candidates should sit near zero parallax, below the dashed line and above the dotted one. Points at large "
+         "σ pass easily: a list dominated by them is a list of poorly measured sources."),
     Plot("separations", match_separations,
          "True counterparts pile up at small separations; the dashed purple line is what chance coincidences give. "
          "Where the grey histogram meets that line, a larger radius only adds chance matches."),
