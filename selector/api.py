@@ -98,7 +98,7 @@ def tune(config: str | os.PathLike, *, settings: Sequence[str] = (), truth=None,
         record = run_job.committed_run(layout_of(cfg), "tune", cfg=cfg, config_name=str(config),
                                        allow_incomplete=allow_incomplete)
         _incomplete_note(record, log)
-        out = tune_job.tune(config, settings, truth=truth, plots=plots_dir is not None)
+        out = tune_job.tune(config, settings, truth=truth, plots=plots_dir is not None, log=log)
         log(tune_job.format_outcome(out))
         if plots_dir is not None:
             data = plots.PlotData.from_evaluation(out.cache, out.after,

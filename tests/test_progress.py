@@ -1,5 +1,6 @@
-"""The one progress display: an updating line on a terminal, plain periodic lines otherwise, and
-that ingest, train, tune and targets show it (the run's own line is tested in test_batch.py)."""
+"""The one progress display: an updating line on a terminal, plain periodic lines otherwise (through the
+job's log, where its other messages go), and that ingest, train, tune and targets show it (the run's
+own line is tested in test_batch.py)."""
 
 from __future__ import annotations
 
@@ -70,20 +71,32 @@ def test_clock():
 
 # --- the jobs show it --------------------------------------------------------------------------------
 
-def test_ingest_shows_rows_read_and_tiles_written(tmp_path, capsys):
+def test_plain_lines_go_to_the_log_when_given():
+    shown, out = [], io.StringIO()
+    bar = Progress("rows", 3, interval_s=0, stream=out, log=shown.append)
+    bar.update(1)
+    bar.finish()
+    assert out.getvalue() == "" and len(shown) == 2 and shown[-1].startswith("rows 1/3")
+    term = _Terminal()
+    Progress("rows", 3, interval_s=0, stream=term, log=shown.append).update(2)
+    assert "rows 2/3" in term.getvalue() and len(shown) == 2  # a terminal gets the live line instead
+
+
+def test_ingest_shows_rows_read_and_tiles_written(tmp_path):
     rng = np.random.default_rng(3)
     write_parquet(random_astro(500, rng), tmp_path / "astro.parquet")
     write_parquet(random_ir(400, rng), tmp_path / "ir.parquet")
     cfg = build(base_config(), tmp_path)
-    ingest.ingest(cfg, log=lambda *a: None)
-    err = capsys.readouterr().err
+    lines = []
+    ingest.ingest(cfg, log=lines.append)
+    err = "\n".join(lines)
     assert "ingest astrometric: rows read 0/500 · starting" in err  # the total from the files' metadata
     assert any(line.startswith("ingest astrometric: rows read 500/500") and line.endswith("elapsed")
                for line in err.splitlines())
     assert "ingest infrared: tiles written" in err
 
 
-def test_train_shows_models_fitted(tmp_path, capsys):
+def test_train_shows_models_fitted(tmp_path):
     rng = np.random.default_rng(0)
     n = 900
     y = rng.choice(3, n, p=[0.2, 0.4, 0.4])
@@ -95,31 +108,34 @@ def test_train_shows_models_fitted(tmp_path, capsys):
                              {"rows": n, "by_class": {c: int(np.sum(y == k)) for k, c in enumerate(train.CLASSES)}})
     cfg_data = base_config()
     cfg_data["classifier"] = {"max_iter": 10, "max_leaf_nodes": 7, "permutation_repeats": 1, "folds": 3}
-    train.train_labelled(build(cfg_data, tmp_path), data, log=lambda *a: None)
-    lines = capsys.readouterr().err.splitlines()
+    lines = []
+    train.train_labelled(build(cfg_data, tmp_path), data, log=lines.append)
+    lines = [line for line in lines if line.startswith("train: ")]
     assert lines[0] == "train: models fitted 0/4 · starting"
     assert lines[-1].startswith("train: models fitted 4/4 (final model") and lines[-1].endswith("elapsed")
 
 
-def test_tune_shows_rows_reselected(small_demo, capsys):
+def test_tune_shows_rows_reselected(small_demo):
     _, path, _ = small_demo
-    tune.tune(path, ["motion.parallax_snr_max=4"])
-    err = capsys.readouterr().err
+    lines = []
+    tune.tune(path, ["motion.parallax_snr_max=4"], log=lines.append)
+    err = "\n".join(lines)
     assert "tune: rows re-selected 0/" in err and "elapsed" in err
 
 
-def test_targets_show_observability_in_blocks(small_demo, capsys, monkeypatch):
+def test_targets_show_observability_in_blocks(small_demo, monkeypatch):
     cfg, _, _ = small_demo
     t = cfg.targets
     grid = night_grid(t.site, t.start_date, t.end_date, t.sun_altitude_max_deg, t.time_step_min,
                       moon=t.moon_separation_min_deg is not None)
     ra = np.array([10.0, 150.0, 250.0, 300.0, 45.0])
     dec = np.array([-30.0, 10.0, -60.0, 80.0, 0.0])
-    whole = lists._observability_shown(cfg, ra, dec, grid)
+    lines = []
+    whole = lists._observability_shown(cfg, ra, dec, grid, lines.append)
     monkeypatch.setattr(lists, "_OBSERVABILITY_BLOCK", 2)
-    blocks = lists._observability_shown(cfg, ra, dec, grid)
+    blocks = lists._observability_shown(cfg, ra, dec, grid, lines.append)
     for a, b in zip(whole, blocks):  # every target on its own: blocks change nothing
         assert np.array_equal(a, b)
-    err = capsys.readouterr().err
+    err = "\n".join(lines)
     assert "targets: observability computed 0/5 · starting" in err
     assert "targets: observability computed 5/5" in err

@@ -410,7 +410,7 @@ def _known_rows(paths) -> int | None:
     return total
 
 
-def _ingest_into(cfg: Config, kind: str, lay: Layout) -> IngestSummary:
+def _ingest_into(cfg: Config, kind: str, lay: Layout, log=print) -> IngestSummary:
     """Ingest one catalogue into the generation of ``lay`` (pinned to a new, not yet current one)."""
     cat: CatalogueConfig = getattr(cfg, kind)
     fields = plan_fields(cat, kind)
@@ -483,7 +483,7 @@ def _ingest_into(cfg: Config, kind: str, lay: Layout) -> IngestSummary:
 
     last_path = None
     reading = Progress(f"ingest {kind}: rows read", _known_rows(paths), unit="rows",
-                       interval_s=cfg.run.progress_interval_s)
+                       interval_s=cfg.run.progress_interval_s, log=log)
     for chunk in iter_chunks(paths, cat.format, sources, cat.chunk_rows):
         reading.update(rows_in)
         if chunk.path != last_path:
@@ -547,7 +547,7 @@ def _ingest_into(cfg: Config, kind: str, lay: Layout) -> IngestSummary:
     # the generation is new and read by nobody until it is put in force, after it has been made
     # durable as a whole (commit_generation): its files need no sync of their own
     batch = DurableBatch(sync=False)
-    rows_per_tile = _write_tiles(cfg, kind, tile_parts, lay=lay, duplicates=duplicates, id_col=id_col, fields=fields,
+    rows_per_tile = _write_tiles(cfg, kind, tile_parts, log=log, lay=lay, duplicates=duplicates, id_col=id_col, fields=fields,
                                  reject_parts=reject_parts, file_list=file_list, file_starts=np.asarray(file_starts),
                                  batch=batch)
     batch.commit()
@@ -629,7 +629,7 @@ def _find_duplicates(buckets: dict) -> np.ndarray:
     return np.sort(np.concatenate(out)) if out else np.zeros(0, np.int64)
 
 
-def _write_tiles(cfg, kind, parts, *, lay, duplicates, id_col, fields, reject_parts, file_list, file_starts, batch):
+def _write_tiles(cfg, kind, parts, *, log, lay, duplicates, id_col, fields, reject_parts, file_list, file_starts, batch):
     # every catalogue but the known objects is tiled; those are one file
     order, tiled = cfg.tiling.order, kind != "known"
     units = {f.canonical: f.unit for f in fields if f.unit}
@@ -637,7 +637,8 @@ def _write_tiles(cfg, kind, parts, *, lay, duplicates, id_col, fields, reject_pa
             "version": __version__}
     rows_per_tile = {}
     written = set()
-    writing = Progress(f"ingest {kind}: tiles written", len(parts), unit="tiles", interval_s=cfg.run.progress_interval_s)
+    writing = Progress(f"ingest {kind}: tiles written", len(parts), unit="tiles", interval_s=cfg.run.progress_interval_s,
+                       log=log)
     for tile in sorted(parts):
         t = pa.concat_tables([_load(p) for p in parts[tile]])
         rows = t.column("_row").to_numpy()
@@ -738,7 +739,7 @@ def ingest(cfg: Config, log=print, *, kinds: tuple[str, ...] | None = None,
         new = new_generation(lay)
         try:
             for kind in kinds:
-                s = out[kind] = _ingest_into(cfg, kind, new)
+                s = out[kind] = _ingest_into(cfg, kind, new, log)
                 log(f"{kind}: {s.rows_in} rows in, {s.accepted} accepted, {sum(s.rejected.values())} rejected"
                     + (f" ({', '.join(f'{k}: {v}' for k, v in sorted(s.rejected.items()))})" if s.rejected else "")
                     + (f", {len(s.rows_per_tile)} tiles" if kind != "known" else ""))

@@ -1,9 +1,10 @@
 """One progress display for every long step: ingest, run, train, tune and targets.
 
-On a terminal it is one line that updates in place (counts, rate and time left); anywhere else (a
-log file, a batch system, a pipe) it is a plain line every ``interval_s`` seconds and a last line
-at the end, so a nightly job's log shows that it is alive without being flooded. It writes to
-standard error, which keeps standard output for results.
+On a terminal it is one line on standard error that updates in place (counts, rate and time left);
+anywhere else (a log file, a batch system, a pipe) it is a plain line every ``interval_s`` seconds,
+with the first and the last state, so a nightly job's log shows that it is alive without being
+flooded. The plain lines go where the job's other messages go (its ``log`` callable), so a caller
+that silences a job silences its progress too, and a one-line error stays alone on standard error.
 
 It lives on the jobs floor, the lowest one that does long work; the run's :class:`Reporter`
 (:mod:`selector.jobs.run.progress`) draws its tile line through it.
@@ -52,6 +53,8 @@ class Progress:
         False shows nothing (``--quiet``); :attr:`lines` are still made for a log file.
     on_line : callable, optional
         Called with every plain line (periodic and final), for example to keep it in a log file.
+    log : callable, optional
+        Where the plain lines are shown when ``stream`` is not a terminal (default: written to ``stream``).
 
     Examples
     --------
@@ -64,8 +67,10 @@ class Progress:
     """
 
     def __init__(self, label: str, total: int | None = None, *, unit: str = "rows",
-                 interval_s: float = DEFAULT_INTERVAL_S, stream=None, enabled: bool = True, on_line=None):
+                 interval_s: float = DEFAULT_INTERVAL_S, stream=None, enabled: bool = True, on_line=None,
+                 log=None):
         self.label, self.total, self.unit = label, total, unit
+        self.log = log
         self.interval_s = float(interval_s)
         self.stream = stream if stream is not None else sys.stderr
         self.tty = bool(getattr(self.stream, "isatty", lambda: False)())
@@ -116,6 +121,8 @@ class Progress:
                 self.stream.flush()
                 self.shown = not final
                 self.last_draw = now
+        elif due and self.log is not None:
+            self.log(text)
         elif due:
             self.stream.write(text + "\n")
             self.stream.flush()

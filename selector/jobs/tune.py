@@ -524,7 +524,7 @@ def _check_same_match(cfg: Config, prov: dict, where: str) -> None:
 
 
 def tune(config_path: Path | str, settings: Sequence[str] = (), truth: Path | str | None = None,
-         plots: bool = False) -> TuneOutcome:
+         plots: bool = False, *, log=print) -> TuneOutcome:
     """Compare a run's recorded selection with ``config_path`` plus ``settings``, on its feature cache.
 
     Parameters
@@ -551,7 +551,7 @@ def tune(config_path: Path | str, settings: Sequence[str] = (), truth: Path | st
     truth_path = Path(truth) if truth is not None else find_truth(after_cfg)
     cache = load_cache(after_cfg, needed_columns(after_cfg, plots, ids=truth_path is not None))
     with Progress("tune: rows re-selected", cache.n_rows, unit="rows",
-                  interval_s=after_cfg.run.progress_interval_s) as shown:
+                  interval_s=after_cfg.run.progress_interval_s, log=log) as shown:
         shown.update(0)
         after = evaluate(cache, after_cfg, progress=shown)  # scores with the classifier, when one is set
     labels = load_truth(truth_path, cache) if truth_path is not None else None

@@ -217,7 +217,7 @@ def make_targets(cfg: Config, new_only: bool = False, log=print) -> TargetsResul
     """
     if cfg.targets is None:
         raise ConfigError("the configuration has no [targets] section; add one (see configs/default.toml)")
-    plan = _plan(cfg)
+    plan = _plan(cfg, log)
     with History(history_file(cfg), create=True) as hist, hist.transaction():
         record = hist.record_list(plan.history_entry, tolerance=cfg.targets.score_tolerance,
                                   where=str(plan.cand.path))
@@ -259,7 +259,7 @@ def source_run(cfg: Config) -> int | None:
     return int(merged[0]) if merged else None
 
 
-def _plan(cfg: Config) -> _Plan:
+def _plan(cfg: Config, log=print) -> _Plan:
     """Read the candidates and known objects, match them, and compute the observability of every
     candidate that can still be listed: all of the slow work, before any lock is taken."""
     tcfg = cfg.targets
@@ -293,7 +293,7 @@ def _plan(cfg: Config) -> _Plan:
     todo = np.flatnonzero(todo)
     grid = night_grid(tcfg.site, tcfg.start_date, tcfg.end_date, tcfg.sun_altitude_max_deg, tcfg.time_step_min,
                       moon=tcfg.moon_separation_min_deg is not None)
-    obs = _observability_shown(cfg, ra[todo], dec[todo], grid)
+    obs = _observability_shown(cfg, ra[todo], dec[todo], grid, log)
     entry = CandidateSet(ids_text, id_kind_of(ids), score, rank, ra, dec, cand.provenance.get("config_hash"),
                          file_sha256(cand.path), targets_hash=config_hash(cfg, ("targets",)),
                          from_run=source_run(cfg))
@@ -657,12 +657,12 @@ def _log_result(result: TargetsResult, log) -> None:
 _OBSERVABILITY_BLOCK = 2000
 
 
-def _observability_shown(cfg: Config, ra: np.ndarray, dec: np.ndarray, grid: NightGrid) -> Observability:
+def _observability_shown(cfg: Config, ra: np.ndarray, dec: np.ndarray, grid: NightGrid, log=print) -> Observability:
     """:func:`~selector.core.observability.observability` of every target, in blocks, with a progress line."""
     tcfg = cfg.targets
     parts = []
     with Progress("targets: observability computed", len(ra), unit="targets",
-                  interval_s=cfg.run.progress_interval_s) as shown:
+                  interval_s=cfg.run.progress_interval_s, log=log) as shown:
         shown.update(0)
         for lo in range(0, len(ra), _OBSERVABILITY_BLOCK):
             hi = min(lo + _OBSERVABILITY_BLOCK, len(ra))

@@ -498,7 +498,8 @@ def _train_labelled(cfg: Config, data: LabelledSet, log) -> TrainResult:
     raw = np.zeros((len(y), k))
     importances = []
     # one step per fold model and one for the final model: the fits are what takes the time
-    fits = Progress("train: models fitted", c.folds + 1, unit="fits", interval_s=cfg.run.progress_interval_s)
+    fits = Progress("train: models fitted", c.folds + 1, unit="fits", interval_s=cfg.run.progress_interval_s,
+                    log=log)
     fits.update(0)
     for f in range(c.folds):
         train_rows, test_rows = fold != f, fold == f
