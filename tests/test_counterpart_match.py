@@ -83,7 +83,7 @@ def assert_same_assignment(features: pa.Table, reference: dict) -> None:
     for key, (ir_id, p, n, amb) in reference.items():
         g = got[key]
         assert g[0] == ir_id, key
-        assert g[1] == pytest.approx(p, rel=1e-9, abs=1e-300), key
+        assert g[1] == pytest.approx(p, rel=1e-7, abs=1e-300), key
         assert (g[2], g[3]) == (n, amb), key
 
 
@@ -280,14 +280,17 @@ def test_false_match_rate_agrees_with_the_shifted_estimate(truth_field):
     cfg, results, truth = truth_field
     feats = pa.concat_tables([r.features for r in results])
     got = dict(zip(feats.column("astro_id").to_pylist(), feats.column("ir_id").to_pylist()))
-    false = sum(truth.get(a) != i for a, i in got.items())
+    # chance counterparts: sources without a true counterpart that were given one (what the shifted positions
+    # measure); true counterparts lost to a closer chance source are rarer still
+    chance = sum(a not in truth for a in got)
+    lost = sum(a in truth and truth[a] != i for a, i in got.items())
     est = ChanceEstimate.total([r.chance for r in results if r.chance is not None])
-    assert est.shifted_sources > 0.8 * cfg.match.chance_shifts * sum(r.n_rows for r in results)
+    assert est.shifted_sources > 0.9 * sum(r.n_rows for r in results)   # each source shifted once
     # binomial counting statistics (common practice): the estimate's own error and the scatter of the one
     # realisation, about sqrt(expected), added in quadrature; three standard deviations
     tolerance = 3.0 * np.hypot(est.expected_matches_error, np.sqrt(est.expected_matches))
-    assert false > 100
-    assert abs(false - est.expected_matches) < tolerance, (false, est)
+    assert chance > 80 and lost < 0.2 * chance
+    assert abs(chance - est.expected_matches) < tolerance, (chance, est)
 
 
 # ---------------------------------------------------------------------------------------------------

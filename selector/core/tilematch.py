@@ -90,7 +90,8 @@ class MatchSettings:
     chance_shift_arcsec : float
         Shift of the owned positions for the chance-match estimate.
     chance_shifts : int
-        Shifted copies (position angles 360° k / n + 45°); 0 skips the estimate.
+        Shifted copies n (position angles 360° k / n + 45°), copy k moving every n-th owned source from the
+        k-th; 0 skips the estimate.
     """
 
     radius_arcsec: float
@@ -150,7 +151,7 @@ class TileMatch:
         The chance matches of the shifted owned sources, in the form of ``features`` plus
         :data:`CHANCE_SHIFT_COLUMN`; None when no estimate was asked for.
     n_chance_sources : int
-        Shifted sources that took part (those whose shifted position stays inside the tile, summed over shifts).
+        Shifted sources that took part (those whose shifted position stays inside the tile).
     needs_ir_margin_arcsec : float or None
         Set (and nothing else computed) when a component of competing pairs holding an owned source reaches
         the edge of the loaded area: reload with at least this infrared margin.
@@ -294,10 +295,17 @@ def candidate_pairs(a: MatchSide, b: MatchSide, density_b, s: MatchSettings, *, 
     """
     found = pairs_within(a.ra_deg, a.dec_deg, b.ra_deg, b.dec_deg, s.radius_arcsec, workers=workers)
     ia, ib = found.index_a, found.index_b
-    off = tangent_offset(a.ra_deg[ia], a.dec_deg[ia], b.ra_deg[ib], b.dec_deg[ib])
-    cov = combine_covariances(_take_cov(a.cov, ia), rotate_covariance(_take_cov(b.cov, ib), off.rotation_rad))
+    cov_b = _take_cov(b.cov, ib)
+    if _circular(cov_b):
+        # a circular ellipse looks the same on any axes: the offset alone is needed, not the turn of b's axes
+        east, north = _offset_east_north(a.ra_deg[ia], a.dec_deg[ia], b.ra_deg[ib], b.dec_deg[ib])
+    else:
+        off = tangent_offset(a.ra_deg[ia], a.dec_deg[ia], b.ra_deg[ib], b.dec_deg[ib])
+        east, north = off.east_arcsec, off.north_arcsec
+        cov_b = rotate_covariance(cov_b, off.rotation_rad)
+    cov = combine_covariances(_take_cov(a.cov, ia), cov_b)
     sigma = major_sigma_arcsec(cov)
-    ln_b = bayes_factor(off.east_arcsec, off.north_arcsec, cov).ln_b
+    ln_b = bayes_factor(east, north, cov).ln_b
     with np.errstate(invalid="ignore"):
         reach = search_radius_arcsec(np.nan_to_num(sigma, nan=np.inf), s.n_sigma, s.radius_arcsec)
         keep = (found.separation_arcsec <= reach) & np.isfinite(ln_b)
@@ -342,6 +350,34 @@ def assign_pairs(c: PairCandidates, n_astrometric: int, *, ambiguity_ratio: floa
     out["separation_arcsec"][a] = c.separation_arcsec[k]
     out["n_candidates"][a] = 1
     return Assignment(**out)
+
+
+def _circular(cov: PositionCovariance) -> bool:
+    v_e, v_n, c_en = (np.asarray(x) for x in cov)
+    return bool(np.array_equal(v_e, v_n) and not np.any(c_en))
+
+
+def _offset_east_north(ra_a_deg, dec_a_deg, ra_b_deg, dec_b_deg):
+    """b seen from a on a's east and north axes (arcsec), azimuthal equidistant: as
+    :func:`selector.core.counterparts.tangent_offset`, without the turn of b's axes.
+
+    With Δα = α_b − α_a the direction cosines of b on a's (east, north, radial) axes are
+    (cos δ_b sin Δα, sin δ_b cos δ_a − cos δ_b sin δ_a cos Δα, sin δ_b sin δ_a + cos δ_b cos δ_a cos Δα)
+    (spherical trigonometry, common practice); six sines and cosines per pair instead of eight.
+    """
+    d_ra = np.radians(ra_b_deg - ra_a_deg)
+    dec_a, dec_b = np.radians(dec_a_deg), np.radians(dec_b_deg)
+    sin_da, cos_da = np.sin(dec_a), np.cos(dec_a)
+    sin_db, cos_db = np.sin(dec_b), np.cos(dec_b)
+    cos_dra = np.cos(d_ra)
+    e = cos_db * np.sin(d_ra)
+    n = sin_db * cos_da - cos_db * sin_da * cos_dra
+    w = sin_db * sin_da + cos_db * cos_da * cos_dra
+    chord_perp = np.hypot(e, n)
+    psi = np.arctan2(chord_perp, w)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        scale = np.where(chord_perp > 0.0, psi / chord_perp, 1.0) * _ARCSEC_PER_RAD
+    return e * scale, n * scale
 
 
 def _propagated(table: pa.Table, dt_yr: float):
@@ -488,7 +524,7 @@ def match_tile(own: pa.Table, neighbours: pa.Table, infrared: pa.Table, tile: in
     })
     chance, n_shifted = None, 0
     if s.chance_shifts > 0 and s.order is not None:
-        chance, n_shifted = _chance_matches(own, infrared, tile, s, own_pos=(ra_own, dec_own), cov_own=cov_own,
+        chance, n_shifted = _chance_matches(own, infrared, tile, s, real=c, real_pos=(ra_a, dec_a), cov_own=cov_own,
                                             ir_side=ir_side, density=density)
     return TileMatch(feats, pairs, n_own, _infrared_blend(infrared, tile, s.order, blend), chance, n_shifted)
 
@@ -526,27 +562,40 @@ def _shift_angles_deg(n: int) -> np.ndarray:
     return 45.0 + 360.0 * np.arange(n) / n
 
 
-def _chance_matches(own, infrared, tile, s: MatchSettings, *, own_pos, cov_own, ir_side, density):
-    """Match the owned sources again after shifting them: every pair found is a chance pair.
+def _chance_matches(own, infrared, tile, s: MatchSettings, *, real: PairCandidates, real_pos, cov_own, ir_side,
+                    density):
+    """Match the owned sources again after shifting them: every pair a shifted source gets is a chance pair.
 
     Only shifted positions that stay inside the tile take part, so their search discs lie inside the
     loaded infrared area (the infrared margin is at least the radius). Each shifted copy is assigned
-    one-to-one on its own (common practice for the false-match rate of shifted catalogues).
+    one-to-one together with the real pairs (``real``, positions ``real_pos``), so a shifted source wins
+    an infrared source only from whoever would compete for it on the sky: an infrared source that is the
+    counterpart of a nearby astrometric source is mostly taken by it, as it is for a real source without a
+    counterpart. Matching against the shifted catalogue (common practice for the false-match rate) without
+    that competition overestimates the chance matches where most infrared sources have a counterpart.
     """
     parts, n_shifted = [], 0
+    n_real, n_own = len(real_pos[0]), own.num_rows
     for k, angle in enumerate(_shift_angles_deg(s.chance_shifts)):
-        moved = shift_positions(own_pos[0], own_pos[1], s.chance_shift_arcsec, angle)
-        inside = np.flatnonzero(tiles.tile_of(moved.ra_deg, moved.dec_deg, s.order) == tile)
+        # copy k moves every n-th owned source, so the shifted sources add only 1/n to the density of
+        # competitors and each source is moved once
+        pick = np.arange(k, n_own, s.chance_shifts)
+        moved = shift_positions(real_pos[0][pick], real_pos[1][pick], s.chance_shift_arcsec, angle)
+        inside = pick[tiles.tile_of(moved.ra_deg, moved.dec_deg, s.order) == tile]
+        moved = shift_positions(real_pos[0][inside], real_pos[1][inside], s.chance_shift_arcsec, angle)
         n_shifted += inside.size
         if inside.size == 0:
             continue
-        ra, dec = moved.ra_deg[inside], moved.dec_deg[inside]
-        c = candidate_pairs(MatchSide(ra, dec, _take_cov(cov_own, inside)), ir_side, density, s)
-        asg = assign_pairs(c, inside.size, ambiguity_ratio=s.ambiguity_ratio)
-        blend = np.bincount(c.ib, minlength=len(ir_side.ra_deg)).astype(np.int64)
-        local = np.flatnonzero(asg.pair_index >= 0)
-        columns = _match_columns(tile, local, asg, pos=(ra, dec), sigma=c.sigma_arcsec, blend=blend)
-        part = _features(own, infrared, inside[local], asg.ib[local], columns)
+        ra, dec = moved.ra_deg, moved.dec_deg
+        shifted = candidate_pairs(MatchSide(ra, dec, _take_cov(cov_own, inside)), ir_side, density, s)
+        both = PairCandidates(*(np.concatenate([a, b]) for a, b in zip(real, shifted)))
+        both = both._replace(ia=np.concatenate([real.ia, shifted.ia + n_real]))
+        asg = assign_pairs(both, n_real + inside.size, ambiguity_ratio=s.ambiguity_ratio)
+        blend = np.bincount(both.ib, minlength=len(ir_side.ra_deg)).astype(np.int64)
+        local = np.flatnonzero(asg.pair_index[n_real:] >= 0)
+        pos = (np.concatenate([real_pos[0], ra]), np.concatenate([real_pos[1], dec]))
+        columns = _match_columns(tile, n_real + local, asg, pos=pos, sigma=both.sigma_arcsec, blend=blend)
+        part = _features(own, infrared, inside[local], asg.ib[n_real + local], columns)
         parts.append(part.append_column(CHANCE_SHIFT_COLUMN, pa.array(np.full(local.size, k, np.int64))))
     if not parts:
         none = np.zeros(0, np.int64)
@@ -611,13 +660,17 @@ class ChanceEstimate:
     Attributes
     ----------
     shifted_sources : int
-        Shifted sources that took part.
+        Shifted sources that took part (n).
     shifted_matches : int
-        Of those, how many were given a (chance) counterpart.
+        Of those, how many were given a (chance) counterpart (k).
     shifted_candidates : int
-        Of those chance pairs, how many pass the whole selection.
+        Of those chance pairs, how many pass the whole selection (k_c).
+    unmatched_sources : int
+        Owned sources without a counterpart in the real match (N − A).
+    open_sources : float
+        Sources open to a chance counterpart, those without a true one: ``N − A + F``.
     expected_matches, expected_matches_error : float
-        Expected chance counterparts among the matched sources, and its binomial standard error.
+        Expected chance counterparts F among the matched sources, and its binomial standard error.
     expected_candidates, expected_candidates_error : float
         Expected chance counterparts among the candidates, and its binomial standard error.
     """
@@ -625,6 +678,8 @@ class ChanceEstimate:
     shifted_sources: int
     shifted_matches: int
     shifted_candidates: int
+    unmatched_sources: int
+    open_sources: float
     expected_matches: float
     expected_matches_error: float
     expected_candidates: float
@@ -635,13 +690,33 @@ class ChanceEstimate:
 
     @classmethod
     def total(cls, parts) -> "ChanceEstimate":
-        """The sum over tiles; errors add in quadrature (tiles are independent)."""
-        parts = list(parts)
-        return cls(sum(p.shifted_sources for p in parts), sum(p.shifted_matches for p in parts),
-                   sum(p.shifted_candidates for p in parts), float(sum(p.expected_matches for p in parts)),
-                   float(np.sqrt(sum(p.expected_matches_error ** 2 for p in parts))),
-                   float(sum(p.expected_candidates for p in parts)),
-                   float(np.sqrt(sum(p.expected_candidates_error ** 2 for p in parts))))
+        """The sum over tiles (they are independent): expectations add, binomial variances add.
+
+        A tile without any shifted chance pair has no variance of its own; when no tile has one, the
+        error is that of one count at the pooled rate (the one-count floor of each tile, applied once
+        rather than once per tile, which would grow with the number of tiles).
+        """
+        parts = [p for p in parts if p.shifted_sources > 0]
+        if not parts:
+            return cls(0, 0, 0, 0, 0.0, 0.0, 0.0, 0.0, 0.0)
+        n = sum(p.shifted_sources for p in parts)
+        k = sum(p.shifted_matches for p in parts)
+        k_c = sum(p.shifted_candidates for p in parts)
+        var_m = sum(_binomial_variance(p.shifted_matches, p.shifted_sources)
+                    * (p.unmatched_sources / (1.0 - p.shifted_matches / p.shifted_sources) ** 2) ** 2 for p in parts)
+        var_c = sum(_binomial_variance(p.shifted_candidates, p.shifted_sources) * p.open_sources ** 2 for p in parts)
+        unmatched = sum(p.unmatched_sources for p in parts)
+        open_sources = sum(p.open_sources for p in parts)
+        err_m = float(np.sqrt(var_m)) if k else unmatched / n
+        err_c = float(np.sqrt(var_c)) if k_c else open_sources / n
+        return cls(n, k, k_c, unmatched, float(open_sources), float(sum(p.expected_matches for p in parts)), err_m,
+                   float(sum(p.expected_candidates for p in parts)), err_c)
+
+
+def _binomial_variance(k: int, n: int) -> float:
+    """Variance of the rate k/n of a binomial count (common practice)."""
+    f = k / n
+    return k * (1.0 - f) / (n * n)
 
 
 def chance_estimate(n_sources: int, n_matched: int, n_shifted: int, shifted_matches: int,
@@ -668,11 +743,13 @@ def chance_estimate(n_sources: int, n_matched: int, n_shifted: int, shifted_matc
         counterpart that passes the selection: ``F_c = f_c (N − A + F)``, with the binomial error of f_c
         (at least that of one count). All zero when nothing was shifted.
     """
+    unmatched = max(int(n_sources) - int(n_matched), 0)
     if n_shifted <= 0:
-        return ChanceEstimate(0, 0, 0, 0.0, 0.0, 0.0, 0.0)
+        return ChanceEstimate(0, 0, 0, unmatched, float(unmatched), 0.0, 0.0, 0.0, 0.0)
     m = chance_counterparts(np.ones(shifted_matches), n_shifted, n_sources, n_matched, threshold=0.5)
-    open_sources = max(n_sources - n_matched, 0) + m.expected
+    open_sources = unmatched + m.expected
     f_c = shifted_candidates / n_shifted
     f_c_error = np.sqrt(max(shifted_candidates, 1) * (1.0 - f_c)) / n_shifted
-    return ChanceEstimate(int(n_shifted), int(shifted_matches), int(shifted_candidates), float(m.expected),
-                          float(m.error), float(f_c * open_sources), float(f_c_error * open_sources))
+    return ChanceEstimate(int(n_shifted), int(shifted_matches), int(shifted_candidates), unmatched,
+                          float(open_sources), float(m.expected), float(m.error), float(f_c * open_sources),
+                          float(f_c_error * open_sources))

@@ -196,8 +196,8 @@ class MatchConfig:
                                          "its probability")
     chance_shift_arcsec: float = setting(180.0, min=10.0, max=1800.0,
                                          doc="shift of the astrometric positions for the chance-match estimate")
-    chance_shifts: int = setting(4, min=0, max=16, doc="shifted copies (position angles spread evenly); 0 = no "
-                                                       "chance-match estimate")
+    chance_shifts: int = setting(4, min=0, max=16, doc="shifted copies (position angles spread evenly), each moving "
+                                                       "every n-th source; 0 = no chance-match estimate")
 
 
 @dataclass(frozen=True)

@@ -164,7 +164,8 @@ def chance_total(cfg: Config, tiles) -> dict | None:
     for t in tiles:
         path = lay.tile_cutflow(t)
         record = json.loads(path.read_text()) if path.exists() else {}
-        if "chance" in record:
+        # a record written by an older version lacks fields: that tile's estimate is left out
+        if "chance" in record and set(record["chance"]) == set(ChanceEstimate.__dataclass_fields__):
             parts.append(ChanceEstimate(**record["chance"]))
     if not parts:
         return None
