@@ -221,6 +221,13 @@ def test_trusted_types_are_exactly_what_training_writes(tmp_path):
     for method in ("logistic", "beta"):
         result = train.train_labelled(_synthetic_config(tmp_path, calibration=method), data, log=_quiet)
         found |= set(modelfile.archive_types(modelfile.model_bytes(result.model, data.X[:100])))
+    # with the photometric-redshift part (quantile regressors) that `selector train` adds when quasars carry
+    # redshifts
+    z = np.where(data.y == 0, np.random.default_rng(3).uniform(0.5, 3.0, len(data.y)), np.nan)
+    data.table = data.table.append_column("label_redshift", pa.array(z))
+    result.model.redshift = train.fit_redshift(_synthetic_config(tmp_path, redshift_labels_min=10, max_iter=10),
+                                               data, log=_quiet).model
+    found |= set(modelfile.archive_types(modelfile.model_bytes(result.model, data.X[:100])))
     assert found == set(train.TRUSTED_TYPES)
 
 
@@ -586,3 +593,47 @@ def test_a_single_class_label_set_is_one_line(tmp_path):
     with pytest.raises(SelectorError) as e:
         train.train_labelled(_synthetic_config(tmp_path), only, log=_quiet)
     assert "one class only (quasar" in _one_line(e) and "two or more" in _one_line(e)
+def test_run_with_the_redshift_model_ranks_by_expected_luminosity(trained):
+    # `selector train` printed the held-out redshift figures and wrote them into the card
+    assert "photometric redshifts, held-out sky regions" in trained["stdout"]
+    card = json.loads((trained["model_dir"] / "quasar_classifier.card.json").read_text())
+    ev = card["redshift"]["evaluation"]
+    assert ev["rows"] > 100 and 0.0 < ev["sigma_nmad"] < 1.0 and 0.0 <= ev["outlier_fraction"] <= 1.0
+    assert (trained["model_dir"] / layout.REDSHIFT_REFERENCE_FILE).is_file()
+
+    data = tomllib.loads(trained["path"].read_text())
+    data["classifier"]["model"] = str(trained["model"])
+    data["ranking"] = {"order": "expected_luminosity"}
+    cfg = from_dict(data, trained["dir"])
+    assert run(cfg, workers=1, quiet=True, log=_quiet).ok
+    t = read_parquet(layout_of(cfg).candidates)
+    e = t.column("expected_lbol_erg_s").to_numpy()
+    finite = np.isfinite(e)
+    assert finite.sum() > 0.9 * len(e) and np.all(finite[:finite.sum()])
+    assert np.all(np.diff(e[finite]) <= 0)
+    np.testing.assert_allclose(e, t.column("p_quasar").to_numpy() * t.column("lbol_erg_s").to_numpy())
+    # a known quasar's catalogue redshift wins over the photometric one (known redshifts: 4 decimals)
+    src = np.asarray(t.column("z_source").to_pylist())
+    assert (src == "spec").sum() > 0 and set(src) <= {"spec", "photo", ""}
+    truth = trained["sky"].truth.to_pandas()
+    truth = truth[truth["catalogue"] == "astrometric"].set_index("id")
+    ids = np.asarray(t.column("astro_id").to_pylist()).astype(str)
+    z_true = truth["redshift"].reindex(ids).to_numpy(dtype=float)
+    spec = src == "spec"
+    np.testing.assert_allclose(t.column("redshift").to_numpy()[spec], z_true[spec], atol=6e-5)
+    np.testing.assert_array_equal(t.column("redshift_low").to_numpy()[spec], t.column("redshift").to_numpy()[spec])
+    # units and descriptions in the ECSV; the run's record and the report
+    from astropy.table import Table
+
+    ecsv = Table.read(layout_of(cfg).run_dir / "candidates.ecsv")
+    assert str(ecsv["lbol_erg_s"].unit) == "erg / s" and "bolometric" in ecsv["lbol_erg_s"].description
+    assert str(ecsv["min_bh_mass_msun"].unit) == "solMass"
+    prov = json.loads(layout_of(cfg).provenance.read_text())
+    assert prov["luminosities"]["ranking_order"] == "expected_luminosity"
+    assert prov["config"]["physics"]["cosmology"] == "Planck18" and "virial_calibrations" not in prov["config"]["physics"]
+    from selector.present.report import build_report
+
+    page = build_report(layout_of(cfg).run_dir)
+    assert "id='luminosities'" in page and "id='redshift-figures'" in page and "plot-luminosity_redshift" in page
+    # back to the plain run for any later test
+    run(_config(trained), workers=1, quiet=True, log=_quiet)

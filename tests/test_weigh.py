@@ -26,7 +26,7 @@ from selector.errors import ConfigError
 from selector.jobs.weigh import REASONS
 from selector.settings.config import config_hash
 from selector.store.io import read_table
-from selector.store.keys import result_config
+from selector.store.keys import result_config, selection_key
 from selector.store.layout import weigh_dir
 
 from conftest import base_config, build
@@ -242,13 +242,19 @@ def test_unknown_cosmology_is_a_one_line_config_error(tmp_path):
 
 
 def test_physics_leaves_run_provenance_alone(tmp_path):
-    # [physics] is read only by `selector weigh`: a run's recorded config and hash ignore it
+    # the virial calibrations are read only by `selector weigh`: a run's recorded config and keys ignore
+    # them; the cosmology changes the candidates' luminosities, so a run records it
     data = base_config()
     plain_cfg = build(data, tmp_path)
+    data["physics"] = {"virial_calibrations": "mgii_2011"}
+    other = build(data, tmp_path)
+    assert "virial_calibrations" not in result_config(plain_cfg)["physics"]
+    assert result_config(plain_cfg) == result_config(other)
+    assert selection_key(plain_cfg, None) == selection_key(other, None)
     data["physics"] = {"cosmology": "flat", "h0_km_s_mpc": 70.0, "omega_m": 0.3}
     other = build(data, tmp_path)
-    assert "physics" not in result_config(plain_cfg)
-    assert result_config(plain_cfg) == result_config(other)
+    assert result_config(plain_cfg) != result_config(other)
+    assert selection_key(plain_cfg, None) != selection_key(other, None)
     assert config_hash(plain_cfg, ("physics",)) != config_hash(other, ("physics",))
 
 

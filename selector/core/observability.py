@@ -411,13 +411,16 @@ def observability(ra_deg, dec_deg, grid: NightGrid, altitude_min_deg: float,
 
 # --- priorities ---------------------------------------------------------------------------------
 
-def priority_classes(score, rank, mag, steps, *, step_min: int, priority) -> np.ndarray:
+def priority_classes(score, rank, mag, steps, *, step_min: int, priority, lbol_erg_s=None,
+                     redshift=None) -> np.ndarray:
     """Priority class 1, 2 or 3 of every listed target, by the rule documented in configs/default.toml.
 
     A target is class 1 when its score is among the top ``ceil(class1_score_top_fraction × N)`` of
     the N listed targets (ties broken by rank), its magnitude is at most ``class1_mag_max`` and its
     observable hours reach ``class1_hours_min``; else class 2 under the class-2 limits; else 3. A
-    missing magnitude fails the brightness limit.
+    missing magnitude fails the brightness limit. Where ``priority`` sets
+    ``class<k>_lbol_min_erg_s`` or ``class<k>_redshift_min``, class k also needs ``lbol_erg_s`` or
+    ``redshift`` at or above it (a missing value fails).
     """
     score = np.asarray(score, float)
     n = len(score)
@@ -427,16 +430,23 @@ def priority_classes(score, rank, mag, steps, *, step_min: int, priority) -> np.
     mag = np.asarray(mag, float)
     steps = np.asarray(steps)
 
-    def meets(fraction, mag_max, hours_min):
+    physical = {"lbol_min_erg_s": lbol_erg_s, "redshift_min": redshift}
+
+    def meets(k, fraction, mag_max, hours_min):
         # a relative tolerance keeps e.g. 0.1 × 30 from rounding up to 4
         top = position < math.ceil(fraction * n * (1 - 1e-12))
         steps_min = math.ceil(hours_min * 60.0 / step_min * (1 - 1e-12))
         with np.errstate(invalid="ignore"):
-            return top & (mag <= mag_max) & (steps >= steps_min)
+            ok = top & (mag <= mag_max) & (steps >= steps_min)
+            for key, values in physical.items():
+                limit = getattr(priority, f"class{k}_{key}", None)
+                if limit is not None:
+                    ok &= np.zeros(n, bool) if values is None else np.asarray(values, float) >= limit
+        return ok
 
     out = np.full(n, 3, np.int8)
-    out[meets(priority.class2_score_top_fraction, priority.class2_mag_max, priority.class2_hours_min)] = 2
-    out[meets(priority.class1_score_top_fraction, priority.class1_mag_max, priority.class1_hours_min)] = 1
+    out[meets(2, priority.class2_score_top_fraction, priority.class2_mag_max, priority.class2_hours_min)] = 2
+    out[meets(1, priority.class1_score_top_fraction, priority.class1_mag_max, priority.class1_hours_min)] = 1
     return out
 
 

@@ -18,6 +18,11 @@ from dataclasses import dataclass
 #: names) → its column-name form. Only :func:`band_suffix` reads the values.
 INFRARED_BANDS = {"3.4": "3p4", "4.6": "4p6", "12": "12", "22": "22"}
 
+#: Effective wavelength (Å) of each infrared band, read from its label (the label is the wavelength
+#: in micron). Optical bands are named by the user, who gives their wavelength in the configuration
+#: (``wavelength_angstrom`` of a magnitude); luminosities use only bands with a known wavelength.
+INFRARED_WAVELENGTH_ANGSTROM = {band: float(band) * 1.0e4 for band in INFRARED_BANDS}
+
 
 @dataclass(frozen=True)
 class Role:
@@ -93,6 +98,9 @@ ASTROMETRIC_ROLES = (
     Role("extent_error", EXTENT_ERROR_COLUMN, "error", "mag", False, "uncertainty of the extent"),
     Role("extended_flag", ASTRO_EXTENDED_FLAG_COLUMN, "flag", None, False,
          "nonzero (or true) when the catalogue judges the source extended"),
+    Role("ebv", "ebv_mag", "value", "mag", False,
+         "Galactic reddening E(B-V) toward the source, e.g. read from a dust map; with [physics.extinction] "
+         "it dereddens magnitudes before luminosities and optical - infrared colours"),
 )
 
 INFRARED_ROLES = (
@@ -162,7 +170,9 @@ def role(catalogue: str, name: str) -> Role:
     raise KeyError(name)
 
 
-_UNIT_SUFFIXES = (("_per_sr", "1 / sr"), ("_mas_yr", "mas / yr"), ("_mas", "mas"), ("_arcsec", "arcsec"), ("_deg", "deg"),
+_UNIT_SUFFIXES = (("_per_sr", "1 / sr"), ("_erg_s", "erg / s"), ("_msun_yr", "solMass / yr"),
+                  ("_msun_day", "solMass / d"), ("_msun", "solMass"), ("_angstrom", "Angstrom"),
+                  ("_mas_yr", "mas / yr"), ("_mas", "mas"), ("_arcsec", "arcsec"), ("_deg", "deg"),
                   ("_vegamag", "mag"), ("_abmag", "mag"), ("_mag_error", "mag"), ("_mag", "mag"), ("_jyear", "yr"))
 
 

@@ -14,6 +14,7 @@ from scipy.stats import chi2 as chi2_distribution
 from selector.core import schema
 from selector.core.astrometry import zero_motion
 from selector.core.joint_motion import joint_zero_motion
+from selector.core.candidate_physics import dereddened
 from selector.core.photometry import LinearCut, apply_criteria, apply_linear_cut, vega_to_ab
 from selector.errors import SelectorError
 
@@ -309,8 +310,12 @@ def select(features: pa.Table, cfg, p_quasar: np.ndarray | ModelScores | None = 
     stage("infrared_colour", colour_ok)
     if c.optical_infrared is not None:
         oi = c.optical_infrared
-        opt = _col(features, schema.optical_mag_column(oi.optical_band))
-        ir_ab = vega_to_ab(mags[oi.infrared_band], oi.infrared_band)
+        # intrinsic colours: dereddened where the source has an E(B-V) and [physics.extinction] a coefficient
+        extinction = getattr(getattr(cfg, "physics", None), "extinction", None)
+        opt = dereddened(_col(features, schema.optical_mag_column(oi.optical_band)), features, oi.optical_band,
+                         extinction)
+        ir_ab = dereddened(vega_to_ab(mags[oi.infrared_band], oi.infrared_band), features, oi.infrared_band,
+                           extinction)
         colour = opt - ir_ab
         ok = np.isfinite(colour)
         if oi.min_mag is not None:
@@ -370,9 +375,9 @@ def candidates_table(features: pa.Table, sel: Selection) -> pa.Table:
     return sort_by_score(out)
 
 
-def rank_candidates(table: pa.Table) -> pa.Table:
-    """The merged ranked list: sorted by score (then id) with a ``rank`` column from 1."""
-    table = sort_by_score(table)
+def rank_candidates(table: pa.Table, order: str = "probability") -> pa.Table:
+    """The merged ranked list: sorted by :func:`sort_by_score` with a ``rank`` column from 1."""
+    table = sort_by_score(table, order)
     return table.add_column(0, "rank", pa.array(np.arange(1, table.num_rows + 1, dtype=np.int64)))
 
 
@@ -380,28 +385,49 @@ def rank_candidates(table: pa.Table) -> pa.Table:
 #: rounds to one), then the colour excess over the criteria boundary (redder: more secure hot dust).
 _MODEL_TIE_BREAKS = ("quasar_log_odds", "colour_excess_mag")
 
+#: Sort column of each ranking order (``ranking.order``), ahead of the probability order.
+ORDER_COLUMNS = {"probability": None, "luminosity": "lbol_erg_s", "expected_luminosity": "expected_lbol_erg_s"}
 
-def rank_keys(names) -> list[tuple[str, str]]:
+
+def rank_keys(names, order: str = "probability") -> list[tuple[str, str]]:
     """Sort keys of the ranked order for a table with these columns: best first.
 
-    With a model: ``p_quasar`` (on the sky), then ``quasar_log_odds`` (distinct where the probability
-    rounds to one), then ``colour_excess_mag``; without one, ``criteria_score``. The source id comes
-    last only so that the order is total and the bytes deterministic when every science quantity is
-    equal. NaN sorts last.
+    ``order = "probability"``: with a model, ``p_quasar`` (on the sky), then ``quasar_log_odds``
+    (distinct where the probability rounds to one), then ``colour_excess_mag``; without one,
+    ``criteria_score``. ``"luminosity"`` puts the bolometric luminosity ``lbol_erg_s`` first and
+    ``"expected_luminosity"`` the expected luminosity ``expected_lbol_erg_s`` = P(quasar) × L_bol,
+    each followed by the probability order. The source id comes last only so that the order is total
+    and the bytes deterministic when every science quantity is equal. NaN sorts last.
+
+    Raises
+    ------
+    SelectorError
+        A luminosity order for candidates without luminosities (a model without a redshift part).
     """
+    if order not in ORDER_COLUMNS:
+        raise SelectorError(f"internal error: unknown ranking order {order!r}")
     names = list(names)
     if "p_quasar" in names:
         keys = [("p_quasar", "descending")] + [(k, "descending") for k in _MODEL_TIE_BREAKS if k in names]
     else:
         keys = [("criteria_score", "descending")]
+    first = ORDER_COLUMNS[order]
+    if first is not None:
+        if first not in names:
+            raise SelectorError(f"ranking.order = {order!r} needs the column {first!r}, which the candidates lack: "
+                                "the classifier.model has no photometric-redshift part (retrain with redshifts: "
+                                "classifier.labels.redshift_column or the known objects' redshift role) or use "
+                                "ranking.order = \"probability\"")
+        keys.insert(0, (first, "descending"))
     return keys + [("astro_id", "ascending")]
 
 
-def sort_by_score(table: pa.Table) -> pa.Table:
+def sort_by_score(table: pa.Table, order: str = "probability") -> pa.Table:
     """The rows in the ranked order of :func:`rank_keys`."""
+    keys = rank_keys(table.column_names, order)
     if table.num_rows == 0:
         return table
-    return table.sort_by(rank_keys(table.column_names))
+    return table.sort_by(keys)
 
 
 def check_accounting(n_rows: int, n_rejects: int, flow: list) -> None:

@@ -81,11 +81,13 @@ import pyarrow.csv as pacsv
 import pyarrow.parquet as pq
 
 from selector.core.truth import compare
+from selector.errors import SelectorError
 from selector.jobs.ingest import ingest
 from selector.jobs.run import run
 from selector.jobs.targets import make_targets
+from selector.jobs.train import redshift_figures, train
 from selector.present.report import write_report
-from selector.settings.config import load_config
+from selector.settings.config import from_dict, load_config, plain
 from selector.store.io import read_parquet
 from selector.store.layout import layout_of, targets_dir
 
@@ -1638,8 +1640,44 @@ def evaluate_run(cfg, truth_path) -> "object":
                    whole("infrared"), COMPLETENESS, magnitude_column="opt_broad_abmag", bins=RECOVERY_BINS_ABMAG)
 
 
+#: Share of the ranked list the planted very bright quasars should reach (the acceptance line of the
+#: luminosity ranking on the mock sky).
+LUMINOUS_TOP_FRACTION = 0.01
+
+
+def luminous_ranking(cfg, truth_path) -> list[str]:
+    """Where the planted very bright quasars land in the ranked list, and the photometric redshifts'
+    figures on the candidates that are true quasars (figures of the invented sky only)."""
+    cands = read_parquet(layout_of(cfg).candidates)
+    truth = pq.read_table(truth_path).to_pandas()
+    truth = truth[truth["catalogue"] == "astrometric"].set_index("id")
+    ids = np.asarray(cands.column("astro_id").to_pylist()).astype(str)
+    pop = truth["population"].reindex(ids).to_numpy(dtype=object)
+    z_true = truth["redshift"].reindex(ids).to_numpy(dtype=float)
+    n = cands.num_rows
+    top = max(1, int(math.ceil(LUMINOUS_TOP_FRACTION * n)))
+    lines = []
+    if "z_phot" in cands.column_names:
+        qso = np.isin(pop, ["quasar", "bright_quasar"])
+        f = redshift_figures(z_true[qso], cands.column("z_phot").to_numpy(zero_copy_only=False)[qso])
+        lines.append(f"photometric redshifts of the {f['rows']:,d} candidates that are mock quasars: sigma_NMAD = "
+                     f"{f['sigma_nmad']:.3f}, outliers (|dz|/(1+z) > 0.15) {f['outlier_fraction']:.1%}")
+    bright = truth.index[truth["population"] == "bright_quasar"]
+    rank = dict(zip(ids, cands.column("rank").to_pylist()))
+    lbol = dict(zip(ids, cands.column("lbol_erg_s").to_pylist())) if "lbol_erg_s" in cands.column_names else {}
+    in_list = [b for b in bright if b in rank]
+    in_top = [b for b in in_list if rank[b] <= top]
+    lines.append(f"very bright mock quasars: {len(bright)} in the astrometric catalogue, {len(in_list)} in the list of "
+                 f"{n:,d} candidates, {len(in_top)} of those in its top {LUMINOUS_TOP_FRACTION:.0%} (rank <= {top})")
+    for b in sorted(in_list, key=lambda b: rank[b]):
+        lines.append(f"  {b}: rank {rank[b]:,d}, true z {truth.at[b, 'redshift']:.2f}, true L_bol "
+                     f"{truth.at[b, 'true_lbol_erg_s']:.2e} erg/s, estimated {lbol.get(b, float('nan')):.2e} erg/s")
+    return lines
+
+
 def run_demo(out_dir, seed: int = 1, scale: float = 1.0, workers=None, log=print):
-    """Write the mock sky and its config into ``out_dir``, ingest, run, score against the truth,
+    """Write the mock sky and its config into ``out_dir``, ingest, run, score against the truth, train
+    the classifier and the photometric-redshift model and run again ranked by expected luminosity,
     then make the follow-up list for the demo site and the HTML report."""
 
     out = pathlib.Path(out_dir)
@@ -1653,6 +1691,29 @@ def run_demo(out_dir, seed: int = 1, scale: float = 1.0, workers=None, log=print
     log("")
     log("against the mock truth (figures for this invented sky only):")
     log(report.as_text("optical broad-band AB magnitude"))
+    log("")
+    log("training the classifier and the photometric-redshift model on the mock's labels (`selector train`):")
+    try:
+        trained = train(cfg, log=log)
+    except SelectorError as exc:
+        log(f"no model ({exc}); the list stays ranked by the criteria score")
+        trained = None
+    if trained is not None and trained.redshift is not None:
+        data = plain(cfg)
+        data["classifier"]["model"] = str(trained.outputs.model)
+        data["ranking"]["order"] = "expected_luminosity"
+        cfg = from_dict(data, base_dir=cfg.base_dir)
+        log("")
+        log("running again with the model, ranked by expected luminosity P(quasar) x L_bol:")
+        result = run(cfg, workers=workers, log=log)
+        report = evaluate_run(cfg, paths["truth"])
+        log("")
+        log("against the mock truth (figures for this invented sky only):")
+        log(report.as_text("optical broad-band AB magnitude"))
+        for line in luminous_ranking(cfg, paths["truth"]):
+            log(line)
+        log(f"(to do the same: set classifier.model = \"{trained.outputs.model}\" and ranking.order = "
+            "\"expected_luminosity\" in the configuration)")
     log("")
     targets = make_targets(cfg, log=log)
     page = write_report(cfg)

@@ -28,7 +28,8 @@ from selector.core.schema import infrared_mag_column, optical_mag_column
 from selector.store.io import atomic_path
 
 __all__ = ["COLOUR_COLOUR", "COLOUR_MAGNITUDE", "PLOTS", "Plot", "PlotData", "colour_colour", "colour_magnitude",
-           "completeness_magnitude", "cutflow_funnel", "draw_png", "figure_png", "magnitude_distributions",
+           "completeness_magnitude", "cutflow_funnel", "draw_png", "figure_png", "luminosity_redshift",
+           "magnitude_distributions",
            "match_separations", "motion_statistics", "new_figure", "parallax_error", "proper_motion_plane", "render_plots",
            "score_distribution", "sky_map", "write_plots"]
 
@@ -666,6 +667,65 @@ class Plot(NamedTuple):
     draw: Callable
     caption: str
 
+
+def luminosity_redshift(candidates: dict, labelled: dict | None = None):
+    """Candidates in the luminosity–redshift plane, with the labelled quasars for reference.
+
+    Parameters
+    ----------
+    candidates : dict
+        Arrays ``redshift``, ``redshift_low``, ``redshift_high``, ``lbol_erg_s``, ``z_source``
+        (``spec``/``photo``) and ``beyond`` (bool), one value per candidate.
+    labelled : dict, optional
+        Arrays ``redshift`` and ``lbol_erg_s`` of the labelled quasars (spectroscopic redshifts).
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+        log10 L_bol against redshift: labelled quasars as a grey 2-D histogram, candidates with a
+        photometric redshift as points with their 68 % redshift interval, spectroscopic ones as
+        filled points, those more luminous than every labelled quasar ringed.
+    """
+    fig = _figure(_WIDTH_IN, 6.0)
+    ax = fig.add_subplot()
+    z = np.asarray(candidates["redshift"], float)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        logl = np.log10(np.asarray(candidates["lbol_erg_s"], float))
+    ok = np.isfinite(z) & np.isfinite(logl)
+    if labelled is not None:
+        with np.errstate(divide="ignore", invalid="ignore"):
+            lz, ll = np.asarray(labelled["redshift"], float), np.log10(np.asarray(labelled["lbol_erg_s"], float))
+        lok = np.isfinite(lz) & np.isfinite(ll)
+        if lok.any():
+            zmax = max(float(lz[lok].max()), float(z[ok].max()) if ok.any() else 0.0, 0.5)
+            lo = min(float(ll[lok].min()), float(logl[ok].min()) if ok.any() else np.inf) - 0.2
+            hi = max(float(ll[lok].max()), float(logl[ok].max()) if ok.any() else -np.inf) + 0.2
+            ax.hist2d(lz[lok], ll[lok], bins=(np.linspace(0, zmax * 1.05, 60), np.linspace(lo, hi, 60)),
+                      cmap="Greys", cmin=1, rasterized=True)
+            ax.plot([], [], "s", color="0.5", label=f"labelled quasars ({int(lok.sum()):,d}, spectroscopic z)")
+            ax.axhline(float(ll[lok].max()), color="0.4", lw=0.8, ls=":", label="most luminous labelled quasar")
+    source = np.asarray(candidates["z_source"]).astype(str)
+    photo = ok & (source == "photo")
+    spec = ok & (source == "spec")
+    stride = max(1, int(math.ceil(photo.sum() / MAX_POINTS)))
+    idx = np.flatnonzero(photo)[::stride]
+    if len(idx):
+        zl = np.asarray(candidates["redshift_low"], float)[idx]
+        zh = np.asarray(candidates["redshift_high"], float)[idx]
+        ax.errorbar(z[idx], logl[idx], xerr=np.stack([np.clip(z[idx] - zl, 0, None), np.clip(zh - z[idx], 0, None)]),
+                    fmt="o", ms=2.5, color=_CANDIDATE, ecolor=_CANDIDATE, elinewidth=0.4, alpha=0.6,
+                    label=f"candidates, photometric z with 68% interval ({int(photo.sum()):,d})")
+    if spec.any():
+        ax.plot(z[spec], logl[spec], "o", ms=4, color=_MOTION, label=f"candidates, spectroscopic z ({int(spec.sum()):,d})")
+    beyond = ok & np.asarray(candidates["beyond"], bool)
+    if beyond.any():
+        ax.plot(z[beyond], logl[beyond], "o", ms=10, mfc="none", mec="k", mew=1.2,
+                label=f"more luminous than every labelled quasar ({int(beyond.sum()):,d})")
+    ax.set_xlabel("redshift")
+    ax.set_ylabel("log10 L_bol (erg/s)")
+    ax.legend(fontsize=8, loc="lower right")
+    ax.set_title("candidates in the luminosity–redshift plane", fontsize=10)
+    return fig
 
 #: Every picture drawn from a selection, in report order. Adding one is one entry here (it then
 #: appears in ``selector tune --plots`` and in the report).

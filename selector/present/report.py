@@ -51,8 +51,8 @@ from selector.present import plots
 from selector.settings.config import SELECTION_SECTIONS, Config, plain
 from selector.store.cache import FeatureCache, find_rows, load_cache
 from selector.store.io import file_sha256, read_parquet, read_table, write_text
-from selector.store.layout import (SKY_PLOT_FILES, TRAINING_PLOT_FILES, classifier_dir, layout_of, layout_of_run,
-                                   target_full_list, target_list, targets_file)
+from selector.store.layout import (SKY_PLOT_FILES, TRAINING_PLOT_FILES, classifier_dir, labelled_luminosities, layout_of,
+                                   layout_of_run, target_full_list, target_list, targets_file)
 from selector.store.truth import TruthLabels, find_truth, load_truth
 
 __all__ = ["CANDIDATE_COLUMNS", "FIGURES", "HEADLINES", "SECTIONS", "TARGET_COLUMNS", "ReportFigure", "ReportInputs",
@@ -75,6 +75,11 @@ CANDIDATE_COLUMNS = (
     ("p_quasar", "P(quasar) on the sky", "{:.4f}"),
     ("p_quasar_labelled_mix", "P(quasar) at the labelled mix", "{:.4f}"),
     ("beyond_training", "beyond training", "{}"),
+    ("redshift", "z", "{:.2f}"),
+    ("z_source", "z from", "{}"),
+    ("lbol_erg_s", "L_bol (erg/s)", "{:.2e}"),
+    ("expected_lbol_erg_s", "P × L_bol (erg/s)", "{:.2e}"),
+    ("beyond_labelled_luminosity", "beyond labelled", "{}"),
 )
 
 #: Columns of the ranked targets table, where present (the first of each alternative found).
@@ -437,7 +442,7 @@ def _ranked_section(r: ReportInputs) -> str:
     if r.candidates.num_rows == 0:
         return "<p id='no-targets'>No candidates in this run.</p>"
     cands = r.candidates.drop(["rank"]) if "rank" in r.candidates.column_names else r.candidates
-    ranked = rank_candidates(cands).slice(0, r.top)
+    ranked = rank_candidates(cands, r.cfg.ranking.order).slice(0, r.top)
     return ("<p>The candidates in ranked order (no target list has been made from this run: "
             "<code>selector targets</code> removes known objects and those the site never sees).</p>"
             + _table_html(ranked, CANDIDATE_COLUMNS, "targets", "target"))
@@ -562,6 +567,48 @@ def _classifier_section(r: ReportInputs) -> str | None:
             + "<p>The model's held-out pictures are among the plots below.</p>")
 
 
+def _luminosity_section(r: ReportInputs) -> str | None:
+    """Redshift figures, counts and the luminosity–redshift plane, when the candidates carry luminosities."""
+    cands = r.candidates
+    if "lbol_erg_s" not in cands.column_names:
+        return None
+    lum = r.prov.get("luminosities") or {}
+    col = {name: cands.column(name).to_numpy(zero_copy_only=False) for name in
+           ("redshift", "redshift_low", "redshift_high", "lbol_erg_s", "z_source", "beyond_labelled_luminosity")}
+    source = col["z_source"].astype(str)
+    ev = lum.get("redshift_evaluation") or {}
+
+    def fig(value, fmt):
+        return "–" if value is None or (isinstance(value, float) and not np.isfinite(value)) else fmt.format(value)
+
+    rows = [("ranking order", lum.get("ranking_order", r.cfg.ranking.order)),
+            ("candidates with a spectroscopic redshift", f"{int(np.sum(source == 'spec')):,d}"),
+            ("candidates with a photometric redshift", f"{int(np.sum(source == 'photo')):,d}"),
+            ("more luminous than every labelled quasar", f"{int(np.sum(col['beyond_labelled_luminosity'])):,d}"),
+            ("most luminous labelled quasar", fig(lum.get("labelled_lbol_max_erg_s"), "{:.3e} erg/s")),
+            ("redshift model: held-out quasars", fig(ev.get("rows"), "{:,d}")),
+            ("redshift model: sigma_NMAD = 1.48 median(|dz|/(1+z))", fig(ev.get("sigma_nmad"), "{:.3f}")),
+            ("redshift model: outliers, |dz|/(1+z) > 0.15", fig(ev.get("outlier_fraction"), "{:.1%}")),
+            ("redshift model: bias, median(dz/(1+z))", fig(ev.get("bias"), "{:+.3f}")),
+            ("redshift model: true z inside the 68% interval", fig(ev.get("interval_68_coverage"), "{:.1%}"))]
+    labelled = None
+    path = labelled_luminosities(layout_of_run(r.run_dir))
+    if path.is_file():
+        t = read_parquet(path)
+        labelled = {"redshift": t.column("redshift").to_numpy(), "lbol_erg_s": t.column("lbol_erg_s").to_numpy()}
+    png = plots.figure_png(plots.luminosity_redshift(
+        {"redshift": col["redshift"], "redshift_low": col["redshift_low"], "redshift_high": col["redshift_high"],
+         "lbol_erg_s": col["lbol_erg_s"], "z_source": source, "beyond": col["beyond_labelled_luminosity"]},
+        labelled))
+    return ("<p>Photometric redshifts from the model's quantile regressors (held-out figures on labelled quasars in "
+            "sky regions the model did not see); a spectroscopic redshift wins where a known object or a recorded "
+            "outcome has one. Luminosities assume a power-law continuum under the [physics] settings.</p>"
+            + _kv_table(rows, "redshift-figures")
+            + _figure_html("luminosity_redshift", "Candidates in the luminosity–redshift plane, the labelled quasars "
+                           "for reference: the most luminous candidates sit at the top; a ringed one outshines every "
+                           "labelled quasar, so its redshift and luminosity rest on extrapolation: look at it.", png))
+
+
 class Section(NamedTuple):
     """A block of the page: its anchor, its heading (text, or a function of the inputs) and the
     function that writes its HTML (None leaves the block out)."""
@@ -576,6 +623,7 @@ SECTIONS = [
     Section("results", "Results", _results_section),
     Section("ranked", _ranked_title, _ranked_section),
     Section("classifier", "Classifier", _classifier_section),
+    Section("luminosities", "Redshifts and luminosities", _luminosity_section),
     Section("cutflow-section", "Cut-flow", _cutflow_section),
     Section("plots", "Plots", _plots_section),
     Section("provenance", "Provenance", _provenance_section),

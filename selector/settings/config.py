@@ -63,6 +63,9 @@ class MagnitudeSpec:
     system: str = setting("vega", choices=("vega", "ab"), doc="magnitude system of the column")
     vega_to_ab_mag: Optional[float] = setting(None, doc="AB − Vega offset of an optical band given in Vega (required then)")
     null_values: list[float] = setting(default_factory=tuple, doc="values meaning 'not measured' in the magnitude and error columns, e.g. [99.0]")
+    wavelength_angstrom: Optional[float] = setting(None, min=100.0, max=1.0e7,
+                                                   doc="effective wavelength of an optical band (Å), so luminosities "
+                                                       "can use it; infrared bands know theirs from the label")
 
     @classmethod
     def _from_config(cls, value, where):
@@ -262,11 +265,18 @@ class ColourConfig:
     galactic_latitude_min_deg: Optional[float] = setting(None, min=0.0, max=90.0, doc="keep |b| ≥ this")
 
 
+#: Orders of the ranked list (``ranking.order``); the luminosity orders need a model with a redshift part.
+RANKING_ORDERS = ("probability", "luminosity", "expected_luminosity")
+
+
 @dataclass(frozen=True)
 class RankingConfig:
     brightness_band: str = setting("4.6", doc="infrared band whose brightness raises the score")
     brightness_pivot_mag: float = setting(15.0, doc="magnitude at which the brightness term is zero")
     brightness_weight: float = setting(0.1, min=0.0, doc="score per magnitude brighter than the pivot")
+    order: str = setting("probability", choices=RANKING_ORDERS,
+                         doc="order of the ranked list: probability (P(quasar), else the criteria score), "
+                             "luminosity (L_bol) or expected_luminosity (P(quasar) × L_bol)")
 
 
 #: Classes a label can name (brown dwarfs are counted as stars); "other" is everything that is not a
@@ -289,6 +299,8 @@ class LabelsFileConfig:
     id_column: Optional[str] = setting(None, doc="column matched against the astrometric identifier (as text)")
     ra_column: Optional[str] = setting(None, doc="right ascension column (deg, ICRS), to match by position instead")
     dec_column: Optional[str] = setting(None, doc="declination column (deg, ICRS), to match by position instead")
+    redshift_column: Optional[str] = setting(None, doc="spectroscopic redshift column, for the photometric-redshift "
+                                                      "model (quasars only; empty or non-positive values are skipped)")
 
     def _check(self, where):
         if self.id_column is None and (self.ra_column is None or self.dec_column is None):
@@ -347,6 +359,9 @@ class ClassifierConfig:
     l2_regularization: float = setting(0.0, min=0.0, doc="L2 penalty on leaf values")
     permutation_repeats: int = setting(3, min=1, max=100, doc="shuffles per feature for permutation importances")
     threads: int = setting(1, min=0, max=1024, doc="threads for training; 0 means one per core")
+    redshift_labels_min: int = setting(100, min=10, doc="fewest labelled quasars with a redshift for `selector train` "
+                                                        "to fit the photometric-redshift model (fewer: no model, "
+                                                        "no luminosities)")
     output_folder: str = setting("model", doc="folder below project.output_dir for the model, card and evaluation")
 
     def _check(self, where):
@@ -401,6 +416,11 @@ class PriorityConfig:
                                                doc="class 2 needs a score among this top fraction")
     class2_mag_max: float = setting(15.5, doc="class 2 needs the band's magnitude ≤ this")
     class2_hours_min: float = setting(1.0, min=0.0, doc="class 2 needs at least this many observable dark hours")
+    class1_lbol_min_erg_s: Optional[float] = setting(None, min=0.0, doc="class 1 also needs L_bol ≥ this (erg/s; "
+                                                                        "needs luminosities)")
+    class2_lbol_min_erg_s: Optional[float] = setting(None, min=0.0, doc="class 2 also needs L_bol ≥ this (erg/s)")
+    class1_redshift_min: Optional[float] = setting(None, min=0.0, doc="class 1 also needs a redshift ≥ this")
+    class2_redshift_min: Optional[float] = setting(None, min=0.0, doc="class 2 also needs a redshift ≥ this")
 
 
 #: Output formats of the target list.
@@ -504,8 +524,9 @@ FLAT_COSMOLOGY = "flat"
 
 @dataclass(frozen=True)
 class PhysicsConfig:
-    """Physics after spectroscopy (`selector weigh`): cosmology, continuum, bolometric corrections,
-    radiative efficiencies, virial calibrations and extinction coefficients."""
+    """Physics of the candidates' luminosities (`selector run` with a redshift model) and after
+    spectroscopy (`selector weigh`): cosmology, continuum, bolometric corrections, radiative
+    efficiencies, virial calibrations and extinction coefficients."""
 
     cosmology: str = setting(luminosity.DEFAULT_COSMOLOGY,
                              doc="a parameter set shipped with astropy (e.g. Planck18), or 'flat' with "
@@ -523,7 +544,8 @@ class PhysicsConfig:
     virial_calibrations: str = setting(blackhole.DEFAULT_CALIBRATION_SET, choices=tuple(blackhole.CALIBRATION_SETS),
                                        doc="set of single-epoch virial-mass calibrations")
     extinction: Optional[dict[str, float]] = setting(None, min=0.0,
-                                                     doc="band → R in A_band = R · E(B−V), for later use")
+                                                     doc="band label → R in A_band = R · E(B−V), applied with the "
+                                                         "astrometric ebv role before candidate luminosities")
 
     def _check(self, where):
         flat = self.cosmology == FLAT_COSMOLOGY
@@ -593,7 +615,7 @@ class Config:
     run: RunConfig = setting(default_factory=RunConfig)
     targets: Optional[TargetsConfig] = setting(None, doc="follow-up target lists (`selector targets`)")
     physics: PhysicsConfig = setting(default_factory=PhysicsConfig,
-                                     doc="physics after spectroscopy (`selector weigh`)")
+                                     doc="luminosities of candidates and physics after spectroscopy")
     base_dir: str = setting(".", doc="folder relative paths are taken from (set by load_config)")
 
     def _check(self, where):
@@ -604,6 +626,7 @@ class Config:
         _check_selection(self)
         _check_margin(self)
         _check_position_errors(self)
+        _check_extinction(self)
         if self.targets is not None:
             _check_targets(self)
 
@@ -664,6 +687,10 @@ def _check_selection(cfg: Config) -> None:
     if cfg.ranking.brightness_band not in cfg.infrared_bands():
         raise ConfigError(f"ranking.brightness_band = {cfg.ranking.brightness_band!r} is not in "
                           f"[[infrared.magnitudes]]{suggest(cfg.ranking.brightness_band, cfg.infrared_bands())}")
+    if cfg.ranking.order != "probability" and not cfg.classifier.model:
+        raise ConfigError(f"ranking.order = {cfg.ranking.order!r} needs luminosities, which need a model with a "
+                          "redshift part: set classifier.model (train one with `selector train`) or use "
+                          "ranking.order = \"probability\"")
     if cfg.motion.fit_quality_max is not None and "fit_quality" not in cfg.astrometric.columns:
         raise ConfigError("motion.fit_quality_max is set but astrometric.columns has no fit_quality role")
     if cfg.quality.extent_snr_max is not None and not {"extent", "extent_error"} <= set(cfg.astrometric.columns):
@@ -675,7 +702,21 @@ def _check_selection(cfg: Config) -> None:
                           f"from {', '.join(sorted(known))}{suggest(bins.band, known)}")
 
 
+def _check_extinction(cfg: Config) -> None:
+    bands = set(cfg.optical_bands()) | set(cfg.infrared_bands())
+    for band in cfg.physics.extinction or {}:
+        if band not in bands:
+            raise ConfigError(f"physics.extinction names band {band!r}, which is not a band of this configuration; "
+                              f"choose from {', '.join(sorted(bands))}{suggest(band, bands)}")
+
+
 def _check_targets(cfg: Config) -> None:
+    p = cfg.targets.priority
+    physical = [k for k in ("class1_lbol_min_erg_s", "class2_lbol_min_erg_s", "class1_redshift_min",
+                            "class2_redshift_min") if getattr(p, k) is not None]
+    if physical and not cfg.classifier.model:
+        raise ConfigError(f"targets.priority.{physical[0]} needs luminosities and redshifts, which need a model with "
+                          "a redshift part: set classifier.model (train one with `selector train`) or remove the key")
     band = cfg.targets.priority.band
     known = _quantity_names(cfg)
     if band not in known:

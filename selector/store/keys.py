@@ -21,18 +21,31 @@ def digest(*parts) -> str:
     return hashlib.sha256(json.dumps(parts, sort_keys=True, separators=(",", ":")).encode()).hexdigest()
 
 
+#: Keys of ``[physics]`` that change a run's candidates (their luminosities, with a redshift model);
+#: the others (the virial calibrations) serve ``selector weigh`` only.
+RUN_PHYSICS_KEYS = ("cosmology", "h0_km_s_mpc", "omega_m", "alpha_nu", "bolometric_corrections", "efficiency_range",
+                    "extinction")
+
+
 def result_config(cfg: Config) -> dict:
-    """The configuration as recorded with results: every section except ``[run]`` and ``[physics]``.
+    """The configuration as recorded with results: every section except ``[run]``, and of ``[physics]``
+    only the keys that change a run's candidates (:data:`RUN_PHYSICS_KEYS`).
 
     How a run is executed (workers, executor, progress) never changes its results, so it is kept
     out of the hash and the record; the same selection run locally or on a cluster gives the same
-    bytes. ``[physics]`` is read only after spectroscopy (``selector weigh``, which records its own
-    hash of it), so changing a cosmology leaves a run's candidates and their provenance alone.
+    bytes. The virial calibrations are read only after spectroscopy (``selector weigh``, which
+    records its own hash of ``[physics]``), so changing them leaves a run alone.
     """
     data = plain(cfg)
     data.pop("run", None)
-    data.pop("physics", None)
+    physics = data.pop("physics", {})
+    data["physics"] = {k: physics[k] for k in RUN_PHYSICS_KEYS if k in physics}
     return data
+
+
+def run_physics_hash(cfg: Config) -> str:
+    """Digest of the ``[physics]`` keys that change a run's candidates."""
+    return digest(result_config(cfg)["physics"])
 
 
 def model_path(cfg: Config) -> Path | None:
@@ -64,7 +77,7 @@ def match_key(cfg: Config) -> str:
 
 def selection_key(cfg: Config, model_key: str | None) -> str:
     """What a tile's selection depends on besides its feature cache."""
-    return digest("selection", config_hash(cfg, SELECTION_SECTIONS), model_key, __version__)
+    return digest("selection", config_hash(cfg, SELECTION_SECTIONS), model_key, run_physics_hash(cfg), __version__)
 
 
 def table_digest(table: pa.Table) -> str:

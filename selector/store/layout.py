@@ -401,3 +401,24 @@ CHANCE_SOURCES_KEY = "chance_sources"
 def chance_file(layout: Layout, tile: int) -> Path:
     """The chance pairs of a tile's shifted-position match."""
     return layout.tile_output(tile, CHANCE_FILE)
+
+
+#: The photometric-redshift part of a model, below ``classifier.output_folder``: the labelled quasars
+#: with their redshifts and photometry (the luminosity reference), and the held-out redshift predictions.
+REDSHIFT_REFERENCE_FILE = "labelled_quasars.parquet"
+REDSHIFT_PREDICTIONS_FILE = "held_out_redshifts.parquet"
+
+
+def redshift_reference(model_path: Path) -> Path:
+    """The labelled-quasar reference beside a model file."""
+    return Path(model_path).parent / REDSHIFT_REFERENCE_FILE
+
+
+#: The labelled quasars' redshifts and luminosities under the run's ``[physics]``, in the run folder
+#: (written by the merge when the model has a redshift part), so the report needs the run folder only.
+LABELLED_LUMINOSITIES_FILE = "labelled_quasars.parquet"
+
+
+def labelled_luminosities(layout: Layout) -> Path:
+    """The labelled quasars' redshifts and luminosities beside a run's merged list."""
+    return layout.run_dir / LABELLED_LUMINOSITIES_FILE

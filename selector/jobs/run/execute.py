@@ -24,7 +24,7 @@ from selector.core import schema
 from selector.core.frames import galactic_matrix
 from selector.core.selection import check_accounting
 from selector.errors import InputError, SelectorError
-from selector.jobs.train import load_scorer
+from selector.jobs.train import load_redshifts, load_scorer
 from selector.jobs.run.plan import TilePlan, compute_plan, tile_rel
 from selector.jobs.run.tile import estimate_chance, load_and_match, select_tile
 from selector.settings.config import Config
@@ -134,12 +134,13 @@ def check_model(cfg: Config, model: tuple[str, str] | None) -> None:
 
 
 def _scorer(cfg: Config, model: tuple[str, str] | None):
+    """P(quasar) scorer and photometric-redshift predictor (or None) of the run's model, or (None, None)."""
     # one model per worker process: loading it is slow, and a worker only ever sees one run's model
     if model is None:
-        return None
+        return None, None
     if model not in _SCORERS:
         _SCORERS.clear()
-        _SCORERS[model] = load_scorer(model[0], cfg)
+        _SCORERS[model] = (load_scorer(model[0], cfg), load_redshifts(model[0], cfg))
     return _SCORERS[model]
 
 
@@ -285,7 +286,8 @@ def _work(cfg: Config, tile: int, plan: TilePlan, batch: DurableBatch) -> TileOu
         chance, n_shifted = _read_chance(lay, tile)
         out.action = "reselected"
         out.read_s, clock = out.read_s + time.perf_counter() - clock, time.perf_counter()
-    result = select_tile(cfg, tile, rows, features, _scorer(cfg, plan.model))
+    scorer, redshifts = _scorer(cfg, plan.model)
+    result = select_tile(cfg, tile, rows, features, scorer, redshifts=redshifts)
     check_accounting(result.n_rows, result.rejects.num_rows, result.cutflow)
     estimate = estimate_chance(cfg, result, chance, n_shifted=n_shifted, scorer=_scorer(cfg, plan.model))
     out.select_s, clock = time.perf_counter() - clock, time.perf_counter()

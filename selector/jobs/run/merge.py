@@ -26,6 +26,7 @@ from selector.core import schema
 from selector.core.selection import check_accounting, rank_keys
 from selector.core.tilematch import ChanceEstimate
 from selector.errors import SelectorError
+from selector.jobs.run.physics import Finisher, finisher, redshift_sources
 from selector.jobs.run.plan import ingest_summaries
 from selector.jobs.train import read_card
 from selector.settings.config import MATCH_SECTIONS, SELECTION_SECTIONS, Config, config_hash
@@ -34,7 +35,7 @@ from selector.store.io import (PARQUET_ROW_GROUP_ROWS, DurableBatch, describe_ar
                                text_cells, text_lines, text_writable, write_json, write_parquet, write_table_file,
                                write_text)
 from selector.store.keys import model_path, model_sha, result_config
-from selector.store.layout import MERGED_FILES, layout_of, merge_spool
+from selector.store.layout import MERGED_FILES, labelled_luminosities, layout_of, merge_spool
 
 
 @dataclass(frozen=True)
@@ -119,6 +120,7 @@ def provenance(cfg: Config) -> dict:
         "classifier_model_file": os.path.relpath(model, layout_of(cfg).output_dir) if model else None,
         "classifier_sky_priors": (read_card(model) or {}).get("sky_priors") if model else None,
         "input_fingerprints": {k: s["input_fingerprints"] for k, s in summaries.items()},
+        "redshift_sources": redshift_sources(cfg),
         "selector_version": __version__,
         # which whole generation of tiles the run read, by content (see store/generations.py)
         "tiles_generation": generation_digest(layout_of(cfg)),
@@ -270,10 +272,10 @@ RUN_ROWS = 1 << 18
 BLOCK_ROWS = 1 << 14
 
 
-def _rank_key(schema: pa.Schema) -> list[tuple[str, str]]:
-    # the order of rank_candidates (core.selection.rank_keys), ending with the id; ids are unique
-    # (checked), so the order is total and a merge of sorted runs gives exactly the one sort
-    return rank_keys(schema.names)
+def _rank_key(schema: pa.Schema, order: str = "probability") -> list[tuple[str, str]]:
+    # the order of rank_candidates (core.selection.rank_keys) for ranking.order, ending with the id;
+    # ids are unique (checked), so the order is total and a merge of sorted runs gives exactly the one sort
+    return rank_keys(schema.names, order)
 
 
 class _Runs:
@@ -284,8 +286,9 @@ class _Runs:
     with its own, and every block is cast to the unified schema when the runs are merged.
     """
 
-    def __init__(self, spool: Path):
+    def __init__(self, spool: Path, order: str = "probability"):
         self.spool = spool
+        self.order = order
         self.schemas: list[pa.Schema] = []
         self.pending: list[pa.Table] = []
         self.pending_rows = 0
@@ -318,7 +321,7 @@ class _Runs:
         if not parts:
             return self.schema.empty_table()
         table = pa.concat_tables(parts, promote_options="permissive")
-        return table.sort_by(_rank_key(table.schema)).combine_chunks() if table.num_rows else table
+        return table.sort_by(_rank_key(table.schema, self.order)).combine_chunks() if table.num_rows else table
 
     def spill(self) -> None:
         table = self.sorted_pending()
@@ -334,7 +337,7 @@ class _Runs:
     def merged(self):
         """Yield the candidates in rank order, in batches, with the unified schema."""
         schema = self.schema
-        key = _rank_key(schema)
+        key = _rank_key(schema, self.order)
         if not self.files:  # everything fitted in one run: sorted in memory
             table = self.sorted_pending()
             if table.num_rows:
@@ -374,9 +377,14 @@ class _Runs:
                 refill(i)
 
 
-def _streamed(cfg: Config, summaries: list[TileSummary], lay) -> tuple[_Runs, bool, int]:
-    """Read every tile's candidates once into sorted runs; whether the fast text writers apply; rows."""
-    runs = _Runs(merge_spool(lay))
+def _streamed(cfg: Config, summaries: list[TileSummary], lay,
+              finish: Finisher | None = None) -> tuple[_Runs, bool, int]:
+    """Read every tile's candidates once into sorted runs; whether the fast text writers apply; rows.
+
+    ``finish`` (models with a redshift part) adopts spectroscopic redshifts and flags candidates beyond
+    the labelled luminosities in each tile's part before it is ranked.
+    """
+    runs = _Runs(merge_spool(lay), cfg.ranking.order)
     writable = True
     ids = []
     for s in summaries:
@@ -390,6 +398,8 @@ def _streamed(cfg: Config, summaries: list[TileSummary], lay) -> tuple[_Runs, bo
         if part.num_rows != int(s.cutflow[-1][1]):
             raise SelectorError(f"internal error: {path} holds {part.num_rows} candidates but the tile's cut-flow "
                                 f"ends with {s.cutflow[-1][1]}; re-run with --force")
+        if finish is not None and part.num_rows:
+            part = finish.apply(part)
         runs.add(part)
         if not part.num_rows:
             continue
@@ -431,7 +441,8 @@ def merge(cfg: Config, summaries: list[TileSummary], prov: dict, fault=None) -> 
     spool = merge_spool(lay)
     shutil.rmtree(spool, ignore_errors=True)
     try:
-        runs, writable, n = _streamed(cfg, summaries, lay)
+        finish = finisher(cfg)
+        runs, writable, n = _streamed(cfg, summaries, lay, finish)
         texts = {"ecsv": DurableBatch(), "csv": DurableBatch(), "parquet": DurableBatch()}
         try:
             if n and writable:
@@ -450,8 +461,13 @@ def merge(cfg: Config, summaries: list[TileSummary], prov: dict, fault=None) -> 
     fault("merge:cutflow")
     rejects = sum(int(s.rejects) for s in summaries)
     rows = sum(int(s.rows) for s in summaries)
+    physics = finish.summary() if finish is not None and "z_phot" in runs.schema.names else None
+    luminosities = None if physics is None else physics.record(cfg.ranking.order)
+    if physics is not None and physics.labelled is not None:
+        write_parquet(physics.labelled, labelled_luminosities(lay))
     write_json({**prov, "tiles": len(summaries), "rows": rows, "tile_rejects": rejects,
-                "candidates": n, "cutflow": flow, "config": result_config(cfg)}, outputs["provenance"])
+                "candidates": n, "cutflow": flow, "luminosities": luminosities, "config": result_config(cfg)},
+               outputs["provenance"])
     fault("merge:provenance")
     return Merged(len(summaries), n, flow, outputs)
 

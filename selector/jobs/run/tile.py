@@ -7,6 +7,7 @@ import json
 from dataclasses import dataclass
 import pyarrow as pa
 
+from selector.core.candidate_physics import candidate_columns
 from selector.core.selection import TILE_REJECT_REASONS, candidates_table, cutflow, select, tile_rejects
 from selector.core.tiles import max_margin_arcsec
 from selector.core.tilematch import ChanceEstimate, MatchSettings, TileMatch, chance_estimate, match_tile
@@ -87,8 +88,12 @@ def estimate_chance(cfg: Config, result: TileResult, chance: pa.Table | None, *,
 
 
 def select_tile(cfg: Config, tile: int, n_rows: int, features: pa.Table, scorer=None, *,
-                pairs=None) -> TileResult:
-    """The selection half of a tile: rejects, cuts, scores, cut-flow (shared by run and tune)."""
+                pairs=None, redshifts=None) -> TileResult:
+    """The selection half of a tile: rejects, cuts, scores, cut-flow (shared by run and tune).
+
+    With ``redshifts`` (a model's photometric-redshift predictor), the candidates also get their
+    redshifts and luminosities (:func:`selector.core.candidate_physics.candidate_columns`).
+    """
     bad = tile_rejects(features)
     rejects = features.filter(pa.array(bad)).select(["astro_id"]).append_column(
         "reason", pa.array([TILE_REJECT_REASONS[0]] * int(bad.sum()), pa.string()))
@@ -96,7 +101,10 @@ def select_tile(cfg: Config, tile: int, n_rows: int, features: pa.Table, scorer=
     p = scorer(usable) if scorer is not None else None
     sel = select(usable, cfg, p)
     flow = cutflow(n_rows - int(bad.sum()), usable.num_rows, sel)
-    return TileResult(tile, n_rows, features, candidates_table(usable, sel), rejects, flow, pairs)
+    candidates = candidates_table(usable, sel)
+    if redshifts is not None:
+        candidates = candidate_columns(candidates, redshifts(candidates), cfg)
+    return TileResult(tile, n_rows, features, candidates, rejects, flow, pairs)
 
 
 def read_tile_cutflow(cfg: Config, tile: int) -> dict:

@@ -380,8 +380,10 @@ def _build_and_write(cfg: Config, plan: _Plan, record: ListRecord, *, new_only: 
     keep_obs = obs.reason == ""
     kept = todo[keep_obs]
     mag = cand.column(_band_column(tcfg.priority.band)).to_numpy(zero_copy_only=False).astype(float)
+    physical = {key: cand.column(col).to_numpy(zero_copy_only=False).astype(float)[kept]
+                for key, col in (("lbol_erg_s", "lbol_erg_s"), ("redshift", "redshift")) if col in cand.column_names}
     prio = priority_classes(score[kept], rank[kept], mag[kept], obs.steps[keep_obs], step_min=tcfg.time_step_min,
-                            priority=tcfg.priority)
+                            priority=tcfg.priority, **physical)
     # listed order: priority class, then score, then rank
     order = np.lexsort((rank[kept], -score[kept], prio))
     listed_ids = ids_text[kept[order]].tolist()

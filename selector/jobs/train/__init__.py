@@ -36,7 +36,9 @@ from selector.jobs.train.features import FeatureSpec, feature_matrix, feature_sp
 from selector.jobs.train.labels import CLASSES, QUASAR, LabelledSet, collect_labelled
 from selector.jobs.train.model import (Model, TrainOutputs, TrainResult, grouped_folds, plan_classes, score_population,
                                        train_labelled)
-from selector.jobs.train.modelfile import TRUSTED_TYPES, load_model, load_scorer, read_card, write_model_files
+from selector.jobs.train.modelfile import (TRUSTED_TYPES, load_model, load_redshifts, load_reference, load_scorer,
+                                           read_card, write_model_files)
+from selector.jobs.train.redshift import RedshiftResult, fit_redshift, redshift_figures
 from selector.jobs.train.sky import (ScoredPopulation, band_column, estimate_adjustment, list_expectation, move_proba,
                                      sky_weights)
 from selector.settings.config import Config
@@ -48,6 +50,7 @@ __all__ = [
     "FeatureSpec",
     "LabelledSet",
     "Model",
+    "RedshiftResult",
     "TrainOutputs",
     "TrainResult",
     "TrainingEvaluation",
@@ -55,11 +58,15 @@ __all__ = [
     "feature_matrix",
     "feature_specs",
     "grouped_folds",
+    "fit_redshift",
     "load_model",
+    "load_redshifts",
+    "load_reference",
     "load_scorer",
     "plan_classes",
     "purity_at_completeness",
     "read_card",
+    "redshift_figures",
     "estimate_sky",
     "train",
     "train_labelled",
@@ -91,8 +98,13 @@ def train(cfg: Config, log=print, *, run_complete: bool = True) -> TrainResult:
     result = train_labelled(cfg, data, log=log)
     log("scoring every source that passed the zero-motion test, for the sky's class proportions")
     estimate_sky(cfg, result, data, score_population(cfg, result, data), log=log)
+    result.redshift = fit_redshift(cfg, data, log=log)
+    if result.redshift is not None:
+        result.model.redshift = result.redshift.model
     write_model_files(cfg, data, result)
     log(summary_text(result.evaluation, data.summary, cfg.colours.criteria))
+    if result.redshift is not None:
+        log(result.redshift.evaluation.summary_line())
     for line in result.sky["coverage"].get("warnings", []):
         log(f"warning: {line}")
     return result

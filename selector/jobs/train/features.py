@@ -16,6 +16,7 @@ import numpy as np
 import pyarrow as pa
 
 from selector.core import schema
+from selector.core.candidate_physics import dereddened
 from selector.core.photometry import CRITERIA, vega_to_ab
 from selector.core.selection import MATCH_PROBABILITY_COLUMN, infrared_mags, match_method, select
 from selector.settings.config import Config
@@ -161,9 +162,12 @@ def feature_matrix(table: pa.Table, cfg: Config, names=None, statistics=None) ->
         _, plx_snr, chi2 = zero_motion(table, cfg)
     else:
         plx_snr, chi2 = statistics
+    # optical − infrared colours are intrinsic: dereddened with the source's E(B-V) where known
+    extinction = cfg.physics.extinction
     ir_ab = {}
     for b in cfg.infrared_bands():
-        ir_ab[_ir_suffix(b)] = vega_to_ab(_column(table, schema.infrared_mag_column(b)), b)
+        ir_ab[_ir_suffix(b)] = dereddened(vega_to_ab(_column(table, schema.infrared_mag_column(b)), b), table, b,
+                                          extinction)
     excess = {}
     wanted = {_excess_name(n): c for n, c in _criteria(cfg).items()}
     if any(name in wanted for name in names):
@@ -185,7 +189,8 @@ def feature_matrix(table: pa.Table, cfg: Config, names=None, statistics=None) ->
                 values = _column(table, f"ir_{a}_vegamag") - _column(table, f"ir_{b}_vegamag")
             elif name.startswith("opt_") and name.endswith("_abmag") and "_minus_ir_" in name:
                 o, b = name[4:-6].split("_minus_ir_")
-                values = _column(table, schema.optical_mag_column(o)) - ir_ab.get(b, np.nan)
+                values = dereddened(_column(table, schema.optical_mag_column(o)), table, o, extinction) - ir_ab.get(
+                    b, np.nan)
             elif name.startswith("opt_") and name.endswith("_mag") and "_minus_" in name:
                 a, b = name[4:-4].split("_minus_")
                 values = _column(table, schema.optical_mag_column(a)) - _column(table, schema.optical_mag_column(b))
@@ -209,5 +214,9 @@ def feature_settings(cfg: Config) -> dict:
     dict
         ``parallax_zero_point_mas`` and ``error_inflation`` of ``[motion]`` (the card's JSON content).
     """
-    return {"parallax_zero_point_mas": cfg.motion.parallax_zero_point_mas,
-            "error_inflation": cfg.motion.error_inflation}
+    out = {"parallax_zero_point_mas": cfg.motion.parallax_zero_point_mas,
+           "error_inflation": cfg.motion.error_inflation}
+    if "ebv" in cfg.astrometric.columns and cfg.physics.extinction:
+        # the optical − infrared colours are dereddened with these coefficients
+        out["extinction"] = dict(sorted(cfg.physics.extinction.items()))
+    return out

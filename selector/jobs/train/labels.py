@@ -97,6 +97,8 @@ class LabelSource:
         Rows read and dropped, for the card.
     tiles : numpy.ndarray or None
         Tile of each positional label.
+    redshift : numpy.ndarray or None
+        Spectroscopic redshift of each label (NaN where none), for the photometric-redshift model.
     """
 
     name: str
@@ -107,30 +109,48 @@ class LabelSource:
     dec_deg: np.ndarray | None = None
     summary: dict = field(default_factory=dict)
     tiles: np.ndarray | None = None
+    redshift: np.ndarray | None = None
 
 
-def _id_source(name: str, rank: int, ids, raw_class, *, class_map: dict, extra=None) -> LabelSource:
+def _redshifts(values, n: int) -> np.ndarray:
+    """Redshifts as float64, NaN where missing, not a number or not positive (no redshift column: all NaN)."""
+    if values is None:
+        return np.full(n, np.nan)
+    if not isinstance(values, (pa.Array, pa.ChunkedArray)):
+        values = pa.array(values)
+    if pa.types.is_string(values.type) or pa.types.is_large_string(values.type):
+        values = pc.if_else(pc.fill_null(pc.match_substring_regex(values, _NUMBER), False), values,
+                            pa.scalar(None, values.type))
+    z = pc.fill_null(pc.cast(values, pa.float64()), np.nan).to_numpy(zero_copy_only=False).astype(np.float64)
+    with np.errstate(invalid="ignore"):
+        return np.where(np.isfinite(z) & (z > 0.0), z, np.nan)
+
+
+def _id_source(name: str, rank: int, ids, raw_class, *, class_map: dict, extra=None, redshift=None) -> LabelSource:
     label, dropped = map_classes(raw_class, class_map)
+    z = _redshifts(redshift, len(label))
     text = _text(ids)
     valid = text != ""
     invalid = int((~valid & (label >= 0)).sum())
     keep = valid & (label >= 0)
-    text, label = text[keep], label[keep]
+    text, label, z = text[keep], label[keep], z[keep]
     # the same id twice: one label if they agree, none if they disagree
     order = np.lexsort((label, text))
-    text, label = text[order], label[order]
+    text, label, z = text[order], label[order], z[order]
     first = np.r_[True, text[1:] != text[:-1]] if len(text) else np.zeros(0, bool)
     start = np.flatnonzero(first)
     agree = np.minimum.reduceat(label, start) == np.maximum.reduceat(label, start) if len(start) else np.zeros(0, bool)
     n_disagree = int((~agree).sum())
-    text, label = text[start][agree], label[start][agree]
+    text, label, z = text[start][agree], label[start][agree], z[start][agree]
     summary = {"rows": int(len(keep)), "dropped_unknown_class": dropped, "dropped_missing_id": invalid,
                "dropped_inconsistent_duplicates": n_disagree, **(extra or {})}
-    return LabelSource(name, rank, label, ids=pa.array(text.tolist(), pa.string()), summary=summary)
+    return LabelSource(name, rank, label, ids=pa.array(text.tolist(), pa.string()), summary=summary, redshift=z)
 
 
-def _position_source(name: str, rank: int, ra, dec, raw_class, *, class_map: dict, order: int) -> LabelSource:
+def _position_source(name: str, rank: int, ra, dec, raw_class, *, class_map: dict, order: int,
+                     redshift=None) -> LabelSource:
     label, dropped = map_classes(raw_class, class_map)
+    z = _redshifts(redshift, len(label))
     ra = np.asarray(ra, np.float64)
     dec = np.asarray(dec, np.float64)
     valid = np.isfinite(ra) & np.isfinite(dec) & (np.abs(dec) <= 90.0)
@@ -138,7 +158,7 @@ def _position_source(name: str, rank: int, ra, dec, raw_class, *, class_map: dic
     keep = valid & (label >= 0)
     ra, dec, label = np.mod(ra[keep], 360.0), dec[keep], label[keep]
     summary = {"rows": int(len(keep)), "dropped_unknown_class": dropped, "dropped_invalid_position": invalid}
-    src = LabelSource(name, rank, label, ra_deg=ra, dec_deg=dec, summary=summary)
+    src = LabelSource(name, rank, label, ra_deg=ra, dec_deg=dec, summary=summary, redshift=z[keep])
     src.tiles = tiles.tile_of(ra, dec, order) if len(ra) else np.zeros(0, np.int64)
     return src
 
@@ -187,30 +207,36 @@ def label_sources(cfg: Config) -> list[LabelSource]:
         t = history.training_labels(cfg)
         if t.num_rows:
             sources.append(_id_source("follow-up outcomes", 0, t.column("astro_id"), t.column("label"),
-                                      class_map=c.class_map))
+                                      class_map=c.class_map, redshift=t.column("redshift")))
     if c.labels is not None:
         lf = c.labels
         path = cfg.path(lf.file)
         what = "labelled file named in classifier.labels.file"
+        z_cols = [lf.redshift_column] if lf.redshift_column else []
         if lf.id_column is not None:
-            table, _ = read_table(path, [lf.id_column, lf.class_column], lf.format, what=what)
+            table, _ = read_table(path, [lf.id_column, lf.class_column, *z_cols], lf.format, what=what)
             sources.append(_id_source(f"labelled file {lf.file}", 1, table.column(lf.id_column),
-                                      table.column(lf.class_column), class_map=c.class_map))
+                                      table.column(lf.class_column), class_map=c.class_map,
+                                      redshift=table.column(lf.redshift_column) if z_cols else None))
         else:
-            table, units = read_table(path, [lf.ra_column, lf.dec_column, lf.class_column], lf.format, what=what)
+            table, units = read_table(path, [lf.ra_column, lf.dec_column, lf.class_column, *z_cols], lf.format,
+                                      what=what)
             ra = _as_degrees(path, lf.ra_column, table.column(lf.ra_column), units.get(lf.ra_column))
             dec = _as_degrees(path, lf.dec_column, table.column(lf.dec_column), units.get(lf.dec_column))
             sources.append(_position_source(f"labelled file {lf.file}", 1, ra, dec, table.column(lf.class_column),
-                                            class_map=c.class_map, order=order))
+                                            class_map=c.class_map, order=order,
+                                            redshift=table.column(lf.redshift_column) if z_cols else None))
     if c.use_known and cfg.known is not None:
         path = layout_of(cfg).known_objects
         if not path.exists():
             raise SelectorError(f"{path}: not found; run `selector ingest --config ...` first (or set "
                                 "classifier.use_known = false)")
-        t = read_parquet(path, columns=["ra_deg", "dec_deg", "known_class"])
+        z_cols = ["redshift"] if "redshift" in cfg.known.columns else []
+        t = read_parquet(path, columns=["ra_deg", "dec_deg", "known_class", *z_cols])
         sources.append(_position_source("known objects", 2, t.column("ra_deg").to_numpy(zero_copy_only=False),
                                         t.column("dec_deg").to_numpy(zero_copy_only=False),
-                                        t.column("known_class"), class_map=c.class_map, order=order))
+                                        t.column("known_class"), class_map=c.class_map, order=order,
+                                        redshift=t.column("redshift") if z_cols else None))
     if not sources:
         raise SelectorError("no labels for training: name a labelled file in [classifier.labels], or ingest a [known] "
                             "catalogue with classifier.use_known = true, or record follow-up outcomes")
@@ -358,7 +384,7 @@ def collect_labelled(cfg: Config) -> LabelledSet:
         parts.append((sub, X, passed))
         for s, rows, lab_idx, sep in per_source:
             assign.append((offset + np.searchsorted(keep, rows), np.full(len(rows), s.rank), lab_idx,
-                           s.label[lab_idx], sep))
+                           s.label[lab_idx], sep, s.redshift[lab_idx]))
         offset += len(keep)
     if not parts:
         raise SelectorError("no labelled source matched the feature cache; check the labels' identifiers or positions "
@@ -368,6 +394,7 @@ def collect_labelled(cfg: Config) -> LabelledSet:
     passed = np.concatenate([p[2] for p in parts])
     row, rank, lab_idx, label = (np.concatenate([a[i] for a in assign]).astype(np.int64) for i in range(4))
     sep = np.concatenate([a[4] for a in assign]).astype(np.float64)
+    zs = np.concatenate([a[5] for a in assign]).astype(np.float64)
     # a positional label names one source: its nearest, across tiles too
     positional = np.zeros(max(s.rank for s in sources) + 1, bool)
     positional[[s.rank for s in sources if s.ids is None]] = True
@@ -377,14 +404,19 @@ def collect_labelled(cfg: Config) -> LabelledSet:
     first[1:] = (rank[o][1:] != rank[o][:-1]) | (lab_idx[o][1:] != lab_idx[o][:-1])
     drop = np.zeros(len(row), bool)
     drop[o[~first]] = by_pos[o[~first]]
-    row, rank, label = row[~drop], rank[~drop], label[~drop]
+    row, rank, label, zs = row[~drop], rank[~drop], label[~drop], zs[~drop]
     # per source row: the highest-precedence label; disagreements are counted
     o = np.lexsort((rank, row))
-    row, rank, label = row[o], rank[o], label[o]
+    row, rank, label, zs = row[o], rank[o], label[o], zs[o]
     head = np.r_[True, row[1:] != row[:-1]] if len(row) else np.zeros(0, bool)
     start = np.flatnonzero(head)
     conflicts = int(np.sum(np.minimum.reduceat(label, start) != np.maximum.reduceat(label, start))) if len(start) else 0
     final_row, final_rank, final_label = row[start], rank[start], label[start]
+    # a quasar's redshift: the first given in order of precedence by a source that also calls it a quasar
+    with_z = np.where(np.isfinite(zs) & (label == QUASAR), np.arange(len(row)), len(row))
+    first_z = np.minimum.reduceat(with_z, start) if len(start) else np.zeros(0, np.int64)
+    final_z = np.where((first_z < len(row)) & (final_label == QUASAR),
+                       np.append(zs, np.nan)[np.minimum(first_z, len(row))], np.nan)
 
     summary_sources = {}
     for s in sources:
@@ -399,6 +431,7 @@ def collect_labelled(cfg: Config) -> LabelledSet:
     table = table.append_column("label", pa.array([CLASSES[k] for k in y], pa.string()))
     table = table.append_column("label_source", pa.array([by_rank[r] for r in final_rank[passed[final_row]]],
                                                          pa.string()))
+    table = table.append_column("label_redshift", pa.array(final_z[passed[final_row]], pa.float64()))
     X = X[use]
     grouping = group_order(cfg)
     t = table.column("tile").to_numpy(zero_copy_only=False).astype(np.int64)
@@ -409,6 +442,7 @@ def collect_labelled(cfg: Config) -> LabelledSet:
         "sources": summary_sources,
         "precedence": [s.name for s in sorted(sources, key=lambda s: s.rank)],
         "conflicting_labels": conflicts,
+        "quasars_with_redshift": int(np.sum(np.isfinite(final_z[passed[final_row]]))),
         "labelled_but_failing_zero_motion": failing,
         "brown_dwarfs": "counted as stars",
     }

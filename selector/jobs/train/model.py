@@ -256,11 +256,13 @@ class Model:
     novelty : NoveltyModel, optional
     card : dict, optional
         The model card (JSON content), once written or read.
+    redshift : RedshiftModel, optional
+        The photometric-redshift part (:mod:`selector.jobs.train.redshift`), when one was fitted.
     """
 
     def __init__(self, estimator, calibration: OneVsRestCalibrator, feature_names, classes, *,
                  priors: PriorAdjustment | None = None, novelty: NoveltyModel | None = None,
-                 card: dict | None = None):
+                 card: dict | None = None, redshift=None):
         self.estimator = estimator
         self.calibration = calibration
         self.feature_names = list(feature_names)
@@ -268,6 +270,7 @@ class Model:
         self.priors = priors
         self.novelty = novelty
         self.card = card or {}
+        self.redshift = redshift
 
     def decisions(self, X: np.ndarray) -> np.ndarray:
         """Calibrated log-odds of every class at the labelled mix, shape (rows, classes)."""
@@ -445,6 +448,9 @@ class TrainResult:
         Fold of every kept labelled row.
     sky : dict
         The sky estimate's account for the card and the summary (set by :func:`selector.jobs.train.train`).
+    redshift : RedshiftResult or None
+        The photometric-redshift model and its held-out figures (:mod:`selector.jobs.train.redshift`),
+        when fitted.
     """
 
     model: Model
@@ -455,6 +461,7 @@ class TrainResult:
     held_out_proba: np.ndarray | None = None
     fold: np.ndarray | None = None
     sky: dict = field(default_factory=dict)
+    redshift: object | None = None
 
 
 def train_labelled(cfg: Config, data: LabelledSet, log=print) -> TrainResult:

@@ -26,20 +26,23 @@ from selector.core.selection import ModelScores
 from selector.jobs.train.features import feature_settings, feature_specs
 from selector.jobs.train.labels import CLASSES, LabelledSet
 from selector.jobs.train.model import Model, TrainOutputs, TrainResult
+from selector.jobs.train.redshift import RedshiftModel, redshift_predictor
 from selector.jobs.train.sky import PriorAdjustment
 from selector.settings.config import MATCH_SECTIONS, Config, config_hash, plain
-from selector.store.io import atomic_path, write_json, write_parquet
-from selector.store.layout import EVALUATION_FILE, MODEL_FILE, PREDICTIONS_FILE, card_path, classifier_dir
+from selector.store.io import atomic_path, file_sha256, read_parquet, write_json, write_parquet
+from selector.store.layout import (EVALUATION_FILE, MODEL_FILE, PREDICTIONS_FILE, REDSHIFT_PREDICTIONS_FILE,
+                                   REDSHIFT_REFERENCE_FILE, card_path, classifier_dir, redshift_reference)
 
-__all__ = ["TRUSTED_TYPES", "archive_types", "build_bundle", "load_model", "load_scorer", "model_bytes",
-           "model_from_bundle", "read_card", "write_model_files"]
+__all__ = ["TRUSTED_TYPES", "archive_types", "build_bundle", "load_model", "load_redshifts", "load_reference",
+           "load_scorer", "model_bytes", "model_from_bundle", "read_card", "write_model_files"]
 
 _CARD_FORMAT = "selector-classifier-card"
 _BUNDLE_FORMAT = "selector-classifier"
 _FORMAT_VERSION = 2
 
 #: Every type a model archive may hold: exactly what ``selector train`` writes (the boosting model,
-#: its binning and loss objects, numpy arrays and scalars, plain containers). The calibration maps,
+#: its binning and loss objects, the photometric-redshift part's quantile regressors with their
+#: pinball loss, numpy arrays and scalars, plain containers). The calibration maps,
 #: the sky adjustment and the novelty model are stored as plain numpy arrays, never as objects of
 #: their own. Anything else in a file is refused before any object is built from it.
 TRUSTED_TYPES = (
@@ -51,11 +54,15 @@ TRUSTED_TYPES = (
     "numpy.random._generator.Generator",
     "numpy.uint64",
     "sklearn._loss._loss.CyHalfMultinomialLoss",
+    "sklearn._loss._loss.CyPinballLoss",
+    "sklearn._loss.link.IdentityLink",
     "sklearn._loss.link.Interval",
     "sklearn._loss.link.MultinomialLogit",
     "sklearn._loss.loss.HalfMultinomialLoss",
+    "sklearn._loss.loss.PinballLoss",
     "sklearn.ensemble._hist_gradient_boosting.binning._BinMapper",
     "sklearn.ensemble._hist_gradient_boosting.gradient_boosting.HistGradientBoostingClassifier",
+    "sklearn.ensemble._hist_gradient_boosting.gradient_boosting.HistGradientBoostingRegressor",
     "sklearn.ensemble._hist_gradient_boosting.predictor.TreePredictor",
     "sklearn.preprocessing._label.LabelEncoder",
 )
@@ -149,7 +156,8 @@ def _bundle(model: Model) -> dict:
     """The archive's content: named estimators and named groups of plain arrays (room for more of each)."""
     return {"format": _BUNDLE_FORMAT, "format_version": str(_FORMAT_VERSION), "classes": list(model.classes),
             "features": list(model.feature_names),
-            "estimators": {"classifier": model.estimator},
+            "estimators": {"classifier": model.estimator,
+                           **({} if model.redshift is None else model.redshift.named_estimators())},
             "arrays": {"calibration": _calibration_arrays(model.calibration),
                        "sky_priors": model.priors.to_arrays(),
                        "novelty": model.novelty.to_arrays()}}
@@ -160,7 +168,8 @@ def model_from_bundle(bundle: dict, card: dict | None = None) -> Model:
     arrays = bundle["arrays"]
     return Model(bundle["estimators"]["classifier"], _calibration_from_arrays(arrays["calibration"]),
                  bundle["features"], bundle["classes"], priors=PriorAdjustment.from_arrays(arrays["sky_priors"]),
-                 novelty=NoveltyModel.from_arrays(arrays["novelty"]), card=card)
+                 novelty=NoveltyModel.from_arrays(arrays["novelty"]), card=card,
+                 redshift=RedshiftModel.from_named(bundle["estimators"], bundle["features"]))
 
 
 def _versions() -> dict:
@@ -200,10 +209,23 @@ def model_bytes(model: Model, probe: np.ndarray) -> bytes:
     back = model_from_bundle(build_bundle(data, Path("(new model)")))
     if not all(np.array_equal(a, b, equal_nan=True) for a, b in zip(back.scores(probe), model.scores(probe))):
         raise SelectorError("internal error: the written model does not reproduce the trained model's predictions")
+    if (back.redshift is None) != (model.redshift is None) or (model.redshift is not None and not np.array_equal(
+            np.stack(back.redshift.predict(probe)), np.stack(model.redshift.predict(probe)))):
+        raise SelectorError("internal error: the written model does not reproduce the trained model's redshifts")
     return data
 
 
-def _card(cfg: Config, data: LabelledSet, result: TrainResult, sha256: str) -> dict:
+def _redshift_card(result: TrainResult, reference_sha256: str | None) -> dict | None:
+    if result.redshift is None:
+        return None
+    return {"kind": "quantile gradient boosting (scikit-learn), percentiles 16, 50, 84 sorted per row; the "
+                    "classifier's features; quasars with spectroscopic redshifts only",
+            "evaluation": result.redshift.evaluation.to_dict(),
+            "reference_file": REDSHIFT_REFERENCE_FILE, "reference_sha256": reference_sha256}
+
+
+def _card(cfg: Config, data: LabelledSet, result: TrainResult, sha256: str,
+          reference_sha256: str | None = None) -> dict:
     e = result.evaluation
     best = e.best_criterion
     return {
@@ -273,6 +295,7 @@ def _card(cfg: Config, data: LabelledSet, result: TrainResult, sha256: str) -> d
                  "meaning": "mean P(quasar) on the sky over the list a run with this model and config makes"}
                 if e.sky else None),
         },
+        "redshift": _redshift_card(result, reference_sha256),
         "config_hash": config_hash(cfg),
         "match_config_hash": config_hash(cfg, MATCH_SECTIONS),
         "classifier_config": plain(cfg)["classifier"],
@@ -347,7 +370,8 @@ def _check_bundle(bundle, path: Path) -> None:
               and groups["calibration"]["abc"].shape == (len(classes), 3)
               and arrays(groups["sky_priors"], ("classes", "train", "sky", "band", "edges_mag"))
               and groups["sky_priors"]["sky"].shape[-1] == len(classes)
-              and arrays(groups["novelty"], ("center", "scale", "reference")))
+              and arrays(groups["novelty"], ("center", "scale", "reference"))
+              and RedshiftModel.named_ok(bundle["estimators"], len(bundle["features"])))
     except (KeyError, TypeError, AttributeError):
         ok = False
     if not ok:
@@ -445,10 +469,13 @@ def _check_features(card: dict, cfg: Config, path: Path) -> None:
             parts.append(f"this config adds {', '.join(extra)}, which it was not trained on")
         raise SelectorError(f"{path}: refused: the model's features do not match this configuration ({'; '.join(parts)}); "
                             "retrain with `selector train` or use the config it was trained with")
-    for key, value in feature_settings(cfg).items():
+    want_settings = feature_settings(cfg)
+    for key in sorted(set(want_settings) | ({"extinction"} & set(settings))):
+        value = want_settings.get(key)
         if settings.get(key) != value:
-            raise SelectorError(f"{path}: refused: trained with motion.{key} = {settings.get(key)!r}, this config has "
-                                f"{value!r}; the zero-motion features would mean something else, so retrain")
+            where = "physics.extinction (with the ebv role)" if key == "extinction" else f"motion.{key}"
+            raise SelectorError(f"{path}: refused: trained with {where} = {settings.get(key)!r}, this config has "
+                                f"{value!r}; the features would mean something else, so retrain")
 
 
 def _check_sky_settings(model: Model, cfg: Config, path: Path) -> None:
@@ -475,6 +502,77 @@ def _check_sky_settings(model: Model, cfg: Config, path: Path) -> None:
 _LOADED: dict = {}
 
 
+def _loaded(path, cfg: Config) -> Model:
+    """The model of ``path``, read once per process and file version, checked against ``cfg`` on every call."""
+    p = Path(path).resolve()
+    try:
+        st = p.stat()
+        cst = card_path(p).stat()
+        key = (str(p), st.st_mtime_ns, st.st_size, cst.st_mtime_ns, cst.st_size)
+    except OSError:
+        key = None
+    model = _LOADED.get(key) if key else None
+    if model is None:
+        model = load_model(p, cfg)
+        if key:
+            _LOADED.clear()
+            _LOADED[key] = model
+    else:
+        _check_features(model.card, cfg, p)
+        _check_sky_settings(model, cfg, p)
+    return model
+
+
+def load_redshifts(path, cfg: Config):
+    """A function giving photometric redshifts of candidate rows, or None when the model has no redshift part.
+
+    Parameters
+    ----------
+    path : str or pathlib.Path
+        The model file.
+    cfg : Config
+
+    Returns
+    -------
+    callable or None
+        ``predict(table) -> selector.core.candidate_physics.Redshifts``.
+    """
+    model = _loaded(path, cfg)
+    return None if model.redshift is None else redshift_predictor(model.redshift, cfg)
+
+
+def load_reference(path) -> pa.Table | None:
+    """The labelled quasars (id, redshift, photometry) written beside a model with a redshift part.
+
+    Parameters
+    ----------
+    path : str or pathlib.Path
+        The model file; its card names the reference and its SHA-256.
+
+    Returns
+    -------
+    pyarrow.Table or None
+        None when the model has no redshift part.
+
+    Raises
+    ------
+    SelectorError
+        The card is unreadable, or the reference is missing or differs from the one the card describes.
+    """
+    cpath = card_path(Path(path))
+    card = read_card(path)
+    if card is None:
+        raise SelectorError(f"{cpath}: not a readable model card; retrain with `selector train`")
+    part = card.get("redshift")
+    if not part:
+        return None
+    ref = redshift_reference(Path(path))
+    if not ref.is_file() or file_sha256(ref) != part.get("reference_sha256"):
+        raise SelectorError(f"{ref}: missing, or not the labelled-quasar reference the model card {cpath.name} "
+                            "describes; retrain with `selector train`")
+    return read_parquet(ref)
+
+
 def load_scorer(path, cfg: Config) -> Callable[[pa.Table], ModelScores]:
     """A function giving the model's scores of feature-cache rows (NaN for rows failing the zero-motion test).
 
@@ -493,22 +591,7 @@ def load_scorer(path, cfg: Config) -> Callable[[pa.Table], ModelScores]:
         ``scorer(table) -> ModelScores``: P(quasar) on the sky and at the labelled mix, the sky
         log-odds, the novelty distance and the beyond-training flag.
     """
-    p = Path(path).resolve()
-    try:
-        st = p.stat()
-        cst = card_path(p).stat()
-        key = (str(p), st.st_mtime_ns, st.st_size, cst.st_mtime_ns, cst.st_size)
-    except OSError:
-        key = None
-    model = _LOADED.get(key) if key else None
-    if model is None:
-        model = load_model(p, cfg)
-        if key:
-            _LOADED.clear()
-            _LOADED[key] = model
-    else:
-        _check_features(model.card, cfg, p)
-        _check_sky_settings(model, cfg, p)
+    model = _loaded(path, cfg)
 
     def scorer(table: pa.Table) -> ModelScores:
         return model.score_table(table, cfg)
@@ -535,13 +618,21 @@ def write_model_files(cfg: Config, data: LabelledSet, result: TrainResult) -> Tr
     """
     out = classifier_dir(cfg)
     archive = model_bytes(result.model, data.X[: min(len(data.X), 2000)])
-    card = _card(cfg, data, result, hashlib.sha256(archive).hexdigest())
+    reference_sha = None
+    if result.redshift is not None:
+        write_parquet(result.redshift.reference, out / REDSHIFT_REFERENCE_FILE)
+        write_parquet(result.redshift.held_out, out / REDSHIFT_PREDICTIONS_FILE)
+        reference_sha = file_sha256(out / REDSHIFT_REFERENCE_FILE)
+    card = _card(cfg, data, result, hashlib.sha256(archive).hexdigest(), reference_sha)
     outputs = TrainOutputs(model=out / MODEL_FILE, card=card_path(out / MODEL_FILE), evaluation=out / EVALUATION_FILE,
                            predictions=out / PREDICTIONS_FILE, plots=[])
     with atomic_path(outputs.model) as tmp:
         tmp.write_bytes(archive)
     write_json(card, outputs.card)
-    write_json(result.evaluation.to_dict(), outputs.evaluation)
+    evaluation = result.evaluation.to_dict()
+    if result.redshift is not None:
+        evaluation["redshift"] = result.redshift.evaluation.to_dict()
+    write_json(evaluation, outputs.evaluation)
     write_parquet(result.held_out, outputs.predictions)
     result.model.card = card
     result.outputs = outputs
