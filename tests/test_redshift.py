@@ -183,3 +183,23 @@ def test_interval_brackets_the_median_and_beyond_labelled_flags_the_brightest(tm
     flag = cp.beyond_labelled(lb, [lb[1], np.nan])
     assert flag.tolist() == [False, False, True]
     assert not cp.beyond_labelled(lb, []).any()
+
+
+# --- priority rules on luminosity and redshift --------------------------------------------------------
+
+def test_priority_classes_can_ask_for_luminosity_and_redshift():
+    from selector.core.observability import priority_classes
+    from selector.settings.config import PriorityConfig
+
+    n = 6
+    score, rank = np.linspace(1.0, 0.5, n), np.arange(1, n + 1)
+    mag, steps = np.full(n, 12.0), np.full(n, 60)
+    lbol = np.array([1e45, 1e47, 5e46, np.nan, 2e47, 1e46])
+    z = np.array([3.0, 0.5, 2.5, 3.0, 2.2, 1.0])
+    p = PriorityConfig(class1_score_top_fraction=1.0, class2_score_top_fraction=1.0, class1_lbol_min_erg_s=4e46,
+                       class1_redshift_min=2.0, class2_lbol_min_erg_s=1e46)
+    got = priority_classes(score, rank, mag, steps, step_min=10, priority=p, lbol_erg_s=lbol, redshift=z)
+    # class 1: L >= 4e46 and z >= 2 (rows 3 and 5); class 2: L >= 1e46; a missing L fails both
+    assert got.tolist() == [3, 2, 1, 3, 1, 2]
+    # without luminosities the limits cannot be met
+    assert set(priority_classes(score, rank, mag, steps, step_min=10, priority=p).tolist()) == {3}

@@ -1661,7 +1661,9 @@ def luminous_ranking(cfg, truth_path) -> list[str]:
         qso = np.isin(pop, ["quasar", "bright_quasar"])
         f = redshift_figures(z_true[qso], cands.column("z_phot").to_numpy(zero_copy_only=False)[qso])
         lines.append(f"photometric redshifts of the {f['rows']:,d} candidates that are mock quasars: sigma_NMAD = "
-                     f"{f['sigma_nmad']:.3f}, outliers (|dz|/(1+z) > 0.15) {f['outlier_fraction']:.1%}")
+                     f"{f['sigma_nmad']:.3f}, outliers (|dz|/(1+z) > 0.15) {f['outlier_fraction']:.1%} (not held "
+                     "out: the demo's labels are the mock's truth, which includes them; `selector train` printed "
+                     "the held-out figures above)")
     bright = truth.index[truth["population"] == "bright_quasar"]
     rank = dict(zip(ids, cands.column("rank").to_pylist()))
     lbol = dict(zip(ids, cands.column("lbol_erg_s").to_pylist())) if "lbol_erg_s" in cands.column_names else {}
@@ -1723,5 +1725,5 @@ def run_demo(out_dir, seed: int = 1, scale: float = 1.0, workers=None, log=print
     log(f"follow-up list for the demo site: {targets.outputs.get('ecsv', targets_dir(cfg))}")
     log(f"report: {page}")
     log("next: `selector tune --config {0} --set motion.parallax_snr_max=4`, or `selector train --config {0}` "
-        "and set classifier.model".format(out / "demo.toml"))
+        "and set classifier.model (and ranking.order) yourself".format(out / "demo.toml"))
     return result, report
