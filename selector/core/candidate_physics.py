@@ -214,31 +214,14 @@ class _Photometry:
         return np.where(np.isfinite(dist), value, np.nan)
 
 
-#: Every column :func:`luminosity_columns` writes: name → (unit, description).
-COLUMNS: dict[str, tuple[str | None, str]] = {
-    "redshift": (None, "adopted redshift: spectroscopic where known, else the photometric median"),
-    "redshift_low": (None, "16th percentile of the adopted redshift (equal to it when spectroscopic)"),
-    "redshift_high": (None, "84th percentile of the adopted redshift (equal to it when spectroscopic)"),
-    "z_source": (None, "spec (a known object's or a follow-up outcome's redshift), photo (the model) or empty"),
-    "distance_modulus_mag": ("mag", "5 log10(d_L / 10 pc) at the adopted redshift, [physics] cosmology"),
-    "absmag_z2_abmag": ("mag", "absolute magnitude normalised at z = 2 (Richards et al. 2006), power-law "
-                               "K-correction with [physics].alpha_nu, in the reference band"),
-    **{f"lamL{w}{part}_erg_s": ("erg / s", f"rest-frame lambda L_lambda at {w} Angstrom{what}, from the "
-                                           "observed band nearest (1+z) x " + f"{w} Angstrom")
-       for w in _WAVELENGTHS for part, what in (("", ""), ("_low", ", low end of the redshift interval"),
-                                                ("_high", ", high end of the redshift interval"))},
-    "lbol_erg_s": ("erg / s", "bolometric luminosity BC x lambda L_lambda ([physics].bolometric_corrections)"),
-    "lbol_low_erg_s": ("erg / s", "bolometric luminosity, low end over the redshift interval"),
-    "lbol_high_erg_s": ("erg / s", "bolometric luminosity, high end over the redshift interval"),
-    "lbol_from_angstrom": ("Angstrom", "rest wavelength of the lambda L_lambda behind lbol_erg_s: the one whose "
-                                       "nearest band needs the shortest extrapolation"),
-    "min_bh_mass_msun": ("solMass", "smallest black-hole mass at or below its Eddington limit, L_bol / L_Edd(1 Msun)"),
-    "mdot_low_msun_yr": ("solMass / yr", "accretion rate L_bol / (eta c^2) at the highest efficiency of "
-                                         "[physics].efficiency_range"),
-    "mdot_high_msun_yr": ("solMass / yr", "accretion rate at the lowest efficiency of [physics].efficiency_range"),
-    "mdot_low_msun_day": ("solMass / d", "mdot_low_msun_yr per day"),
-    "mdot_high_msun_day": ("solMass / d", "mdot_high_msun_yr per day"),
-}
+#: Every column :func:`luminosity_columns` writes, in order (units in the names; descriptions, UCDs and
+#: written precision in :mod:`selector.core.columns`).
+COLUMNS: tuple[str, ...] = (
+    "redshift", "redshift_low", "redshift_high", "z_source", "distance_modulus_mag", "absmag_z2_abmag",
+    *(f"lamL{w}{part}_erg_s" for w in _WAVELENGTHS for part in ("", "_low", "_high")),
+    "lbol_erg_s", "lbol_low_erg_s", "lbol_high_erg_s", "lbol_from_angstrom", "min_bh_mass_msun",
+    "mdot_low_msun_yr", "mdot_high_msun_yr", "mdot_low_msun_day", "mdot_high_msun_day",
+)
 
 
 def luminosity_columns(table: pa.Table, redshifts: Redshifts, *, bands, physics) -> dict[str, np.ndarray]:
@@ -259,7 +242,7 @@ def luminosity_columns(table: pa.Table, redshifts: Redshifts, *, bands, physics)
     Returns
     -------
     dict of numpy.ndarray
-        Every key of :data:`COLUMNS`, in its order, one value per row (NaN where unknown).
+        Every name of :data:`COLUMNS`, in its order, one value per row (NaN where unknown).
     """
     n = table.num_rows
     cosmology = grid_cosmology(physics.astropy_cosmology())
@@ -335,17 +318,9 @@ def beyond_labelled(lbol_erg_s, labelled_lbol_erg_s) -> np.ndarray:
         return np.isfinite(lbol) & (lbol > reference.max())
 
 
-#: Every column a candidate list gains from a model with a redshift part: name → (unit, description).
-CANDIDATE_COLUMNS: dict[str, tuple[str | None, str]] = {
-    "z_phot": (None, "photometric redshift: median of the model's distribution"),
-    "z_phot_low": (None, "photometric redshift: 16th percentile"),
-    "z_phot_high": (None, "photometric redshift: 84th percentile"),
-    **COLUMNS,
-    "expected_lbol_erg_s": ("erg / s", "expected bolometric luminosity P(quasar) x L_bol (ranking.order = "
-                                       "expected_luminosity)"),
-    "beyond_labelled_luminosity": (None, "true where L_bol exceeds that of every labelled quasar (the model has "
-                                         "seen nothing as luminous: look at it, do not trust it blindly)"),
-}
+#: Every column a candidate list gains from a model with a redshift part, in order.
+CANDIDATE_COLUMNS: tuple[str, ...] = ("z_phot", "z_phot_low", "z_phot_high", *COLUMNS, "expected_lbol_erg_s",
+                                      "beyond_labelled_luminosity")
 
 
 def _p_quasar(table: pa.Table) -> np.ndarray:

@@ -164,6 +164,45 @@ COLUMNS: dict[str, ColumnDoc] = {
                                  "the model extrapolates (the source is kept)", "meta.code"),
     "passes_colour_criteria": ColumnDoc("true where the infrared colours pass the configured published criteria "
                                         "(a reference column when the classifier decides)", "meta.code"),
+    # --- redshifts and luminosities (a model with a redshift part; core/candidate_physics.py) ---------
+    "z_phot": ColumnDoc("photometric redshift: median of the model's distribution", "src.redshift.phot;stat.median",
+                        P.probability),
+    "z_phot_low": ColumnDoc("photometric redshift: 16th percentile", "src.redshift.phot;stat.min", P.probability),
+    "z_phot_high": ColumnDoc("photometric redshift: 84th percentile", "src.redshift.phot;stat.max", P.probability),
+    "redshift": ColumnDoc("adopted redshift: spectroscopic where a known object or a recorded outcome has one, else "
+                          "the photometric median", "src.redshift", P.probability),
+    "redshift_low": ColumnDoc("16th percentile of the adopted redshift (equal to it when spectroscopic)",
+                              "src.redshift;stat.min", P.probability),
+    "redshift_high": ColumnDoc("84th percentile of the adopted redshift (equal to it when spectroscopic)",
+                               "src.redshift;stat.max", P.probability),
+    "z_source": ColumnDoc("where the adopted redshift comes from: spec, photo, or empty when there is none",
+                          "meta.code;src.redshift"),
+    "distance_modulus_mag": ColumnDoc("distance modulus 5 log10(d_L / 10 pc) at the adopted redshift, in the "
+                                      "[physics] cosmology", "phot.mag.distMod", P.magnitude),
+    "absmag_z2_abmag": ColumnDoc("absolute magnitude normalised at z = 2 (Richards et al. 2006), power law "
+                                 "K correction with [physics].alpha_nu, in the band nearest 7500 Angstrom",
+                                 "phys.magAbs", P.magnitude),
+    "lbol_erg_s": ColumnDoc("bolometric luminosity BC x lambda L_lambda ([physics].bolometric_corrections) at the "
+                            "adopted redshift", "phys.luminosity"),
+    "lbol_low_erg_s": ColumnDoc("bolometric luminosity, low end over the redshift interval",
+                                "phys.luminosity;stat.min"),
+    "lbol_high_erg_s": ColumnDoc("bolometric luminosity, high end over the redshift interval",
+                                 "phys.luminosity;stat.max"),
+    "lbol_from_angstrom": ColumnDoc("rest wavelength of the lambda L_lambda behind lbol_erg_s: the one whose "
+                                    "nearest measured band needs the shortest extrapolation", "em.wl"),
+    "min_bh_mass_msun": ColumnDoc("smallest black-hole mass at or below its Eddington limit, L_bol / L_Edd(1 Msun)",
+                                  "phys.mass;stat.min"),
+    "mdot_low_msun_yr": ColumnDoc("accretion rate L_bol / (eta c^2) at the highest efficiency of "
+                                  "[physics].efficiency_range", "arith.rate;phys.mass"),
+    "mdot_high_msun_yr": ColumnDoc("accretion rate L_bol / (eta c^2) at the lowest efficiency of "
+                                   "[physics].efficiency_range", "arith.rate;phys.mass"),
+    "mdot_low_msun_day": ColumnDoc("mdot_low_msun_yr per day", "arith.rate;phys.mass"),
+    "mdot_high_msun_day": ColumnDoc("mdot_high_msun_yr per day", "arith.rate;phys.mass"),
+    "expected_lbol_erg_s": ColumnDoc("expected bolometric luminosity P(quasar) x L_bol (ranking.order = "
+                                     "expected_luminosity)", "phys.luminosity;stat.mean"),
+    "beyond_labelled_luminosity": ColumnDoc("true where L_bol exceeds that of every labelled quasar: the model has "
+                                            "seen nothing as luminous, so look at it rather than trust it",
+                                            "meta.code;phys.luminosity"),
     # --- target lists --------------------------------------------------------------------------
     "name": ColumnDoc("short name of the target: targets.name_prefix, a hyphen and a base-32 hash of astro_id",
                       "meta.id"),
@@ -216,6 +255,9 @@ _IR_MAG = re.compile(r"^ir_([0-9p]+)_vegamag$")
 _IR_ERR = re.compile(r"^ir_([0-9p]+)_mag_error$")
 
 
+_LAMBDA_L = re.compile(r"^lamL(\d+)(|_low|_high)_erg_s$")
+
+
 def describe(column: str) -> ColumnDoc | None:
     """The description, UCD and written precision of an output column; None for an unknown name.
 
@@ -229,6 +271,13 @@ def describe(column: str) -> ColumnDoc | None:
         a, b = m.groups()
         return ColumnDoc(f"correlation coefficient of {a} and {b} in the astrometric solution", "stat.correlation",
                          P.probability)
+    if m := _LAMBDA_L.match(column):
+        wavelength, part = m.groups()
+        band = "em.UV" if int(wavelength) < 3800 else "em.opt"
+        what = {"": "", "_low": ", low end over the redshift interval", "_high": ", high end over the redshift interval"}
+        stat = {"": "", "_low": ";stat.min", "_high": ";stat.max"}
+        return ColumnDoc(f"rest-frame lambda L_lambda at {wavelength} Angstrom{what[part]}, from the measured band "
+                         f"nearest (1+z) x {wavelength} Angstrom along a power law", f"phys.luminosity;{band}{stat[part]}")
     if m := _OPT_MAG.match(column):
         return ColumnDoc(f"optical magnitude in the band '{m.group(1)}' (AB)", "phot.mag;em.opt", P.magnitude)
     if m := _OPT_ERR.match(column):
