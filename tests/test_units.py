@@ -34,7 +34,7 @@ ASTROMETRIC_UNITS = {
     "parallax": ("arcsec", "uas"), "parallax_error": ("deg", "uas"),
     "pmra": ("arcsec / yr", "mas / d"), "pmdec": ("mas / d", "arcsec / yr"),
     "pmra_error": ("arcsec / yr", "deg / yr"), "pmdec_error": ("mas / d", "uas / yr"),
-    "fit_quality": ("%", "%"), "extent": ("mmag", "mag"), "extent_error": ("mag", "mmag"),
+    "fit_quality": ("%", "%"), "extent": ("mmag", "mag"), "extent_error": ("mag", "mmag"), "ebv": ("mmag", "mag"),
 }
 INFRARED_UNITS = {"ra": ("hourangle", "rad"), "dec": ("arcmin", "rad"), "position_error": ("mas", "deg")}
 
