@@ -289,7 +289,7 @@ def _work(cfg: Config, tile: int, plan: TilePlan, batch: DurableBatch) -> TileOu
     scorer, redshifts = _scorer(cfg, plan.model)
     result = select_tile(cfg, tile, rows, features, scorer, redshifts=redshifts)
     check_accounting(result.n_rows, result.rejects.num_rows, result.cutflow)
-    estimate = estimate_chance(cfg, result, chance, n_shifted=n_shifted, scorer=_scorer(cfg, plan.model))
+    estimate = estimate_chance(cfg, result, chance, n_shifted=n_shifted, scorer=scorer)
     out.select_s, clock = time.perf_counter() - clock, time.perf_counter()
     tile_prov = {"tile": tile, "match_key": plan.match_key, "selection_key": plan.selection_key,
                  "selector_version": __version__}
