@@ -633,7 +633,7 @@ def test_run_with_the_redshift_model_ranks_by_expected_luminosity(trained):
     assert prov["config"]["physics"]["cosmology"] == "Planck18" and "virial_calibrations" not in prov["config"]["physics"]
     from selector.present.report import build_report
 
-    page = build_report(layout_of(cfg).run_dir)
+    page = build_report(run_dir=layout_of(cfg).run_dir)
     assert "id='luminosities'" in page and "id='redshift-figures'" in page and "plot-luminosity_redshift" in page
     # back to the plain run for any later test
     run(_config(trained), workers=1, quiet=True, log=_quiet)

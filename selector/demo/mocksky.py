@@ -87,9 +87,10 @@ from selector.jobs.run import run
 from selector.jobs.targets import make_targets
 from selector.jobs.train import redshift_figures, train
 from selector.present.report import write_report
+from selector.present.training_plots import write_training_plots
 from selector.settings.config import from_dict, load_config, plain
 from selector.store.io import read_parquet
-from selector.store.layout import layout_of, targets_dir
+from selector.store.layout import classifier_dir, layout_of, targets_dir
 
 __all__ = [
     "ASTROMETRIC_EPOCH_JYEAR",
@@ -1697,6 +1698,7 @@ def run_demo(out_dir, seed: int = 1, scale: float = 1.0, workers=None, log=print
     log("training the classifier and the photometric-redshift model on the mock's labels (`selector train`):")
     try:
         trained = train(cfg, log=log)
+        trained.outputs.plots = write_training_plots(trained.evaluation, classifier_dir(cfg))
     except SelectorError as exc:
         log(f"no model ({exc}); the list stays ranked by the criteria score")
         trained = None
