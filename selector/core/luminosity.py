@@ -114,7 +114,7 @@ def cosmology_from_settings(name: str | None = None, h0_km_s_mpc: float | None =
         Used when neither ``h0_km_s_mpc`` nor ``omega_m`` is given; defaults to
         :data:`DEFAULT_COSMOLOGY` (Planck Collaboration 2020, A&A 641, A6).
     h0_km_s_mpc, omega_m : float, optional
-        Hubble constant (km/s/Mpc) and matter density of a flat ΛCDM model; give both, and no name.
+        Expansion rate today, H0 (km/s/Mpc), and matter density of a flat ΛCDM model; give both, and no name.
 
     Returns
     -------

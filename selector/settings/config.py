@@ -532,7 +532,7 @@ class PhysicsConfig:
                              doc="a parameter set shipped with astropy (e.g. Planck18), or 'flat' with "
                                  "h0_km_s_mpc and omega_m")
     h0_km_s_mpc: Optional[float] = setting(None, min=0.0, min_exclusive=True, max=200.0,
-                                           doc="Hubble constant of the 'flat' cosmology, km/s/Mpc")
+                                           doc="expansion rate today (H0) of the 'flat' cosmology, km/s/Mpc")
     omega_m: Optional[float] = setting(None, min=0.0, max=1.0, doc="matter density of the 'flat' cosmology")
     alpha_nu: float = setting(luminosity.DEFAULT_ALPHA_NU, min=-5.0, max=5.0,
                               doc="power-law index of the continuum f_nu ∝ nu^alpha_nu, for K-corrections")
