@@ -221,6 +221,11 @@ def test_trusted_types_are_exactly_what_training_writes(tmp_path):
     for method in ("logistic", "beta"):
         result = train.train_labelled(_synthetic_config(tmp_path, calibration=method), data, log=_quiet)
         found |= set(modelfile.archive_types(modelfile.model_bytes(result.model, data.X[:100])))
+    # a two-class model (quasar against everything else) uses the binomial loss
+    other = train.CLASSES.index("other")
+    two = _relabel(data, {0: 0, 1: other, 2: other})
+    two_class = train.train_labelled(_synthetic_config(tmp_path), two, log=_quiet)
+    found |= set(modelfile.archive_types(modelfile.model_bytes(two_class.model, two.X[:100])))
     # with the photometric-redshift part (quantile regressors) that `selector train` adds when quasars carry
     # redshifts
     z = np.where(data.y == 0, np.random.default_rng(3).uniform(0.5, 3.0, len(data.y)), np.nan)
@@ -561,6 +566,7 @@ def test_quasar_against_everything_else_trains(tmp_path):
     p = result.model.scores(data.X[:50]).p_quasar
     assert np.all((p >= 0) & (p <= 1))
     assert result.evaluation.classes == ("quasar", "other")
+    modelfile.model_bytes(result.model, data.X[:100])  # a two-class model can be written (and read back)
 
 
 def test_a_small_class_is_merged_or_dropped_with_one_line_each(tmp_path):
