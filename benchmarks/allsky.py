@@ -230,7 +230,7 @@ def sky_chunk(rng, positions, first_astro_id: int, first_ir_id: int, n: int):
     pmdec = np.where(extragalactic, 0.0, rng.normal(-2.5, 1.0, n) * spread / 4.0 + rng.normal(0.0, spread))
     astro = pa.table({
         "src": np.arange(first_astro_id, first_astro_id + n, dtype=np.int64),
-        "ra": ra, "dec": dec,
+        "ra": ra, "dec": dec, "ra_err": 0.7 * err, "dec_err": 0.7 * err,
         "plx": plx + rng.normal(0.0, err), "plx_err": err,
         "pm_ra": pmra + rng.normal(0.0, 0.8 * err), "pm_dec": pmdec + rng.normal(0.0, 0.8 * err),
         "pm_ra_err": 0.8 * err, "pm_dec_err": 0.8 * err,
@@ -316,6 +316,8 @@ chunk_rows = 1000000
 id = "src"
 ra = {{ column = "ra", unit = "deg" }}
 dec = {{ column = "dec", unit = "deg" }}
+ra_error = {{ column = "ra_err", unit = "mas" }}
+dec_error = {{ column = "dec_err", unit = "mas" }}
 parallax = {{ column = "plx", unit = "mas" }}
 parallax_error = {{ column = "plx_err", unit = "mas" }}
 pmra = {{ column = "pm_ra", unit = "mas / yr" }}
