@@ -574,20 +574,33 @@ def _chance_matches(own, infrared, tile, s: MatchSettings, *, real: PairCandidat
     counterpart. Matching against the shifted catalogue (common practice for the false-match rate) without
     that competition overestimates the chance matches where most infrared sources have a counterpart.
     """
-    parts, n_shifted = [], 0
+    parts = []
     n_real, n_own = len(real_pos[0]), own.num_rows
+    copies, ra_parts, dec_parts = [], [], []
     for k, angle in enumerate(_shift_angles_deg(s.chance_shifts)):
         # copy k moves every n-th owned source, so the shifted sources add only 1/n to the density of
         # competitors and each source is moved once
         pick = np.arange(k, n_own, s.chance_shifts)
         moved = shift_positions(real_pos[0][pick], real_pos[1][pick], s.chance_shift_arcsec, angle)
-        inside = pick[tiles.tile_of(moved.ra_deg, moved.dec_deg, s.order) == tile]
-        moved = shift_positions(real_pos[0][inside], real_pos[1][inside], s.chance_shift_arcsec, angle)
-        n_shifted += inside.size
+        stays = tiles.tile_of(moved.ra_deg, moved.dec_deg, s.order) == tile
+        copies.append(pick[stays])
+        ra_parts.append(moved.ra_deg[stays])
+        dec_parts.append(moved.dec_deg[stays])
+    inside_all = np.concatenate(copies)
+    n_shifted = int(inside_all.size)
+    if n_shifted:
+        # one pair search for every copy at once (each source's pairs depend on its own position alone),
+        # cut into the copies below: the search is most of the estimate's cost
+        ra_all, dec_all = np.concatenate(ra_parts), np.concatenate(dec_parts)
+        found = candidate_pairs(MatchSide(ra_all, dec_all, _take_cov(cov_own, inside_all)), ir_side, density, s)
+        bounds = np.cumsum([0] + [c.size for c in copies])
+        cut = np.searchsorted(found.ia, bounds)  # the pairs come sorted by their astrometric index
+    for k, inside in enumerate(copies):
         if inside.size == 0:
             continue
-        ra, dec = moved.ra_deg, moved.dec_deg
-        shifted = candidate_pairs(MatchSide(ra, dec, _take_cov(cov_own, inside)), ir_side, density, s)
+        lo, hi, first = cut[k], cut[k + 1], bounds[k]
+        shifted = PairCandidates(*(x[lo:hi] for x in found))._replace(ia=found.ia[lo:hi] - first)
+        ra, dec = ra_all[first:first + inside.size], dec_all[first:first + inside.size]
         both = PairCandidates(*(np.concatenate([a, b]) for a, b in zip(real, shifted)))
         both = both._replace(ia=np.concatenate([real.ia, shifted.ia + n_real]))
         asg = assign_pairs(both, n_real + inside.size, ambiguity_ratio=s.ambiguity_ratio)
