@@ -29,7 +29,7 @@ def _disc(tile: int, order: int) -> tuple[np.ndarray, float]:
 
 
 def _disc_filter(decoded: DecodedTile, tile: int, order: int, margin_arcsec: float,
-                 columns: list[str] | None = None) -> pa.Table:
+                 columns: list[str] | None = None) -> tuple[pa.Table, str | None]:
     """Keep rows within the tile's circumscribed disc grown by the margin (``columns`` only, if given).
 
     A cheap necessary condition for lying within the margin of the tile: it drops most of each
@@ -42,10 +42,13 @@ def _disc_filter(decoded: DecodedTile, tile: int, order: int, margin_arcsec: flo
                              "configuration, run `selector ingest --config ...` again")
     table = decoded.table if columns is None else decoded.table.select(columns)
     if table.num_rows == 0:
-        return table
+        return table, None
     centre, reach = _disc(int(tile), int(order))
     cos_limit = np.cos(min(np.pi, reach + margin_arcsec / _ARCSEC_PER_RAD))
-    return table.filter(pa.array(decoded.xyz @ centre >= cos_limit))
+    rows = np.flatnonzero(decoded.xyz @ centre >= cos_limit)
+    if rows.size == 0:
+        return table.slice(0, 0), None
+    return table.take(pa.array(rows)), decoded.part_digest(rows, columns)
 
 
 class LoadedTile(NamedTuple):
@@ -107,10 +110,11 @@ def load_tile(cfg: Config, tile: int, on_input=None, *, cache: TileCache | None 
     Parameters
     ----------
     on_input : callable, optional
-        Called as ``on_input(catalogue, tile_id, path, part, decoded)`` for every tile file
-        consulted, with the rows taken from it (``None`` when the file does not exist) and the
-        :class:`~selector.store.tilecache.DecodedTile` read (its SHA-256, size and time); the batch
-        runner uses it to record exactly what a tile's result depends on.
+        Called as ``on_input(catalogue, tile_id, path, part, decoded, digest)`` for every tile file
+        consulted, with the rows taken from it (``None`` when the file does not exist), the
+        :class:`~selector.store.tilecache.DecodedTile` read (its SHA-256, size and time) and the
+        digest of the rows and columns used (None when no row is); the batch runner uses it to
+        record exactly what a tile's result depends on.
     cache : TileCache, optional
         Where decoded files are kept between tiles (one per worker); a fresh one by default, so
         each file is still read once for this tile.
@@ -133,7 +137,7 @@ def load_tile(cfg: Config, tile: int, on_input=None, *, cache: TileCache | None 
         raise InputError(f"{own_path}: cannot read (no such file); run `selector ingest --config ...` again")
     own = own_file.table
     report = on_input or (lambda *args: None)
-    report("astrometric", tile, own_path, own, own_file)
+    report("astrometric", tile, own_path, own, own_file, own_file.part_digest() if own.num_rows else None)
     dt = abs(cfg.epoch_difference_yr)
     r = cfg.match.radius_arcsec
     ir_margin = default_ir_margin_arcsec(cfg, own) if ir_margin_arcsec is None else float(ir_margin_arcsec)
@@ -143,15 +147,15 @@ def load_tile(cfg: Config, tile: int, on_input=None, *, cache: TileCache | None 
     for t in tiles.tiles_near(tile, order, ir_margin):
         path = lay.tile_file("infrared", order, int(t))
         decoded = cache.get(path)
-        part = None
+        part = digest = None
         if decoded.exists:
             # the prior of every pair follows the density of its infrared source's own tile, counted from
             # that tile's rows alone, so every tile that loads the source gives it the same prior; it is
             # reported with the rows, so the record of what the tile used changes when the density does
             density = _tile_density(decoded, order)
-            part = _disc_filter(decoded, tile, order, ir_margin)
+            part, digest = _disc_filter(decoded, tile, order, ir_margin)
             part = part.append_column(DENSITY_COLUMN, pa.array(np.full(part.num_rows, density)))
-        report("infrared", int(t), path, part, decoded)
+        report("infrared", int(t), path, part, decoded, digest)
         if part is not None:
             ir_parts.append(part)
     neighbour_columns = _neighbour_columns(cfg)
@@ -163,10 +167,11 @@ def load_tile(cfg: Config, tile: int, on_input=None, *, cache: TileCache | None 
         decoded = cache.get(path)
         if decoded.exists:
             # neighbours only compete for counterparts: positions, motions and their errors are all we need
-            neighbour_parts.append(_disc_filter(decoded, tile, order, astro_margin, neighbour_columns))
-            report("astrometric", int(t), path, neighbour_parts[-1], decoded)
+            part, digest = _disc_filter(decoded, tile, order, astro_margin, neighbour_columns)
+            neighbour_parts.append(part)
+            report("astrometric", int(t), path, part, decoded, digest)
         else:
-            report("astrometric", int(t), path, None, decoded)
+            report("astrometric", int(t), path, None, decoded, None)
     infrared = _concat(ir_parts) if ir_parts else _empty_infrared(cfg)
     neighbours = _concat(neighbour_parts) if neighbour_parts else own.select(neighbour_columns).slice(0, 0)
     return LoadedTile(own, neighbours, infrared, LoadedArea(centre, reach, ir_margin, astro_margin))

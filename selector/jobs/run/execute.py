@@ -29,7 +29,7 @@ from selector.jobs.run.plan import TilePlan, compute_plan, tile_rel
 from selector.jobs.run.tile import estimate_chance, load_and_match, select_tile
 from selector.settings.config import Config
 from selector.store.io import DurableBatch, read_parquet, write_json, write_parquet
-from selector.store.keys import combined_digest, model_sha, table_digest
+from selector.store.keys import combined_digest, model_sha
 from selector.store.layout import CHANCE_SOURCES_KEY, chance_file, layout_of
 from selector.store.lock import close_inherited_lock
 from selector.store.tilecache import TileCache
@@ -234,7 +234,7 @@ def _work(cfg: Config, tile: int, plan: TilePlan, batch: DurableBatch) -> TileOu
     if mode in ("compute", "check"):
         consulted, digests, files = {}, {}, {}
 
-        def on_input(kind, t, path, part, decoded):
+        def on_input(kind, t, path, part, decoded, digest):
             rel = tile_rel(cfg, kind, t)
             consulted[rel] = part is not None
             if part is None:
@@ -243,8 +243,8 @@ def _work(cfg: Config, tile: int, plan: TilePlan, batch: DurableBatch) -> TileOu
             files[rel] = (rel, decoded.sha256, decoded.size, decoded.mtime_ns)
             if t == tile and kind == "astrometric" or kind == "infrared":
                 _check_columns(cfg, kind, path, part)
-            if part.num_rows:
-                digests[rel] = table_digest(part)
+            if digest is not None:
+                digests[rel] = digest
 
         try:
             loaded, m = load_and_match(cfg, tile, on_input, cache=TILE_CACHE)
