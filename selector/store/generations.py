@@ -19,7 +19,7 @@ import os
 import shutil
 from pathlib import Path
 
-from selector.store.io import file_sha256, write_text
+from selector.store.io import file_sha256, sync_files, write_text
 from selector.store.keys import digest
 from selector.store.layout import LEGACY_CATALOGUES, Layout, generation_name, generations
 
@@ -39,16 +39,13 @@ def fsync_dir(folder: Path) -> None:
 
 
 def sync_tree(folder: Path) -> None:
-    """fsync every file, then every folder (deepest first), below ``folder``."""
-    dirs = []
-    for root, _, files in os.walk(folder):
+    """Make every file below ``folder`` durable (:func:`~selector.store.io.sync_files`), then every
+    folder, deepest first."""
+    dirs, files = [], []
+    for root, _, names in os.walk(folder):
         dirs.append(root)
-        for name in files:
-            fd = os.open(os.path.join(root, name), os.O_RDONLY)
-            try:
-                os.fsync(fd)
-            finally:
-                os.close(fd)
+        files.extend(os.path.join(root, name) for name in names)
+    sync_files(files)
     for root in reversed(dirs):
         fsync_dir(Path(root))
 

@@ -8,6 +8,7 @@ and VOTable are read through astropy (FITS memory-mapped) and handed out in chun
 
 from __future__ import annotations
 
+import ctypes
 import errno
 import glob
 import hashlib
@@ -15,6 +16,7 @@ import io
 import json
 import os
 import shutil
+import sys
 import tempfile
 import time
 import warnings
@@ -453,13 +455,66 @@ def fsync_folder(folder: Path) -> None:
         os.close(fd)
 
 
+def _syncfs():
+    # Linux's syncfs(2): one flush (and one journal commit) for a whole file system
+    if not sys.platform.startswith("linux"):
+        return None
+    try:
+        return ctypes.CDLL(None, use_errno=True).syncfs
+    except (OSError, AttributeError):
+        return None
+
+
+_SYNCFS = _syncfs()
+
+
+def _fsync_each(paths) -> None:
+    for path in paths:
+        fd = os.open(path, os.O_RDONLY)
+        try:
+            os.fsync(fd)
+        finally:
+            os.close(fd)
+
+
+def sync_files(paths) -> None:
+    """Make the data of every file in ``paths`` durable (not their folder entries: see :func:`fsync_folder`).
+
+    Where the system has ``syncfs`` (Linux), one call per file system flushes them all: fsync file by file
+    forces one journal commit per file (about 3 ms each on the machine this was measured on, against well
+    under a millisecond per file for one flush of a hundred files). Elsewhere, or when it fails, each file is
+    fsynced. The flush also writes out other dirty files of the same file system, which had to be written
+    anyway.
+    """
+    paths = [os.fspath(p) for p in paths]
+    if not paths:
+        return
+    if _SYNCFS is not None:
+        devices = {}
+        for p in paths:
+            devices.setdefault(os.stat(p).st_dev, p)
+        failed = []
+        for dev, p in devices.items():
+            fd = os.open(p, os.O_RDONLY)
+            try:
+                if _SYNCFS(fd) != 0:
+                    failed.append(dev)
+            finally:
+                os.close(fd)
+        if not failed:
+            return
+        paths = [p for p in paths if os.stat(p).st_dev in failed]
+    _fsync_each(paths)
+
+
 class DurableBatch:
     """Atomic writes made durable together, so durability is paid once for many files.
 
     Each file is written to a temporary file beside its target (``.<name>.<random>.tmp``). At
-    :meth:`commit` every temporary file is fsynced, then all are renamed into place, then each folder
-    is fsynced once: one journal commit carries the data of every file and another the renames,
-    where writing, syncing and renaming file by file costs a commit (a few ms) per file. Until the
+    :meth:`commit` every temporary file is made durable (:func:`sync_files`: one flush of the file
+    system), then all are renamed into place, then each folder is fsynced once: one journal commit
+    carries the data of every file and another the renames, where writing, syncing and renaming file
+    by file costs a commit (a few ms) per file. Until the
     commit the targets keep their old contents; a process killed before it leaves only temporary
     files, which the next run removes. Whoever records the files (the run manifest, an ingest
     summary) must do so after :meth:`commit` returns.
@@ -515,14 +570,10 @@ class DurableBatch:
         pending, self._pending = self._pending, []
         try:
             for tmp, _ in pending:
-                if self.sync:
-                    fd = os.open(tmp, os.O_RDONLY)
-                    try:
-                        os.fsync(fd)
-                    finally:
-                        os.close(fd)
                 # mkstemp makes files private; outputs are meant to be shared like any file the user writes
                 os.chmod(tmp, 0o666 & ~_UMASK)
+            if self.sync:
+                sync_files([tmp for tmp, _ in pending])
         except BaseException:
             for tmp, _ in pending:
                 tmp.unlink(missing_ok=True)

@@ -36,7 +36,8 @@ def _disc_filter(decoded: DecodedTile, tile: int, order: int, margin_arcsec: flo
     neighbour tile with one dot product per row (on the cached unit vectors) before any tree is built.
     """
     if columns is not None:
-        missing = [c for c in columns if c not in decoded.table.column_names]
+        present = set(decoded.table.column_names)  # the property builds a new list at each call
+        missing = [c for c in columns if c not in present]
         if missing:
             raise InputError(f"{decoded.path}: column '{missing[0]}' is missing; this is not a tile of this "
                              "configuration, run `selector ingest --config ...` again")
