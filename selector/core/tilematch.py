@@ -595,21 +595,33 @@ def _chance_matches(own, infrared, tile, s: MatchSettings, *, real: PairCandidat
         found = candidate_pairs(MatchSide(ra_all, dec_all, _take_cov(cov_own, inside_all)), ir_side, density, s)
         bounds = np.cumsum([0] + [c.size for c in copies])
         cut = np.searchsorted(found.ia, bounds)  # the pairs come sorted by their astrometric index
+    n_ir = len(ir_side.ra_deg)
+    blend_real = np.bincount(real.ib, minlength=n_ir)
+    picked, ir_for, columns, shift_of = [], [], [], []
     for k, inside in enumerate(copies):
         if inside.size == 0:
             continue
         lo, hi, first = cut[k], cut[k + 1], bounds[k]
         shifted = PairCandidates(*(x[lo:hi] for x in found))._replace(ia=found.ia[lo:hi] - first)
         ra, dec = ra_all[first:first + inside.size], dec_all[first:first + inside.size]
-        both = PairCandidates(*(np.concatenate([a, b]) for a, b in zip(real, shifted)))
-        both = both._replace(ia=np.concatenate([real.ia, shifted.ia + n_real]))
-        asg = assign_pairs(both, n_real + inside.size, ambiguity_ratio=s.ambiguity_ratio)
-        blend = np.bincount(both.ib, minlength=len(ir_side.ra_deg)).astype(np.int64)
-        local = np.flatnonzero(asg.pair_index[n_real:] >= 0)
-        pos = (np.concatenate([real_pos[0], ra]), np.concatenate([real_pos[1], dec]))
-        columns = _match_columns(tile, n_real + local, asg, pos=pos, sigma=both.sigma_arcsec, blend=blend)
-        part = _features(own, infrared, inside[local], asg.ib[n_real + local], columns)
-        parts.append(part.append_column(CHANCE_SHIFT_COLUMN, pa.array(np.full(local.size, k, np.int64))))
+        # the shifted sources compete only with the real pairs of their own components of the pair graph, and
+        # the greedy assignment decides each component alone: assign those, not every real pair again
+        sub, a_ids = _components_touching(real, shifted.ib, n_real=n_real, n_ir=n_ir)
+        m = a_ids.size
+        both = PairCandidates(*(np.concatenate([a, b]) for a, b in zip(sub, shifted)))
+        both = both._replace(ia=np.concatenate([sub.ia, shifted.ia + m]))
+        asg = assign_pairs(both, m + inside.size, ambiguity_ratio=s.ambiguity_ratio)
+        blend = blend_real + np.bincount(shifted.ib, minlength=n_ir)
+        local = np.flatnonzero(asg.pair_index[m:] >= 0)
+        pos = (np.concatenate([real_pos[0][a_ids], ra]), np.concatenate([real_pos[1][a_ids], dec]))
+        columns.append(_match_columns(tile, m + local, asg, pos=pos, sigma=both.sigma_arcsec, blend=blend))
+        picked.append(inside[local])
+        ir_for.append(asg.ib[m + local])
+        shift_of.append(np.full(local.size, k, np.int64))
+    if picked:
+        joined = {name: pa.concat_arrays([c[name] for c in columns]) for name in columns[0]}
+        part = _features(own, infrared, np.concatenate(picked), np.concatenate(ir_for), joined)
+        parts.append(part.append_column(CHANCE_SHIFT_COLUMN, pa.array(np.concatenate(shift_of))))
     if not parts:
         none = np.zeros(0, np.int64)
         asg = assign_one_to_one(none, none, np.zeros(0), np.zeros(0), np.zeros(0), n_astrometric=0)
@@ -617,6 +629,33 @@ def _chance_matches(own, infrared, tile, s: MatchSettings, *, real: PairCandidat
         empty = _features(own, infrared, none, none, columns)
         return empty.append_column(CHANCE_SHIFT_COLUMN, pa.array(none)), n_shifted
     return pa.concat_tables(parts), n_shifted
+
+
+def _components_touching(real: PairCandidates, ir_hit: np.ndarray, *, n_real: int, n_ir: int):
+    """The real pairs in the components of the pair graph that hold any of the infrared sources ``ir_hit``.
+
+    Returns the pairs, their astrometric indices renumbered 0..m-1 in ascending order of the original ones
+    (so every order among them is kept), and the original indices (length m). The closure alternates:
+    astrometric sources with a pair to a marked infrared source, then every infrared source of theirs,
+    until nothing new is marked.
+    """
+    ir_mark = np.zeros(n_ir, bool)
+    ir_mark[ir_hit] = True
+    marked = int(ir_mark.sum())
+    while True:
+        a_mark = np.zeros(n_real, bool)
+        a_mark[real.ia[ir_mark[real.ib]]] = True
+        take = a_mark[real.ia]
+        ir_mark[real.ib[take]] = True
+        now = int(ir_mark.sum())
+        if now == marked:
+            break
+        marked = now
+    rows = np.flatnonzero(take)
+    a_ids = np.flatnonzero(a_mark)
+    renumber = np.cumsum(a_mark) - 1
+    sub = PairCandidates(*(x[rows] for x in real))
+    return sub._replace(ia=renumber[sub.ia]), a_ids
 
 
 def _match_nearest(own, neighbours, infrared, tile, s: MatchSettings) -> TileMatch:

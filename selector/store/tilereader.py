@@ -6,6 +6,7 @@ and keeps its rows' unit vectors: the margin filter below is then one dot produc
 
 from __future__ import annotations
 
+import os
 from functools import lru_cache
 from typing import NamedTuple
 
@@ -16,7 +17,7 @@ from selector.core import schema, tiles
 from selector.core.tilematch import ASTROMETRIC_ERROR_COLUMNS, DENSITY_COLUMN, LoadedArea, tile_density_per_sr
 from selector.errors import InputError
 from selector.settings.config import Config
-from selector.store.layout import layout_of
+from selector.store.layout import layout_of, tile_name
 from selector.store.tilecache import DecodedTile, TileCache
 
 _ARCSEC_PER_RAD = 180.0 / np.pi * 3600.0
@@ -132,7 +133,9 @@ def load_tile(cfg: Config, tile: int, on_input=None, *, cache: TileCache | None 
     order = cfg.tiling.order
     lay = layout_of(cfg)
     cache = cache if cache is not None else TileCache()
-    own_path = lay.tile_file("astrometric", order, tile)
+    # the generation in force is read once, and paths are built as text: a tile asks for about twenty
+    tile_file = _tile_files(lay.pinned(), order)
+    own_path = tile_file("astrometric", tile)
     own_file = cache.get(own_path)
     if not own_file.exists:
         raise InputError(f"{own_path}: cannot read (no such file); run `selector ingest --config ...` again")
@@ -146,7 +149,7 @@ def load_tile(cfg: Config, tile: int, on_input=None, *, cache: TileCache | None 
     centre, reach = _disc(int(tile), int(order))
     ir_parts = []
     for t in tiles.tiles_near(tile, order, ir_margin):
-        path = lay.tile_file("infrared", order, int(t))
+        path = tile_file("infrared", int(t))
         decoded = cache.get(path)
         part = digest = None
         if decoded.exists:
@@ -164,7 +167,7 @@ def load_tile(cfg: Config, tile: int, on_input=None, *, cache: TileCache | None 
     for t in tiles.tiles_near(tile, order, astro_margin):
         if t == tile:
             continue
-        path = lay.tile_file("astrometric", order, int(t))
+        path = tile_file("astrometric", int(t))
         decoded = cache.get(path)
         if decoded.exists:
             # neighbours only compete for counterparts: positions, motions and their errors are all we need
@@ -176,6 +179,16 @@ def load_tile(cfg: Config, tile: int, on_input=None, *, cache: TileCache | None 
     infrared = _concat(ir_parts) if ir_parts else _empty_infrared(cfg)
     neighbours = _concat(neighbour_parts) if neighbour_parts else own.select(neighbour_columns).slice(0, 0)
     return LoadedTile(own, neighbours, infrared, LoadedArea(centre, reach, ir_margin, astro_margin))
+
+
+def _tile_files(lay, order: int):
+    """``path(catalogue, tile)`` of a pinned layout's tile files, as text."""
+    folders = {kind: os.fspath(lay.order_dir(kind, order)) for kind in ("astrometric", "infrared")}
+
+    def path(kind: str, tile: int) -> str:
+        return f"{folders[kind]}{os.sep}{tile_name(tile)}.parquet"
+
+    return path
 
 
 def _neighbour_columns(cfg: Config) -> list[str]:
