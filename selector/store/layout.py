@@ -65,6 +65,15 @@ def tile_name(tile: int) -> str:
     return f"tile{int(tile):08d}"
 
 
+def _order_name(order: int) -> str:
+    return f"order{int(order):02d}"
+
+
+def tile_rel_path(catalogue: str, order: int, tile: int) -> str:
+    """A tile file's path below the tiles folder of its generation, with ``/``: how manifests name inputs."""
+    return f"{catalogue}/{_order_name(order)}/{tile_name(tile)}.parquet"
+
+
 def tile_id(name: str) -> int:
     """Inverse of :func:`tile_name` for a file or folder name (``tile00001234[.parquet]``)."""
     return int(Path(name).name[4:12])
@@ -121,10 +130,10 @@ class Layout:
         return self.tiles_dir / catalogue
 
     def order_dir(self, catalogue: str, order: int) -> Path:
-        return self.catalogue_dir(catalogue) / f"order{order:02d}"
+        return self.catalogue_dir(catalogue) / _order_name(order)
 
     def tile_file(self, catalogue: str, order: int, tile: int) -> Path:
-        return self.order_dir(catalogue, order) / f"{tile_name(tile)}.parquet"
+        return self.tiles_dir / tile_rel_path(catalogue, order, tile)
 
     def list_tiles(self, catalogue: str, order: int) -> list[int]:
         """Tile ids present on disk for a catalogue, ascending."""

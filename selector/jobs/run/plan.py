@@ -17,14 +17,13 @@ import os
 import time
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, replace
-from functools import lru_cache
 from pathlib import Path
 
 from selector.errors import SelectorError
 from selector.settings.config import Config
 from selector.store.io import file_sha256
 from selector.store.keys import combined_digest, match_key, model_key, model_path, selection_key
-from selector.store.layout import FEATURE_FILES, SELECTION_FILES, Layout, layout_of
+from selector.store.layout import FEATURE_FILES, SELECTION_FILES, layout_of, tile_rel_path
 from selector.store.manifest import Manifest
 
 #: What :func:`file_digest` gives for a file that exists but cannot be read.
@@ -81,13 +80,7 @@ def compute_plan(cfg: Config, sha: str | None) -> TilePlan:
 
 def tile_rel(cfg: Config, kind: str, tile: int) -> str:
     """A tile file's path relative to the tiles folder: how the manifest names input files."""
-    return _tile_rel(layout_of(cfg), kind, cfg.tiling.order, int(tile))
-
-
-@lru_cache(maxsize=1 << 16)
-def _tile_rel(lay: Layout, kind: str, order: int, tile: int) -> str:
-    # asked for about twenty times per tile; path arithmetic is slow enough to matter
-    return lay.tile_file(kind, order, tile).relative_to(lay.tiles_dir).as_posix()
+    return tile_rel_path(kind, cfg.tiling.order, int(tile))
 
 
 def ingest_summaries(cfg: Config) -> dict:
