@@ -189,7 +189,7 @@ def test_chains_across_corners_poles_and_ra0_make_the_margin_grow(chain_sky):
     assert len(set(owners)) == len(_PLACES)
     loads = {}
     for t in owners:
-        def count(kind, tile, path, part, decoded, digest, t=t):
+        def count(kind, tile, path, part, decoded, *, digest, t=t):
             if kind == "astrometric" and tile == t:
                 loads[t] = loads.get(t, 0) + 1
         load_and_match(cfg, t, count)

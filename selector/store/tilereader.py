@@ -7,6 +7,7 @@ and keeps its rows' unit vectors: the margin filter below is then one dot produc
 from __future__ import annotations
 
 import os
+import time
 from functools import lru_cache
 from typing import NamedTuple
 
@@ -68,12 +69,15 @@ class LoadedTile(NamedTuple):
         (:data:`~selector.core.tilematch.DENSITY_COLUMN`).
     area : LoadedArea
         The caps the rows were loaded from.
+    read_s : float
+        Wall time spent reading and cutting the margins (every reading, when the margins grew).
     """
 
     own: pa.Table
     neighbours: pa.Table
     infrared: pa.Table
     area: LoadedArea
+    read_s: float = 0.0
 
 
 def default_ir_margin_arcsec(cfg: Config, own: pa.Table) -> float:
@@ -112,7 +116,7 @@ def load_tile(cfg: Config, tile: int, on_input=None, *, cache: TileCache | None 
     Parameters
     ----------
     on_input : callable, optional
-        Called as ``on_input(catalogue, tile_id, path, part, decoded, digest)`` for every tile file
+        Called as ``on_input(catalogue, tile_id, path, part, decoded, digest=...)`` for every tile file
         consulted, with the rows taken from it (``None`` when the file does not exist), the
         :class:`~selector.store.tilecache.DecodedTile` read (its SHA-256, size and time) and the
         digest of the rows and columns used (None when no row is); the batch runner uses it to
@@ -130,6 +134,7 @@ def load_tile(cfg: Config, tile: int, on_input=None, *, cache: TileCache | None 
     -------
     LoadedTile
     """
+    started = time.perf_counter()
     order = cfg.tiling.order
     lay = layout_of(cfg)
     cache = cache if cache is not None else TileCache()
@@ -140,8 +145,8 @@ def load_tile(cfg: Config, tile: int, on_input=None, *, cache: TileCache | None 
     if not own_file.exists:
         raise InputError(f"{own_path}: cannot read (no such file); run `selector ingest --config ...` again")
     own = own_file.table
-    report = on_input or (lambda *args: None)
-    report("astrometric", tile, own_path, own, own_file, own_file.part_digest() if own.num_rows else None)
+    report = on_input or (lambda *args, **kwargs: None)
+    report("astrometric", tile, own_path, own, own_file, digest=own_file.part_digest() if own.num_rows else None)
     dt = abs(cfg.epoch_difference_yr)
     r = cfg.match.radius_arcsec
     ir_margin = default_ir_margin_arcsec(cfg, own) if ir_margin_arcsec is None else float(ir_margin_arcsec)
@@ -159,7 +164,7 @@ def load_tile(cfg: Config, tile: int, on_input=None, *, cache: TileCache | None 
             density = _tile_density(decoded, order)
             part, digest = _disc_filter(decoded, tile, order, ir_margin)
             part = part.append_column(DENSITY_COLUMN, pa.array(np.full(part.num_rows, density)))
-        report("infrared", int(t), path, part, decoded, digest)
+        report("infrared", int(t), path, part, decoded, digest=digest)
         if part is not None:
             ir_parts.append(part)
     neighbour_columns = _neighbour_columns(cfg)
@@ -173,12 +178,13 @@ def load_tile(cfg: Config, tile: int, on_input=None, *, cache: TileCache | None 
             # neighbours only compete for counterparts: positions, motions and their errors are all we need
             part, digest = _disc_filter(decoded, tile, order, astro_margin, neighbour_columns)
             neighbour_parts.append(part)
-            report("astrometric", int(t), path, part, decoded, digest)
+            report("astrometric", int(t), path, part, decoded, digest=digest)
         else:
-            report("astrometric", int(t), path, None, decoded, None)
+            report("astrometric", int(t), path, None, decoded, digest=None)
     infrared = _concat(ir_parts) if ir_parts else _empty_infrared(cfg)
     neighbours = _concat(neighbour_parts) if neighbour_parts else own.select(neighbour_columns).slice(0, 0)
-    return LoadedTile(own, neighbours, infrared, LoadedArea(centre, reach, ir_margin, astro_margin))
+    return LoadedTile(own, neighbours, infrared, LoadedArea(centre, reach, ir_margin, astro_margin),
+                      time.perf_counter() - started)
 
 
 def _tile_files(lay, order: int):

@@ -234,7 +234,7 @@ def _work(cfg: Config, tile: int, plan: TilePlan, batch: DurableBatch) -> TileOu
     if mode in ("compute", "check"):
         consulted, digests, files = {}, {}, {}
 
-        def on_input(kind, t, path, part, decoded, digest):
+        def on_input(kind, t, path, part, decoded, *, digest):
             rel = tile_rel(cfg, kind, t)
             consulted[rel] = part is not None
             if part is None:
@@ -258,8 +258,9 @@ def _work(cfg: Config, tile: int, plan: TilePlan, batch: DurableBatch) -> TileOu
         rows = own.num_rows
         out.inputs, out.content_key, out.rows = sorted(consulted.items()), content_key, rows
         out.files = sorted(files.values())
-        # reading and matching together: the match decides whether the margins must grow and be read again
-        out.read_s, clock = time.perf_counter() - clock, time.perf_counter()
+        # the match decides whether the margins must grow and be read again: the readings are timed inside
+        out.read_s = loaded.read_s
+        out.match_s, clock = time.perf_counter() - clock - loaded.read_s, time.perf_counter()
         if mode == "check" and content_key == plan.content_key:
             if not plan.reselect:
                 out.action = "verified"
@@ -267,7 +268,7 @@ def _work(cfg: Config, tile: int, plan: TilePlan, batch: DurableBatch) -> TileOu
             mode = "select"
         else:
             features = _normalised(m.features)
-            out.match_s, clock = time.perf_counter() - clock, time.perf_counter()
+            out.match_s, clock = out.match_s + time.perf_counter() - clock, time.perf_counter()
             match_prov = {"provenance": {"tile": tile, "match_key": plan.match_key, "content_key": content_key,
                                          "selector_version": __version__}}
             write_parquet(features, lay.tile_output(tile, "features.parquet"), match_prov, batch=batch)

@@ -47,20 +47,23 @@ def load_and_match(cfg: Config, tile: int, on_input=None, *, cache=None) -> tupl
 
     The one-to-one assignment of an owned source depends on every pair connected to it through shared
     sources; when such a chain reaches the edge of the loaded area the tile is read again with the margin
-    the match asks for, so a tiled run gives the same counterparts as the untiled sky.
+    the match asks for, so a tiled run gives the same counterparts as the untiled sky. The tile's
+    ``read_s`` is the time of every reading.
     """
     settings = match_settings(cfg)
     loaded = load_tile(cfg, tile, on_input, cache=cache)
+    read_s = loaded.read_s
     limit = 3.0 * max_margin_arcsec(cfg.tiling.order)
     while True:
         m = match_tile(loaded.own, loaded.neighbours, loaded.infrared, tile, settings=settings, area=loaded.area)
         if m.needs_ir_margin_arcsec is None:
-            return loaded, m
+            return loaded._replace(read_s=read_s), m
         if m.needs_ir_margin_arcsec > limit:
             raise SelectorError(f"tile {tile}: a chain of competing counterparts reaches more than "
                                 f"{limit:.0f} arcsec beyond the tile; the field is too crowded for match.radius_arcsec "
                                 f"= {cfg.match.radius_arcsec}: lower it or match.n_sigma, or use a lower tiling.order")
         loaded = load_tile(cfg, tile, on_input, cache=cache, ir_margin_arcsec=m.needs_ir_margin_arcsec)
+        read_s += loaded.read_s
 
 
 def process_tile(cfg: Config, tile: int, scorer=None, keep_pairs: bool = False) -> TileResult:
