@@ -78,6 +78,17 @@ def test_command_start_up_imports_no_heavy_library():
     assert not loaded & {"matplotlib", "pyarrow", "sklearn", "healpy", "astropy", "numpy", "pandas", "scipy"}
 
 
+
+def test_run_and_ingest_do_not_import_the_plotting_library():
+    # the jobs that only file and match rows never draw, so they must not pay for the plotting
+    # library's import (nor healpy, whose package loads it). Checked in a fresh interpreter.
+    code = ("import sys, selector.jobs.run, selector.jobs.ingest; "
+            "print(' '.join(sorted({m.split('.')[0] for m in sys.modules})))")
+    proc = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
+    loaded = set(proc.stdout.split())
+    assert "selector" in loaded and "numpy" in loaded
+    assert not loaded & {"matplotlib", "healpy"}
+
 def test_version_is_the_installed_distributions():
     # the version is read from the distribution folder's name, which must agree with the packaging
     # library's answer (PEP 376: <name>-<version>.dist-info)

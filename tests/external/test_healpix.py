@@ -2,7 +2,10 @@
 
 References: Górski et al. 2005, ApJ 622, 759 (Npix = 12·Nside², nested numbering); healpy and
 astropy-healpix as reference implementations of ``ang2pix`` / ``lonlat_to_healpix`` (nested scheme).
-``selector.tiles`` computes pixels with healpy, so astropy-healpix is the independent check here.
+healpy is the reference library: ``selector.core.tiles`` computes tile ids with its own numpy code
+(so that the jobs need not import healpy, which loads a plotting library) and must give healpy's ids
+bit for bit, ties on pixel edges included, because ingested tiles and run records are keyed by them.
+Its geometry comes from astropy-healpix and is checked against healpy here too.
 """
 
 from __future__ import annotations
@@ -106,6 +109,83 @@ def test_points_just_inside_pixel_corners(order, rng):
     np.testing.assert_array_equal(got, owner)  # by construction each point is inside its own pixel
     np.testing.assert_array_equal(got, _healpy(ra, dec, order))
     np.testing.assert_array_equal(got, _astropy_healpix(ra, dec, order))
+
+
+def _edge_points(order, rng, n_pixels=20000, step=8):
+    """Points on pixel edges and corners of ``order`` (healpy's boundaries, as RA/Dec)."""
+    ns = 2**order
+    pixels = np.arange(12 * ns * ns) if 12 * ns * ns <= n_pixels else rng.integers(0, 12 * ns * ns, n_pixels)
+    edges = hp.boundaries(ns, pixels, step=step, nest=True)
+    ra, dec = hp.vec2ang(np.moveaxis(edges, 1, -1).reshape(-1, 3), lonlat=True)
+    return ra, dec
+
+
+def test_tile_ids_are_healpys_bit_for_bit_on_millions_of_points(rng):
+    # reference library: healpy (ang2pix, nested, lonlat). Random points, points on the edges and
+    # corners of pixels of several orders (each also a tie at the coarser orders it lies on), poles,
+    # the RA = 0/360 seam and RA outside [0, 360).
+    ra_r, dec_r = _random_points(rng, 2_000_000)
+    ra_s, dec_s = _special_points()
+    edges = [_edge_points(o, rng) for o in (0, 1, 3, 6, 9, 12)]
+    ra = np.concatenate([ra_r, ra_s, ra_s - 360.0, ra_s + 360.0] + [e[0] for e in edges])
+    dec = np.concatenate([dec_r, dec_s, dec_s, dec_s] + [e[1] for e in edges])
+    assert len(ra) > 3_000_000
+    for order in list(range(0, 13)) + [tiles.FINE_ORDER]:
+        np.testing.assert_array_equal(tiles.tile_of(ra, dec, order), _healpy(ra, dec, order),
+                                      err_msg=f"order {order}")
+
+
+def test_tile_of_keeps_the_input_shape():
+    ra, dec = np.array([[0.0, 10.0], [200.0, 359.0]]), np.array([[90.0, -5.0], [41.8, -90.0]])
+    got = tiles.tile_of(ra, dec, 4)
+    assert got.shape == (2, 2)
+    np.testing.assert_array_equal(got, _healpy(ra, dec, 4))
+    assert tiles.tile_of(np.zeros(0), np.zeros(0), 4).shape == (0,)
+
+
+@pytest.mark.parametrize("order", list(range(0, 13)))
+def test_disc_and_resolution_equal_the_reference_library(order, rng):
+    # reference library: healpy (pix2vec, boundaries, nside2resol)
+    ns = 2**order
+    chosen = np.unique(np.r_[rng.integers(0, 12 * ns * ns, 200), 0, 12 * ns * ns - 1, _awkward_tiles(order)])
+    for tile in chosen:
+        centre, reach = tiles.circumscribed_disc(int(tile), order)
+        ref_centre = np.asarray(hp.pix2vec(ns, int(tile), nest=True))
+        corners = hp.boundaries(ns, int(tile), step=1, nest=True).T
+        ref_reach = np.max(np.arctan2(np.linalg.norm(np.cross(corners, ref_centre), axis=1), corners @ ref_centre))
+        np.testing.assert_allclose(centre, ref_centre, rtol=0, atol=1e-12)
+        assert abs(reach - ref_reach) <= 1e-12
+    assert tiles.resolution_arcsec(order) == pytest.approx(np.degrees(hp.nside2resol(ns)) * 3600.0, rel=1e-12, abs=0)
+
+
+@pytest.mark.parametrize("order", list(range(0, 30)))
+def test_max_pixel_radius_bounds_the_reference_librarys(order):
+    # reference library: healpy's max_pixrad, the largest centre-to-boundary distance of any pixel
+    assert hp.max_pixrad(2**order) <= tiles.max_pixel_radius_rad(order) <= 1.3 * hp.max_pixrad(2**order)
+
+
+def _random_disc_centre(rng, kind):
+    if kind == 0:
+        return rng.uniform(0.0, 360.0), float(np.degrees(np.arcsin(rng.uniform(-1.0, 1.0))))
+    if kind == 1:   # near a pole
+        return rng.uniform(0.0, 360.0), float(rng.choice([1.0, -1.0]) * (90.0 - 10 ** rng.uniform(-7, 0.5)))
+    if kind == 2:   # on the RA = 0/360 seam
+        return float(rng.choice([0.0, 1e-10, 359.9999999999, 0.001, 359.999])), rng.uniform(-90.0, 90.0)
+    return rng.uniform(0.0, 360.0), float(rng.choice([1.0, -1.0]) * _VERTEX_LAT_DEG + rng.normal(0.0, 0.5))
+
+
+@pytest.mark.parametrize("order", [0, 1, 2, 3, 5, 8, 10, 12])
+def test_tiles_near_holds_the_reference_librarys_inclusive_disc(order, rng):
+    # reference library: healpy's query_disc(inclusive=True). Every tile it gives for the disc that
+    # tiles_near searches must be in our set: a missing tile would lose the pairs across its edge.
+    ns = 2**order
+    for i in range(120):
+        tile = int(tiles.tile_of(*_random_disc_centre(rng, i % 4), order))
+        margin = 10 ** rng.uniform(0.0, np.log10(tiles.max_margin_arcsec(order)))
+        centre, reach = tiles.circumscribed_disc(tile, order)
+        ref = hp.query_disc(ns, centre, reach + np.radians(margin / 3600.0), inclusive=True, nest=True)
+        got = tiles.tiles_near(tile, order, margin)
+        assert np.setdiff1d(ref, got).size == 0, f"order {order} tile {tile} margin {margin}"
 
 
 @pytest.mark.parametrize("order", list(range(0, 30)))
