@@ -181,17 +181,29 @@ def max_pixel_radius_rad(order: int) -> float:
     return 1.05 * resolution_arcsec(order) / _ARCSEC_PER_RAD
 
 
+def _discs(pixels: np.ndarray, order: int) -> tuple[np.ndarray, np.ndarray]:
+    """Centre unit vectors (n, 3) of tiles and their largest centre-to-corner distances (rad)."""
+    ns = nside(order)
+    centres = np.stack(healpix_to_xyz(pixels, ns, order="nested"), axis=1)
+    reach = np.zeros(len(pixels))
+    # corners are the pixel's own coordinates (0 or 1 along each edge line)
+    for dx, dy in ((1.0, 1.0), (0.0, 1.0), (0.0, 0.0), (1.0, 0.0)):
+        corner = np.stack(healpix_to_xyz(pixels, ns, dx=np.full(len(pixels), dx), dy=np.full(len(pixels), dy),
+                                         order="nested"), axis=1)
+        reach = np.maximum(reach, _angle_rad(corner, centres))
+    return centres, reach
+
+
+def _angle_rad(a: np.ndarray, b: np.ndarray) -> np.ndarray:
+    # from sine and cosine together: arccos of a dot product near 1 turns a last-bit difference in the
+    # vectors into 1e-8 of a fine tile's radius
+    return np.arctan2(np.linalg.norm(np.cross(a, b), axis=-1), np.sum(a * b, axis=-1))
+
+
 def circumscribed_disc(tile: int, order: int) -> tuple[np.ndarray, float]:
     """Centre unit vector of a tile and its largest centre-to-corner distance (rad)."""
-    ns = nside(order)
-    centre = np.asarray(healpix_to_xyz(int(tile), ns, order="nested"), float)
-    # corners are the pixel's own coordinates (0 or 1 along each edge line)
-    corners = np.stack(healpix_to_xyz(np.full(4, int(tile)), ns, dx=np.array([1.0, 0.0, 0.0, 1.0]),
-                                      dy=np.array([1.0, 1.0, 0.0, 0.0]), order="nested"), axis=1)
-    # the angle from sine and cosine together: arccos of a dot product near 1 turns a last-bit difference
-    # in the vectors into 1e-8 of a fine tile's radius
-    sine = np.linalg.norm(np.cross(corners, centre), axis=1)
-    return centre, float(np.max(np.arctan2(sine, corners @ centre)))
+    centres, reach = _discs(np.array([int(tile)], np.int64), order)
+    return centres[0], float(reach[0])
 
 
 def tiles_near(tile: int, order: int, margin_arcsec: float) -> np.ndarray:
@@ -200,17 +212,24 @@ def tiles_near(tile: int, order: int, margin_arcsec: float) -> np.ndarray:
     A disc around the tile centre with the tile's largest centre-to-corner distance plus the margin
     contains the whole dilated tile. The cone search returns the pixels it finds overlapping a disc,
     but it judges overlap from a few points of each pixel, so a pixel that only grazes the disc can be
-    left out, and a lost tile would silently lose the pairs across that edge. The disc is therefore
-    grown by the largest distance from any pixel's centre to its boundary (:func:`max_pixel_radius_rad`):
-    any pixel that touches the original disc then has its centre inside the grown one and is returned.
-    The set is complete at any margin (it holds every tile the reference library's inclusive search
-    gives); the few extra tiles cost only reading, their rows are filtered by distance.
+    left out, and a lost tile would silently lose the pairs across that edge. The search therefore
+    runs on the disc grown by the largest centre-to-boundary distance of any pixel
+    (:func:`max_pixel_radius_rad`): every pixel touching the original disc has its centre inside the
+    grown one. Of what the search returns (every pixel overlapping the grown disc, a wider ring),
+    only the tiles whose centre lies in the grown disc are kept, which is the same test the reference
+    library's inclusive search makes. The set is complete at any margin (it holds every tile that
+    search gives, and a few per cent more); an extra tile costs only reading, its rows are filtered
+    by distance.
     """
-    vec, reach = circumscribed_disc(tile, order)
-    radius_rad = reach + margin_arcsec / _ARCSEC_PER_RAD + max_pixel_radius_rad(order)
-    lon_rad = np.arctan2(vec[1], vec[0])
-    lat_rad = np.arcsin(np.clip(vec[2], -1.0, 1.0))
-    near = healpix_cone_search(lon_rad * u.rad, lat_rad * u.rad, radius_rad * u.rad, nside(order), order="nested")
+    centre, reach = circumscribed_disc(tile, order)
+    radius_rad = reach + margin_arcsec / _ARCSEC_PER_RAD
+    lon_rad = np.arctan2(centre[1], centre[0])
+    lat_rad = np.arcsin(np.clip(centre[2], -1.0, 1.0))
+    grown_rad = radius_rad + max_pixel_radius_rad(order)
+    found = np.asarray(healpix_cone_search(lon_rad * u.rad, lat_rad * u.rad, grown_rad * u.rad, nside(order),
+                                           order="nested"), np.int64)
+    centres = np.stack(healpix_to_xyz(found, nside(order), order="nested"), axis=-1).reshape(-1, 3)
+    near = found[_angle_rad(centres, centre[None, :]) <= grown_rad]
     return np.unique(np.append(near, tile)).astype(np.int64)
 
 
