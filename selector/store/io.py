@@ -864,14 +864,14 @@ def float_text(values: pa.Array, decimals: int | None = None) -> pa.Array:
 def text_writable(column: pa.ChunkedArray | pa.Array) -> bool:
     """Whether :func:`text_body` writes this column exactly as astropy would.
 
-    float64 (nulls become NaN, as astropy's column does), integers without nulls, and text without
+    float64 (nulls become NaN, as astropy's column does), integers and booleans without nulls, and text without
     nulls, without empty values and without a character that astropy would quote (or a reader
     misread); anything else is left to astropy.
     """
     t = column.type
     if pa.types.is_float64(t):
         return True
-    if pa.types.is_integer(t):
+    if pa.types.is_integer(t) or pa.types.is_boolean(t):
         return column.null_count == 0
     if pa.types.is_string(t) or pa.types.is_large_string(t):
         if column.null_count:
@@ -896,6 +896,8 @@ def text_cells(table: pa.Table) -> list[pa.Array]:
             cells.append(float_text(col, None if doc is None else doc.decimals))
         elif pa.types.is_integer(col.type):
             cells.append(pc.cast(col, pa.string()))
+        elif pa.types.is_boolean(col.type):
+            cells.append(pc.if_else(col, "True", "False"))  # numpy's spelling, which astropy writes
         else:
             cells.append(pc.cast(col, pa.string()))
     return cells

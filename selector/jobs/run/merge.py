@@ -11,6 +11,8 @@ from __future__ import annotations
 import json
 import os
 import shutil
+from collections import deque
+from concurrent.futures import ThreadPoolExecutor
 from contextlib import ExitStack
 from dataclasses import dataclass
 from pathlib import Path
@@ -377,39 +379,95 @@ class _Runs:
                 refill(i)
 
 
+#: Candidates of consecutive tiles gathered before they are finished and checked together: the
+#: per-call costs of the finisher, the text checks and the sorted runs are paid per gathering, not per tile.
+GATHER_ROWS = 1 << 16
+
+
+class _Gathered:
+    """Tiles' candidates of one schema gathered into one table, then finished and checked at once.
+
+    Every step applied to a gathering is row by row (spectroscopic redshifts, luminosities, the
+    labelled-luminosity flag, the text checks), so the rows are those of doing each tile alone; a tile
+    of another schema closes the gathering first, so each table keeps its own schema, as each tile did.
+    """
+
+    def __init__(self, runs: _Runs, finish: Finisher | None):
+        self.runs, self.finish = runs, finish
+        self.parts: list[pa.Table] = []
+        self.rows = 0
+        self.writable = True
+        self.ids: list[np.ndarray] = []
+
+    def add(self, part: pa.Table) -> None:
+        if self.parts and (part.schema != self.parts[0].schema or self.rows + part.num_rows > GATHER_ROWS):
+            self.flush()
+        self.parts.append(part)
+        self.rows += part.num_rows
+
+    def flush(self) -> None:
+        if not self.parts:
+            return
+        table = pa.concat_tables(self.parts) if len(self.parts) > 1 else self.parts[0]
+        self.parts, self.rows = [], 0
+        if self.finish is not None and table.num_rows:
+            table = self.finish.apply(table)
+        self.runs.add(table)
+        if table.num_rows:
+            self.writable = self.writable and all(text_writable(c) for c in table.columns)
+            self.ids.append(table.column("astro_id").to_numpy(zero_copy_only=False))
+
+
+#: Tile files read at once: decoding a small file is mostly fixed costs per column, paid in Arrow
+#: without holding the interpreter, so a few reads side by side keep the cores busy.
+READERS = 4
+
+
+def _read_tile(path: Path) -> pa.Table | BaseException:
+    try:
+        # one open per tile: ParquetFile has less set-up than read_table's dataset layer, and the
+        # column chunks fetched in one go cost less than one read each
+        return pq.ParquetFile(path, pre_buffer=True).read(use_threads=False).replace_schema_metadata(None)
+    except (OSError, pa.ArrowException) as exc:
+        return exc
+
+
+def _read_ahead(paths: list[Path]):
+    """Each tile's candidates in order, read by :data:`READERS` threads a few files ahead (bounded memory)."""
+    with ThreadPoolExecutor(READERS) as pool:
+        ahead: deque = deque()
+        for path in paths:
+            ahead.append(pool.submit(_read_tile, path))
+            if len(ahead) > 2 * READERS:
+                yield ahead.popleft().result()
+        while ahead:
+            yield ahead.popleft().result()
+
+
 def _streamed(cfg: Config, summaries: list[TileSummary], lay,
               finish: Finisher | None = None) -> tuple[_Runs, bool, int]:
     """Read every tile's candidates once into sorted runs; whether the fast text writers apply; rows.
 
     ``finish`` (models with a redshift part) adopts spectroscopic redshifts and flags candidates beyond
-    the labelled luminosities in each tile's part before it is ranked.
+    the labelled luminosities in the candidates before they are ranked.
     """
     runs = _Runs(merge_spool(lay), cfg.ranking.order)
-    writable = True
-    ids = []
-    for s in summaries:
-        path = lay.tile_candidates(s.tile)
-        try:
-            # one open per tile: ParquetFile has less set-up than read_table's dataset layer
-            part = pq.ParquetFile(path).read().replace_schema_metadata(None)
-        except (OSError, pa.ArrowException) as exc:
-            first = (str(exc).strip().splitlines() or [type(exc).__name__])[0]
-            raise SelectorError(f"{path}: cannot read ({first}); re-run with --force") from None
+    gathered = _Gathered(runs, finish)
+    paths = [lay.tile_candidates(s.tile) for s in summaries]
+    for s, path, part in zip(summaries, paths, _read_ahead(paths)):
+        if isinstance(part, BaseException):
+            first = (str(part).strip().splitlines() or [type(part).__name__])[0]
+            raise SelectorError(f"{path}: cannot read ({first}); re-run with --force")
         if part.num_rows != int(s.cutflow[-1][1]):
             raise SelectorError(f"internal error: {path} holds {part.num_rows} candidates but the tile's cut-flow "
                                 f"ends with {s.cutflow[-1][1]}; re-run with --force")
-        if finish is not None and part.num_rows:
-            part = finish.apply(part)
-        runs.add(part)
-        if not part.num_rows:
-            continue
-        writable = writable and all(text_writable(c) for c in part.columns)
-        ids.append(part.column("astro_id").to_numpy(zero_copy_only=False))
+        gathered.add(part)
+    gathered.flush()
     # the one check that needs every row at once: the ids only (8 bytes a candidate for integer ids)
-    ids = np.concatenate(ids) if ids else np.zeros(0)
+    ids = np.concatenate(gathered.ids) if gathered.ids else np.zeros(0)
     if len(np.unique(ids)) != len(ids):
         raise SelectorError("internal error: a source appears in more than one tile's candidates")
-    return runs, writable, runs.rows
+    return runs, gathered.writable, runs.rows
 
 
 def merge(cfg: Config, summaries: list[TileSummary], prov: dict, fault=None) -> Merged:
