@@ -832,9 +832,11 @@ def write_table(table, path: Path, fmt: str) -> Path:
 # pyarrow's CSV writer, about 25 times faster than astropy's row-by-row writer, with the same bytes.
 # astropy writes a float64 with ``str`` (the shortest text that reads back to the same value, fixed
 # notation for 1e-4 <= |x| < 1e16, ``1.0`` for whole numbers), pyarrow with another shortest-text
-# algorithm that switches to exponents at other magnitudes and writes whole numbers without ``.0``.
-# Both give the same digits, so only the notation differs: whole numbers below 1e9 get ``.0``
-# appended, and the few values below 1e-4 or from 1e9 up are written by Python itself.
+# algorithm, fixed for 1e-6 <= |x| < 1e10, with one-digit exponents and without ``.0``. Both give the
+# same digits, so only the layout differs, and it is moved around with pyarrow's string kernels:
+# ``.0`` appended to whole numbers, exponents of 10 to 15 written out, fixed values below 1e-4 given
+# their exponent, one-digit exponents padded. Luminosities (1e40 and up) need nothing: both write
+# them alike.
 
 #: Characters a text value may not hold to be written unquoted (astropy would quote it, or a
 #: reader take it for a separator, a quote, a line end or a comment).
@@ -852,12 +854,72 @@ def float_text(values: pa.Array, decimals: int | None = None) -> pa.Array:
     text = pc.cast(pa.array(x, pa.float64()), pa.string())
     a = np.abs(x)
     with np.errstate(invalid="ignore"):
-        whole = (x == np.trunc(x)) & (a < 1e9)
-        other = np.isfinite(x) & (((a < 1e-4) & (x != 0.0)) | (a >= 1e9))
+        whole = (x == np.trunc(x)) & (a < 1e10)  # pyarrow's fixed range: no ".0"
+        big = np.isfinite(x) & (a >= 1e10) & (a < 1e16)  # pyarrow's exponent, Python's fixed notation
+        small = (a < 1e-4) & (x != 0.0)  # Python's exponent; pyarrow's fixed above 1e-6, short exponents below
     if whole.any():
         text = pc.if_else(pa.array(whole), pc.binary_join_element_wise(text, ".0", ""), text)
-    if other.any():
-        text = pc.replace_with_mask(text, pa.array(other), pa.array([repr(v) for v in x[other].tolist()], pa.string()))
+    for mask, relayout in ((big, _written_out), (small, _with_exponent)):
+        if mask.any():
+            where = np.flatnonzero(mask)
+            text = pc.replace_with_mask(text, pa.array(mask), relayout(text.take(pa.array(where)), x[where]))
+    return text
+
+
+def _unsigned(text: pa.Array) -> tuple[pa.Array, pa.Array]:
+    negative = pc.starts_with(text, "-")
+    return pc.utf8_ltrim(text, "-"), negative
+
+
+def _signed(text: pa.Array, negative: pa.Array) -> pa.Array:
+    return pc.if_else(negative, pc.binary_join_element_wise("-", text, ""), text)
+
+
+def _written_out(text: pa.Array, x: np.ndarray) -> pa.Array:
+    """pyarrow's ``d.ddde+NN`` (10 <= NN <= 15) as Python writes it: ``dddd.dd``, or ``dddd.0``."""
+    body, negative = _unsigned(text)
+    parts = pc.split_pattern(body, "e+")
+    digits = pc.replace_substring(pc.list_element(parts, 0), ".", "")
+    exponent = np.floor(np.log10(np.abs(x))).astype(np.int64)
+    # one group per exponent, each cut at its own place; the groups are put back in the rows' order
+    order = np.argsort(exponent, kind="stable")
+    exponent, digits = exponent[order], digits.take(pa.array(order))
+    bounds = np.flatnonzero(np.diff(exponent)) + 1
+    pieces = []
+    for lo, hi in zip(np.r_[0, bounds], np.r_[bounds, len(x)]):
+        e, d = int(exponent[lo]), digits.slice(lo, hi - lo)
+        whole = pc.utf8_rpad(pc.utf8_slice_codeunits(d, 0, e + 1), e + 1, "0")
+        fraction = pc.utf8_slice_codeunits(d, e + 1, 64)
+        fraction = pc.if_else(pc.equal(pc.utf8_length(fraction), 0), "0", fraction)
+        pieces.append(pc.binary_join_element_wise(whole, fraction, "."))
+    back = np.empty_like(order)
+    back[order] = np.arange(len(order))
+    out = pa.concat_arrays(pieces).take(pa.array(back))
+    return _checked(_signed(out, negative), x)
+
+
+def _with_exponent(text: pa.Array, x: np.ndarray) -> pa.Array:
+    """Values below 1e-4 as Python writes them: ``d.ddde-NN`` with at least two exponent digits."""
+    body, negative = _unsigned(text)
+    out = pc.replace_substring_regex(body, r"e-(\d)$", r"e-0\1")
+    for e in (5, 6):  # pyarrow's fixed notation: 0.0000ddd and 0.00000ddd
+        sel = pc.and_(pc.starts_with(body, "0." + "0" * (e - 1)), pc.invert(pc.starts_with(body, "0." + "0" * e)))
+        if not pc.any(sel).as_py():
+            continue
+        d = pc.utf8_slice_codeunits(body.filter(sel), 1 + e, 64)
+        first, rest = pc.utf8_slice_codeunits(d, 0, 1), pc.utf8_slice_codeunits(d, 1, 64)
+        mantissa = pc.if_else(pc.equal(pc.utf8_length(rest), 0), first,
+                              pc.binary_join_element_wise(first, rest, "."))
+        out = pc.replace_with_mask(out, sel, pc.binary_join_element_wise(mantissa, f"e-{e:02d}", ""))
+    return _checked(_signed(out, negative), x)
+
+
+def _checked(text: pa.Array, x: np.ndarray) -> pa.Array:
+    # the text must read back to the value; a layout this module did not foresee is written by Python
+    with np.errstate(invalid="ignore"):
+        wrong = pc.cast(text, pa.float64(), safe=False).to_numpy(zero_copy_only=False) != x
+    if wrong.any():
+        text = pc.replace_with_mask(text, pa.array(wrong), pa.array([repr(v) for v in x[wrong].tolist()], pa.string()))
     return text
 
 
