@@ -382,6 +382,9 @@ class _Runs:
 #: Candidates of consecutive tiles gathered before they are finished and checked together: the
 #: per-call costs of the finisher, the text checks and the sorted runs are paid per gathering, not per tile.
 GATHER_ROWS = 1 << 16
+#: At most this many tiles in a gathering: a decoded tile costs some 100 kB of schema and buffers
+#: whatever its rows, which would add up over a whole sky of tiles with few candidates each.
+GATHER_TILES = 256
 
 
 class _Gathered:
@@ -400,7 +403,8 @@ class _Gathered:
         self.ids: list[np.ndarray] = []
 
     def add(self, part: pa.Table) -> None:
-        if self.parts and (part.schema != self.parts[0].schema or self.rows + part.num_rows > GATHER_ROWS):
+        if self.parts and (part.schema != self.parts[0].schema or self.rows + part.num_rows > GATHER_ROWS
+                           or len(self.parts) >= GATHER_TILES):
             self.flush()
         self.parts.append(part)
         self.rows += part.num_rows
@@ -408,7 +412,8 @@ class _Gathered:
     def flush(self) -> None:
         if not self.parts:
             return
-        table = pa.concat_tables(self.parts) if len(self.parts) > 1 else self.parts[0]
+        # one chunk per column: every later step pays per chunk, and the tiles' small buffers are freed
+        table = pa.concat_tables(self.parts).combine_chunks() if len(self.parts) > 1 else self.parts[0]
         self.parts, self.rows = [], 0
         if self.finish is not None and table.num_rows:
             table = self.finish.apply(table)
