@@ -563,22 +563,42 @@ def _write_streamed(runs: _Runs, prov: dict, outputs: dict, batches: dict) -> No
 
         pending: list[pa.Table] = []
         pending_rows, first = 0, 1
-        for part in runs.merged():
-            part = _with_rank(part, first)
-            first += part.num_rows
-            cells = text_cells(part)  # the same cells in both formats: formatted once
-            files["ecsv"].write(text_lines(cells, " "))
-            files["csv"].write(text_lines(cells, ","))
-            # row groups of the usual size, so the file is the one a single write would give
-            pending.append(part)
-            pending_rows += part.num_rows
-            while pending_rows >= PARQUET_ROW_GROUP_ROWS:
-                group = pa.concat_tables(pending).combine_chunks()
-                write_group(group.slice(0, PARQUET_ROW_GROUP_ROWS))
-                rest = group.slice(PARQUET_ROW_GROUP_ROWS)
-                pending, pending_rows = [rest], rest.num_rows
+        for merged_part in runs.merged():
+            for start in range(0, merged_part.num_rows, TEXT_ROWS):
+                part = _with_rank(merged_part.slice(start, TEXT_ROWS), first)
+                first += part.num_rows
+                cells = text_cells(part)  # the same cells in both formats: formatted once
+                files["ecsv"].write(text_lines(cells, " "))
+                files["csv"].write(text_lines(cells, ","))
+                del cells
+                # row groups of the usual size, so the file is the one a single write would give; a
+                # part is cut at the group's end, so no group's buffers outlive it
+                while part.num_rows:
+                    take = min(part.num_rows, PARQUET_ROW_GROUP_ROWS - pending_rows)
+                    pending.append(part.slice(0, take))
+                    pending_rows += take
+                    part = part.slice(take)
+                    if pending_rows == PARQUET_ROW_GROUP_ROWS:
+                        write_group(_combined(pending))
+                        pending_rows = 0
         if pending_rows:
-            write_group(pa.concat_tables(pending).combine_chunks())
+            write_group(_combined(pending))
+
+
+#: Ranked rows formatted as text at a time (bounds the memory of the cells and lines).
+TEXT_ROWS = 1 << 15
+
+
+def _combined(parts: list[pa.Table]) -> pa.Table:
+    """The parts as one table of one chunk per column, emptying ``parts``: each column is combined
+    after the previous one's pieces are released, so the group is never held twice."""
+    table = pa.concat_tables(parts)
+    parts.clear()
+    schema, arrays = table.schema, []
+    for _ in schema.names:
+        arrays.append(table.column(0).combine_chunks())
+        table = table.remove_column(0)
+    return pa.Table.from_arrays(arrays, schema=schema)
 
 
 def _write_in_memory(runs: _Runs, prov: dict, outputs: dict, batches: dict, *, tiles: int) -> None:
