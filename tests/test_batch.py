@@ -23,14 +23,14 @@ import pyarrow.parquet as pq
 import pytest
 
 from selector.jobs import run as run_job
-from selector.jobs.run.merge import TileSummary, ranked_table
+from selector.jobs.run.merge import TileSummary, merge, provenance, ranked_table
 from selector.jobs.run.progress import Reporter
 from selector import cli
 from selector.demo import mocksky as demo
 from selector.settings.config import load_config
 from selector.errors import SelectorError
 from selector.jobs.ingest import ingest
-from selector.store.io import write_table_file
+from selector.store.io import parquet_writer_options, write_table_file
 from selector.store.layout import layout_of
 from selector.store.manifest import Manifest
 
@@ -373,6 +373,11 @@ def test_streamed_merge_gives_the_bytes_of_one_sort_written_by_astropy(finished,
         (lay.run_dir / name).unlink()
     monkeypatch.setattr(merge_module, "RUN_ROWS", 5)
     monkeypatch.setattr(merge_module, "BLOCK_ROWS", 3)
+    # tiles gathered two at a time (or fewer rows), text written four rows at a time
+    monkeypatch.setattr(merge_module, "GATHER_TILES", 2)
+    monkeypatch.setattr(merge_module, "GATHER_ROWS", 7)
+    monkeypatch.setattr(merge_module, "TEXT_ROWS", 4)
+    monkeypatch.setattr(merge_module, "READERS", 2)
     result = run_job.run(finished, workers=1, quiet=True, log=_quiet)
     assert result.merged and result.candidates > 20
     assert _merged_bytes(finished) == reference["merged"]
@@ -387,3 +392,33 @@ def test_streamed_merge_gives_the_bytes_of_one_sort_written_by_astropy(finished,
     for fmt in ("ecsv", "csv"):
         write_table_file(table, tmp_path / f"whole.{fmt}", fmt)
         assert (lay.run_dir / f"candidates.{fmt}").read_bytes() == (tmp_path / f"whole.{fmt}").read_bytes()
+
+
+def test_merged_parquet_row_groups_are_those_of_one_write(finished, monkeypatch, tmp_path):
+    # the merge assembles each row group from pieces of the ranked stream; with groups of six rows
+    # (text written four at a time, so pieces straddle groups) the file must be the one pyarrow
+    # writes from the whole table at once with the same options
+    merge_module = sys.modules[ranked_table.__module__]
+    lay = layout_of(finished)
+    monkeypatch.setattr(merge_module, "PARQUET_ROW_GROUP_ROWS", 6)
+    monkeypatch.setattr(merge_module, "TEXT_ROWS", 4)
+    monkeypatch.setattr(merge_module, "RUN_ROWS", 5)
+    result = run_job.run(finished, workers=1, quiet=True, log=_quiet, force=True)
+    assert result.merged and result.candidates > 12
+    merged = pq.ParquetFile(lay.candidates)
+    assert merged.metadata.num_row_groups == -(-result.candidates // 6)
+    whole = merged.read()
+    pq.write_table(whole, tmp_path / "whole.parquet", row_group_size=6, **parquet_writer_options(whole.schema))
+    assert lay.candidates.read_bytes() == (tmp_path / "whole.parquet").read_bytes()
+
+
+def test_an_unreadable_tile_list_stops_the_merge_with_one_line(finished):
+    lay = layout_of(finished)
+    tile = lay.run_tiles()[3]
+    lay.tile_candidates(tile).write_bytes(b"PAR1 not a parquet file")
+    with Manifest(lay.manifest) as man:
+        summaries = [TileSummary.from_record(rec) for rec in man.tiles().values()]
+    with pytest.raises(SelectorError) as err:
+        merge(finished, summaries, provenance(finished))
+    message = str(err.value)
+    assert "\n" not in message and str(lay.tile_candidates(tile)) in message and "cannot read" in message
