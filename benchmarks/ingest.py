@@ -111,12 +111,15 @@ def _config(folder: Path, chunk_rows: int, order: int):
         "tiling": {"order": order},
         "astrometric": {
             "files": ["astro.parquet"], "epoch_jyear": 2016.0, "chunk_rows": chunk_rows,
+            # the catalogue has no position errors; a run's probabilistic match needs one (ingest does not)
+            "position_floor_arcsec": 0.001,
             "columns": {"id": "sid", "ra": "ra", "dec": "dec", "parallax": "plx", "parallax_error": "eplx",
                         "pmra": "pmra", "pmdec": "pmdec", "pmra_error": "epmra", "pmdec_error": "epmdec"},
             "magnitudes": [{"band": "broad", "column": "g", "error_column": "eg", "system": "ab"}],
         },
         # required by the configuration, never read here
         "infrared": {"files": ["none.parquet"], "epoch_jyear": 2016.0, "columns": {"id": "i", "ra": "r", "dec": "d"},
+                     "position_floor_arcsec": 0.1,
                      "magnitudes": [{"band": "3.4", "column": "a"}, {"band": "4.6", "column": "b"}]},
     }, base_dir=folder)
 

@@ -11,7 +11,7 @@ import pytest
 
 from selector.core import tiles
 from selector.errors import InputError
-from selector.jobs.ingest import ingest, ingest_catalogue, values_json
+from selector.jobs.ingest import IdKind, ingest, ingest_catalogue, values_json
 from selector.store.layout import layout_of
 
 from conftest import base_config, build, random_astro, random_ir, write_parquet
@@ -214,3 +214,25 @@ def test_reject_values_are_built_as_columns_with_the_text_of_pythons_json():
     expected = [json.dumps({k: (None if v is None else str(v)) for k, v in r.items()}, sort_keys=True)
                 for r in table.to_pylist()]
     assert values_json(table).to_pylist() == expected
+
+
+def test_integer_ids_beyond_float_precision_are_kept_exactly(tmp_path, rng):
+    # 64-bit source ids run up to about 7e18, far beyond 2**53, where float64 stops counting by one
+    a = random_astro(50, rng)
+    a["sid"] = (np.int64(2) ** 62 + np.arange(50, dtype=np.int64) * 3).astype(np.int64)
+    a["sid"][7] = np.iinfo(np.int64).max
+    a["sid"][9] = a["sid"][8]  # ids one apart at 2**62 differ only beyond float64's precision
+    a["sid"][9] += 1
+    cfg = _setup(tmp_path, rng, n=50, astro=a)
+    s = ingest_catalogue(cfg, "astrometric", log=lambda *x: None)
+    assert s.accepted == 50 and not s.rejected
+    got = _read_tiles(cfg, "astrometric").column("astro_id").to_numpy()
+    assert sorted(got.tolist()) == sorted(a["sid"].tolist())
+
+
+def test_unsigned_ids_beyond_int64_are_rejected_as_unparsable():
+    raw = pa.array([1, None, 2**63 + 5, 2**63 - 1], pa.uint64())
+    ids, missing, bad = IdKind().convert(raw)
+    assert ids.type == pa.int64() and ids.to_pylist() == [1, 0, 0, 2**63 - 1]
+    assert missing.tolist() == [False, True, False, False]
+    assert bad.tolist() == [False, False, True, False]

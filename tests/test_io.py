@@ -8,6 +8,7 @@ from the values written, so a unit read from the wrong place, or not at all, sho
 from __future__ import annotations
 
 import json
+import os
 from pathlib import Path
 
 import astropy.units as u
@@ -377,3 +378,22 @@ def test_text_body_writes_the_bytes_of_astropy(tmp_path):
         body = io.text_body(table, delimiter)
         assert len(body.splitlines()) == n and written.endswith(body)
     assert not io.text_writable(pa.array([True, None]))
+
+
+def test_temporary_files_get_free_names_beside_their_target(tmp_path):
+    target = tmp_path / "sub" / "table.parquet"
+    with io.DurableBatch() as batch:
+        with batch.path(target) as first:
+            first.write_text("a")
+        # a leftover of a killed process that had this process's id and the next number: skipped, kept
+        number = next(io._TMP_NUMBERS) + 1
+        leftover = target.parent / f".{target.name}.{os.getpid()}-{number}.tmp"
+        leftover.write_text("old")
+        with batch.path(tmp_path / "sub" / "other.json") as second:
+            second.write_text("b")
+        assert first != second and leftover not in (first, second)
+        assert first.name.startswith(".table.parquet.") and first.name.endswith(".tmp")
+        assert first.parent == second.parent == target.parent
+    assert target.read_text() == "a" and (tmp_path / "sub" / "other.json").read_text() == "b"
+    assert leftover.read_text() == "old"
+    assert oct(target.stat().st_mode & 0o777) == oct(0o666 & ~io._UMASK)
