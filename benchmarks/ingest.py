@@ -15,8 +15,8 @@ that measurement alone:
 * ``baseline``: import selector and pyarrow, do nothing (the floor every process pays);
 * ``read``: stream the same columns with ``pyarrow.parquet.ParquetFile.iter_batches`` in chunks of
   ``--chunk-rows``, the least any reader of the file must do;
-* ``copy``: read the same columns in the same chunks and write them to one Parquet file: the least a
-  tiling ingest could do (read every row once, write it once);
+* ``copy``: read the same columns in the same chunks and write them to one Parquet file with the tile
+  files' writer options: the least a tiling ingest could do (read every row once, write it once);
 * ``ingest``: :func:`selector.jobs.ingest.ingest_catalogue` on the file, which is single-process, so
   its rows per second are rows per second per core.
 
@@ -143,9 +143,13 @@ def child(mode: str, folder: Path, chunk_rows: int, order: int, profile: bool) -
         for batch in pf.iter_batches(batch_size=chunk_rows, columns=COLUMNS):
             rows += batch.num_rows
     elif mode == "copy":
-        # the least a tiling ingest could do: read every row once and write it once
+        # the least a tiling ingest could do: read every row once and write it once, with the
+        # options the tile files are written with
+        from selector.store.io import parquet_writer_options
+
         pf = pq.ParquetFile(folder / "astro.parquet", pre_buffer=False)
-        with pq.ParquetWriter(folder / "copy.parquet", pf.schema_arrow, compression="lz4") as writer:
+        schema = pf.schema_arrow
+        with pq.ParquetWriter(folder / "copy.parquet", schema, **parquet_writer_options(schema)) as writer:
             for batch in pf.iter_batches(batch_size=chunk_rows, columns=COLUMNS):
                 writer.write_batch(batch)
                 rows += batch.num_rows
@@ -252,6 +256,11 @@ def main(argv=None):
               f"{ing['peak_rss_mib'] - baseline['peak_rss_mib']:>12,.0f}")
     (big, _, ing_big, _, _), (small, _, ing_small, _, _) = results
     grow = (ing_big["peak_rss_mib"] - baseline["peak_rss_mib"]) / max(1.0, ing_small["peak_rss_mib"] - baseline["peak_rss_mib"])
+    print("\nrows per CPU second (all threads), the floors beside the ingest:")
+    print(f"{'rows':>12} {'read':>12} {'copy':>12} {'ingest':>12} {'ingest/copy':>12}")
+    for rows, read, ing, _, copy in results:
+        print(f"{rows:>12,} {rows / read['cpu_s']:>12,.0f} {rows / copy['cpu_s']:>12,.0f} {rows / ing['cpu_s']:>12,.0f} "
+              f"{ing['cpu_s'] / copy['cpu_s']:>12.2f}")
     print(f"\npeak memory above the floor grows ×{grow:.2f} for ×{big / small:.0f} rows "
           f"(target: about ×1, independent of rows)")
     print(f"ingest rate {big / ing_big['wall_s']:,.0f} rows/s per core, {big / ing_big['cpu_s']:,.0f} rows per CPU "

@@ -236,3 +236,22 @@ def test_unsigned_ids_beyond_int64_are_rejected_as_unparsable():
     assert ids.type == pa.int64() and ids.to_pylist() == [1, 0, 0, 2**63 - 1]
     assert missing.tolist() == [False, True, False, False]
     assert bad.tolist() == [False, False, True, False]
+
+
+def test_input_in_spatial_order_gives_the_same_tile_bytes(tmp_path, rng):
+    # rows already in tile order skip the sort; the files must not tell the difference
+    a = random_astro(3000, rng)
+    fine = tiles.fine_index(a["ra"], a["dec"])
+    outs = []
+    for name, order in (("sorted", np.argsort(fine)), ("shuffled", rng.permutation(len(fine)))):
+        folder = tmp_path / name
+        folder.mkdir()
+        write_parquet({k: v[order] for k, v in a.items()}, folder / "astro.parquet")
+        write_parquet(random_ir(10, rng), folder / "ir.parquet")
+        cfg = build(base_config(), folder)
+        ingest_catalogue(cfg, "astrometric", log=lambda *x: None)
+        lay = layout_of(cfg)
+        outs.append({t: lay.tile_file("astrometric", cfg.tiling.order, t).read_bytes()
+                     for t in lay.list_tiles("astrometric", cfg.tiling.order)})
+    assert outs[0].keys() == outs[1].keys() and len(outs[0]) > 1
+    assert all(outs[0][t] == outs[1][t] for t in outs[0])

@@ -219,6 +219,8 @@ def map_chunk(chunk, fields: list[_Field], id_kind: IdKind):
     column = np.full(n, None, object)
 
     def flag(mask, code, source):
+        if not mask.any():  # the usual case: most checks find nothing in a chunk
+            return
         hit = mask & (reason < 0)
         reason[hit] = REASONS.index(code)
         column[hit] = source
@@ -613,7 +615,8 @@ def _take(table: pa.Table, index: np.ndarray) -> pa.Table:
     depend on how the rows were gathered). Arrow's own gather draws on its memory pool, which keeps
     and reuses freed memory: a numpy gather allocates fresh pages each time, and the kernel zeroing
     them cost more than the gather itself."""
-    return table.take(np.asarray(index, np.int64)).combine_chunks()
+    # the indices come from argsort, so always in range: no bounds check
+    return pc.take(table, pa.array(np.asarray(index, np.int64)), boundscheck=False).combine_chunks()
 
 
 def _find_duplicates(buckets: dict) -> np.ndarray:
@@ -664,7 +667,8 @@ def _write_tiles(cfg, kind, parts, *, log, lay, duplicates, id_col, fields, reje
                 columns=pa.repeat(pa.scalar(id_source, pa.string()), len(drow)),
                 values=values_json(d.drop(["_fine", "_row"]))))
             t = t.filter(pa.array(~dup))
-        t = _take(t, _fine_then_id_order(t, id_col)).drop(["_fine", "_row"])
+        order_f = _fine_then_id_order(t, id_col)
+        t = (t.combine_chunks() if order_f is None else _take(t, order_f)).drop(["_fine", "_row"])
         t = _with_units(t, units)
         if tiled:
             path = lay.tile_file(kind, order, tile)
@@ -688,9 +692,14 @@ def _write_tiles(cfg, kind, parts, *, log, lay, duplicates, id_col, fields, reje
     return rows_per_tile
 
 
-def _fine_then_id_order(table: pa.Table, id_col: str) -> np.ndarray:
-    """Row order by fine HEALPix index, then id (both ascending, stable)."""
+def _fine_then_id_order(table: pa.Table, id_col: str) -> np.ndarray | None:
+    """Row order by fine HEALPix index, then id (both ascending, stable); None when the rows are in it.
+
+    Catalogues are often stored in a spatial order, and then a tile's rows arrive sorted already.
+    """
     fine = table.column("_fine").to_numpy()
+    if np.all(fine[1:] > fine[:-1]):
+        return None
     order = np.argsort(fine)
     sorted_fine = fine[order]
     if not np.any(sorted_fine[1:] == sorted_fine[:-1]):
@@ -703,7 +712,8 @@ def _fine_then_id_order(table: pa.Table, id_col: str) -> np.ndarray:
 
 def _with_units(table: pa.Table, units: dict[str, str]) -> pa.Table:
     fields = [f.with_metadata({"unit": units[f.name]}) if f.name in units else f for f in table.schema]
-    return table.cast(pa.schema(fields, metadata=table.schema.metadata))
+    # only metadata changes: the same columns under the new schema (a cast would check every column)
+    return pa.Table.from_arrays(table.columns, schema=pa.schema(fields, metadata=table.schema.metadata))
 
 
 CATALOGUES = ("astrometric", "infrared", "known")
