@@ -61,7 +61,6 @@ import argparse
 import hashlib
 import json
 import os
-import resource
 import shutil
 import subprocess
 import sys
