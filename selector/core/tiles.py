@@ -11,6 +11,8 @@ file and match rows start without one.
 
 from __future__ import annotations
 
+from functools import lru_cache
+
 import astropy.units as u
 import numpy as np
 from astropy_healpix.core import healpix_cone_search, healpix_to_xyz
@@ -200,10 +202,18 @@ def _angle_rad(a: np.ndarray, b: np.ndarray) -> np.ndarray:
     return np.arctan2(np.linalg.norm(np.cross(a, b), axis=-1), np.sum(a * b, axis=-1))
 
 
+@lru_cache(maxsize=1 << 14)
 def circumscribed_disc(tile: int, order: int) -> tuple[np.ndarray, float]:
-    """Centre unit vector of a tile and its largest centre-to-corner distance (rad)."""
+    """Centre unit vector of a tile and its largest centre-to-corner distance (rad).
+
+    Remembered per tile: every tile's job asks for its own disc and its neighbours', and the geometry
+    costs about as much as filtering a small tile's margin. The vector returned is shared; do not
+    change it.
+    """
     centres, reach = _discs(np.array([int(tile)], np.int64), order)
-    return centres[0], float(reach[0])
+    centre = centres[0]
+    centre.flags.writeable = False
+    return centre, float(reach[0])
 
 
 def tiles_near(tile: int, order: int, margin_arcsec: float) -> np.ndarray:

@@ -24,12 +24,6 @@ from selector.store.tilecache import DecodedTile, TileCache
 _ARCSEC_PER_RAD = 180.0 / np.pi * 3600.0
 
 
-@lru_cache(maxsize=4096)
-def _disc(tile: int, order: int) -> tuple[np.ndarray, float]:
-    # the same tile's disc is asked for by each of its neighbours' margin filters
-    return tiles.circumscribed_disc(tile, order)
-
-
 def _disc_filter(decoded: DecodedTile, tile: int, order: int, margin_arcsec: float,
                  columns: list[str] | None = None) -> tuple[pa.Table, str | None]:
     """Keep rows within the tile's circumscribed disc grown by the margin (``columns`` only, if given).
@@ -46,7 +40,7 @@ def _disc_filter(decoded: DecodedTile, tile: int, order: int, margin_arcsec: flo
     table = decoded.table if columns is None else decoded.table.select(columns)
     if table.num_rows == 0:
         return table, None
-    centre, reach = _disc(int(tile), int(order))
+    centre, reach = tiles.circumscribed_disc(int(tile), int(order))
     cos_limit = np.cos(min(np.pi, reach + margin_arcsec / _ARCSEC_PER_RAD))
     rows = np.flatnonzero(decoded.xyz @ centre >= cos_limit)
     if rows.size == 0:
@@ -151,7 +145,7 @@ def load_tile(cfg: Config, tile: int, on_input=None, *, cache: TileCache | None 
     r = cfg.match.radius_arcsec
     ir_margin = default_ir_margin_arcsec(cfg, own) if ir_margin_arcsec is None else float(ir_margin_arcsec)
     astro_margin = ir_margin + r + cfg.match.max_proper_motion_mas_yr * dt / 1000.0
-    centre, reach = _disc(int(tile), int(order))
+    centre, reach = tiles.circumscribed_disc(int(tile), int(order))
     ir_parts = []
     for t in tiles.tiles_near(tile, order, ir_margin):
         path = tile_file("infrared", int(t))
