@@ -574,7 +574,6 @@ def _chance_matches(own, infrared, tile, s: MatchSettings, *, real: PairCandidat
     counterpart. Matching against the shifted catalogue (common practice for the false-match rate) without
     that competition overestimates the chance matches where most infrared sources have a counterpart.
     """
-    parts = []
     n_real, n_own = len(real_pos[0]), own.num_rows
     copies, ra_parts, dec_parts = [], [], []
     for k, angle in enumerate(_shift_angles_deg(s.chance_shifts)):
@@ -621,14 +620,12 @@ def _chance_matches(own, infrared, tile, s: MatchSettings, *, real: PairCandidat
     if picked:
         joined = {name: pa.concat_arrays([c[name] for c in columns]) for name in columns[0]}
         part = _features(own, infrared, np.concatenate(picked), np.concatenate(ir_for), joined)
-        parts.append(part.append_column(CHANCE_SHIFT_COLUMN, pa.array(np.concatenate(shift_of))))
-    if not parts:
-        none = np.zeros(0, np.int64)
-        asg = assign_one_to_one(none, none, np.zeros(0), np.zeros(0), np.zeros(0), n_astrometric=0)
-        columns = _match_columns(tile, none, asg, pos=(np.zeros(0), np.zeros(0)), sigma=np.zeros(0), blend=none)
-        empty = _features(own, infrared, none, none, columns)
-        return empty.append_column(CHANCE_SHIFT_COLUMN, pa.array(none)), n_shifted
-    return pa.concat_tables(parts), n_shifted
+        return part.append_column(CHANCE_SHIFT_COLUMN, pa.array(np.concatenate(shift_of))), n_shifted
+    none = np.zeros(0, np.int64)
+    asg = assign_one_to_one(none, none, np.zeros(0), np.zeros(0), np.zeros(0), n_astrometric=0)
+    columns = _match_columns(tile, none, asg, pos=(np.zeros(0), np.zeros(0)), sigma=np.zeros(0), blend=none)
+    empty = _features(own, infrared, none, none, columns)
+    return empty.append_column(CHANCE_SHIFT_COLUMN, pa.array(none)), n_shifted
 
 
 def _components_touching(real: PairCandidates, ir_hit: np.ndarray, *, n_real: int, n_ir: int):

@@ -33,7 +33,7 @@ from selector.core import schema, tiles
 from selector.settings.config import CatalogueConfig, Config, config_hash
 from selector.errors import InputError, SelectorError
 from selector.jobs.progress import Progress
-from selector.store.io import (DurableBatch, expand_files, file_columns, fingerprint, float_text, iter_chunks,
+from selector.store.io import (DurableBatch, concat_text, expand_files, file_columns, fingerprint, float_text, iter_chunks,
                                missing_column_message, no_space, no_space_error, write_json, write_parquet)
 from selector.jobs.checks import ingest_findings, sample_rows, settle
 from selector.jobs.run.execute import fault
@@ -346,7 +346,7 @@ def _json_strings(table: pa.Table, name: str) -> pa.Array:
         text = pc.cast(col, pa.string())
     else:  # other types are rare in rejects: Python's own str()
         text = pa.array([None if v is None else str(v) for v in col.to_pylist()], pa.string())
-    quoted = pc.binary_join_element_wise('"', text, '"', "")
+    quoted = concat_text('"', text, '"')
     escape = pc.fill_null(pc.match_substring_regex(text, _JSON_ESCAPED), False)
     if pc.any(escape).as_py():
         mask = escape.to_numpy(zero_copy_only=False)
@@ -371,7 +371,7 @@ def values_json(table: pa.Table) -> pa.Array:
         pieces.append(("{" if i == 0 else ", ") + json.dumps(name) + ": ")
         pieces.append(_json_strings(table, name))
     pieces.append("}")
-    return pc.binary_join_element_wise(*pieces, "")
+    return concat_text(*pieces)
 
 
 def _reject_table(*, files: pa.Array, rows: np.ndarray, reasons: pa.Array, columns: pa.Array,

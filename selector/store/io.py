@@ -879,12 +879,17 @@ def float_text(values: pa.Array, decimals: int | None = None) -> pa.Array:
         big = np.isfinite(x) & (a >= 1e10) & (a < 1e16)  # pyarrow's exponent, Python's fixed notation
         small = (a < 1e-4) & (x != 0.0)  # Python's exponent; pyarrow's fixed above 1e-6, short exponents below
     if whole.any():
-        text = pc.if_else(pa.array(whole), pc.binary_join_element_wise(text, ".0", ""), text)
+        text = pc.if_else(pa.array(whole), concat_text(text, ".0"), text)
     for mask, relayout in ((big, _written_out), (small, _with_exponent)):
         if mask.any():
             where = np.flatnonzero(mask)
             text = pc.replace_with_mask(text, pa.array(mask), relayout(text.take(pa.array(where)), x[where]))
     return text
+
+
+def concat_text(*parts) -> pa.Array:
+    """Row-wise concatenation of text arrays and scalars (no separator), in Arrow's string kernel."""
+    return pc.binary_join_element_wise(*parts, "")
 
 
 def _unsigned(text: pa.Array) -> tuple[pa.Array, pa.Array]:
@@ -893,7 +898,7 @@ def _unsigned(text: pa.Array) -> tuple[pa.Array, pa.Array]:
 
 
 def _signed(text: pa.Array, negative: pa.Array) -> pa.Array:
-    return pc.if_else(negative, pc.binary_join_element_wise("-", text, ""), text)
+    return pc.if_else(negative, concat_text("-", text), text)
 
 
 def _written_out(text: pa.Array, x: np.ndarray) -> pa.Array:
@@ -912,7 +917,7 @@ def _written_out(text: pa.Array, x: np.ndarray) -> pa.Array:
         whole = pc.utf8_rpad(pc.utf8_slice_codeunits(d, 0, e + 1), e + 1, "0")
         fraction = pc.utf8_slice_codeunits(d, e + 1, 64)
         fraction = pc.if_else(pc.equal(pc.utf8_length(fraction), 0), "0", fraction)
-        pieces.append(pc.binary_join_element_wise(whole, fraction, "."))
+        pieces.append(concat_text(whole, ".", fraction))
     back = np.empty_like(order)
     back[order] = np.arange(len(order))
     out = pa.concat_arrays(pieces).take(pa.array(back))
@@ -930,8 +935,8 @@ def _with_exponent(text: pa.Array, x: np.ndarray) -> pa.Array:
         d = pc.utf8_slice_codeunits(body.filter(sel), 1 + e, 64)
         first, rest = pc.utf8_slice_codeunits(d, 0, 1), pc.utf8_slice_codeunits(d, 1, 64)
         mantissa = pc.if_else(pc.equal(pc.utf8_length(rest), 0), first,
-                              pc.binary_join_element_wise(first, rest, "."))
-        out = pc.replace_with_mask(out, sel, pc.binary_join_element_wise(mantissa, f"e-{e:02d}", ""))
+                              concat_text(first, ".", rest))
+        out = pc.replace_with_mask(out, sel, concat_text(mantissa, f"e-{e:02d}"))
     return _checked(_signed(out, negative), x)
 
 
@@ -991,7 +996,7 @@ def text_lines(cells: list[pa.Array], delimiter: str) -> pa.Buffer:
     pieces = []
     for i, cell in enumerate(cells):
         pieces += [cell, delimiter if i < len(cells) - 1 else "\n"]
-    lines = pc.binary_join_element_wise(*pieces, "")
+    lines = concat_text(*pieces)
     if len(lines) == 0:
         return pa.py_buffer(b"")
     offsets = np.frombuffer(lines.buffers()[1], np.int32, count=len(lines) + 1, offset=4 * lines.offset)

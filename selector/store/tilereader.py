@@ -18,7 +18,7 @@ from selector.core import schema, tiles
 from selector.core.tilematch import ASTROMETRIC_ERROR_COLUMNS, DENSITY_COLUMN, LoadedArea, tile_density_per_sr
 from selector.errors import InputError
 from selector.settings.config import Config
-from selector.store.layout import layout_of, tile_name
+from selector.store.layout import layout_of, tile_rel_path
 from selector.store.tilecache import DecodedTile, TileCache
 
 _ARCSEC_PER_RAD = 180.0 / np.pi * 3600.0
@@ -183,10 +183,10 @@ def load_tile(cfg: Config, tile: int, on_input=None, *, cache: TileCache | None 
 
 def _tile_files(lay, order: int):
     """``path(catalogue, tile)`` of a pinned layout's tile files, as text."""
-    folders = {kind: os.fspath(lay.order_dir(kind, order)) for kind in ("astrometric", "infrared")}
+    root = os.fspath(lay.tiles_dir)
 
     def path(kind: str, tile: int) -> str:
-        return f"{folders[kind]}{os.sep}{tile_name(tile)}.parquet"
+        return f"{root}/{tile_rel_path(kind, order, tile)}"
 
     return path
 
